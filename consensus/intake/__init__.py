@@ -1,0 +1,1 @@
+"""Intake: read and check every input file before anything is written."""

@@ -1,0 +1,1 @@
+"""Pure numerical methods: take and return frames or arrays, no I/O."""

@@ -1,0 +1,1 @@
+"""The meeting pack: context building, charts and rendering."""

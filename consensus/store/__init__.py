@@ -1,0 +1,1 @@
+"""The store: database URL, engine, tables and bulk frame I/O."""

@@ -1,0 +1,1 @@
+"""The monthly cycle: run, override, publish, export, explode."""
