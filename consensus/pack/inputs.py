@@ -1,0 +1,386 @@
+"""Everything the meeting pack shows, as one plain object, and a synthetic example of it.
+
+The store side gathers a :class:`PackInputs` for a cycle; the pack side turns it
+into HTML and PDF without touching the store again.  :func:`example_pack_inputs`
+builds an invented, seeded scenario of any size for tests and the benchmark.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from datetime import datetime
+
+import numpy as np
+import pandas as pd
+
+from consensus.errors import InvalidSpec
+from consensus.periods import (
+    DEFAULT_LAG_BUCKETS,
+    horizon_months,
+    lag_bucket_labels,
+    month_index,
+    month_indexes,
+    month_names,
+    shift_month,
+)
+
+STATUSES = ("draft", "published")
+
+#: Columns each frame of PackInputs must carry (frames may be empty).
+FRAME_COLUMNS: dict[str, tuple[str, ...]] = {
+    "submissions": ("source", "scope", "filename", "sha256", "submitted_by", "submitted_at", "status", "rows"),
+    "missing": ("source", "scope"),
+    "items": ("item", "family", "unit_price"),
+    "locations": ("location", "region"),
+    "actuals": ("item", "location", "period", "quantity"),
+    "sources": ("source", "item", "location", "period", "quantity"),
+    "consensus": ("item", "location", "period", "lag", "consensus", "lower_80", "upper_80", "lower_95", "upper_95"),
+    "previous": ("item", "location", "period", "consensus"),
+    "weights": ("segment", "lag_bucket", "source", "weight", "psi", "n_cycles", "mse", "basis", "note"),
+    "scorecard": (
+        "source", "level", "lag_bucket", "n", "n_zero_actual", "mad", "mse", "rmse", "mape", "wape",
+        "bias", "bias_pct", "tracking_signal", "ts_flag", "mase",
+    ),
+    "scorecard_history": ("source", "cycle", "wape", "bias_pct"),
+    "disagreement": ("item", "location", "period", "family", "spread", "spread_ratio", "flagged"),
+    "fva": ("step", "wape", "n"),
+    "decisions": ("at", "author", "scope", "period", "change", "reason"),
+    "components": ("component", "period", "quantity"),
+    "band_coverage": ("level", "nominal", "coverage", "winkler"),
+}
+
+
+@dataclass(frozen=True)
+class PackInputs:
+    """The inputs of one cycle's meeting pack; frames may be empty but always carry their columns."""
+
+    company: str
+    cycle: str
+    status: str
+    generated_at: datetime
+    horizon: int
+    last_actual_month: str
+    submissions: pd.DataFrame
+    missing: pd.DataFrame
+    items: pd.DataFrame
+    locations: pd.DataFrame
+    actuals: pd.DataFrame
+    sources: pd.DataFrame
+    consensus: pd.DataFrame
+    previous: pd.DataFrame
+    weights: pd.DataFrame
+    scorecard: pd.DataFrame
+    scorecard_history: pd.DataFrame
+    disagreement: pd.DataFrame
+    fva: pd.DataFrame
+    decisions: pd.DataFrame
+    components: pd.DataFrame
+    method_notes: dict[str, str] = field(default_factory=dict)
+    band_coverage: pd.DataFrame = field(default_factory=lambda: empty_frame("band_coverage"))
+    # Labels only: the pack never converts units or currencies.
+    quantity_unit: str = "units"
+    currency: str = "EUR"
+
+    def __post_init__(self) -> None:
+        if self.status not in STATUSES:
+            raise InvalidSpec(f"status must be one of {STATUSES}, got {self.status!r}")
+        month_index(self.cycle)
+        month_index(self.last_actual_month)
+        if int(self.horizon) < 1:
+            raise InvalidSpec(f"horizon must be at least 1 month, got {self.horizon!r}")
+        for name, columns in FRAME_COLUMNS.items():
+            frame = getattr(self, name)
+            if not isinstance(frame, pd.DataFrame):
+                raise InvalidSpec(f"PackInputs.{name} must be a DataFrame, got {type(frame).__name__}")
+            absent = [c for c in columns if c not in frame.columns]
+            if absent:
+                raise InvalidSpec(f"PackInputs.{name} lacks column(s) {absent}")
+
+
+def empty_frame(name: str) -> pd.DataFrame:
+    """An empty frame with the columns PackInputs expects for ``name``."""
+    return pd.DataFrame({column: pd.Series(dtype=object) for column in FRAME_COLUMNS[name]})
+
+
+# --------------------------------------------------------------------------- synthetic scenario
+
+_FAMILY_WORDS = (
+    "Cookware", "Bakeware", "Storage", "Cutlery", "Textiles", "Glassware", "Lighting", "Hand tools",
+    "Garden", "Cleaning", "Tableware", "Small appliances",
+)
+_LOCATIONS = (("DC-N1", "North"), ("DC-N2", "North"), ("DC-S1", "South"), ("DC-S2", "South"), ("DC-W1", "West"))
+_SOURCES = ("sales", "marketing", "dc", "statistical")
+# Per-source systematic bias and noise (fraction of the true level) of the invented scenario.
+_SOURCE_BIAS = {"sales": 0.08, "marketing": 0.15, "dc": -0.03, "statistical": 0.0}
+_SOURCE_NOISE = {"sales": 0.12, "marketing": 0.22, "dc": 0.10, "statistical": 0.09}
+
+
+def _family_names(n_families: int) -> list[str]:
+    names = []
+    for i in range(n_families):
+        word = _FAMILY_WORDS[i % len(_FAMILY_WORDS)]
+        round_ = i // len(_FAMILY_WORDS)
+        names.append(word if round_ == 0 else f"{word} {round_ + 1}")
+    return names
+
+
+def example_pack_inputs(
+    n_families: int = 4,
+    n_items: int = 24,
+    seed: int = 7,
+    *,
+    cycle: str = "2027-03",
+    horizon: int = 18,
+    history_months: int = 36,
+    status: str = "draft",
+) -> PackInputs:
+    """A seeded, invented scenario of ``n_families`` families and ``n_items`` items for tests and bench.
+
+    Demand per item × location is level × (1 + 0.25·sin seasonality) with gamma noise;
+    each source is the true future scaled by its own bias and noise; the consensus is
+    the weight-blended sources with bands widening as √lag.  Names are made up.
+    """
+    if n_families < 1 or n_items < n_families:
+        raise InvalidSpec("need at least one family and at least one item per family")
+    rng = np.random.default_rng(seed)
+    families = _family_names(n_families)
+    items = pd.DataFrame(
+        {
+            "item": [f"ITM-{i + 1:05d}" for i in range(n_items)],
+            "family": [families[i % n_families] for i in range(n_items)],
+            "unit_price": np.round(rng.lognormal(mean=2.8, sigma=0.7, size=n_items), 2),
+        }
+    )
+    locations = pd.DataFrame(_LOCATIONS, columns=["location", "region"])
+
+    # Each item is stocked at 2–4 locations.
+    n_locs = rng.integers(2, 5, size=n_items)
+    loc_order = np.argsort(rng.random((n_items, len(_LOCATIONS))), axis=1)
+    cell_item = np.repeat(np.arange(n_items), n_locs)
+    cell_rank = np.concatenate([np.arange(k) for k in n_locs])
+    cell_loc = loc_order[cell_item, cell_rank]
+    n_cells = len(cell_item)
+    level = rng.lognormal(mean=4.0, sigma=0.9, size=n_cells)
+    phase = rng.uniform(0, 2 * np.pi, size=n_families)[cell_item % n_families]
+
+    cycle_idx = month_index(cycle)
+    hist_idx = np.arange(cycle_idx - history_months + 1, cycle_idx + 1)
+    plan_idx = np.arange(cycle_idx + 1, cycle_idx + horizon + 1)
+    trend = rng.normal(0.004, 0.006, size=n_cells)
+
+    def expected(month_idx: np.ndarray) -> np.ndarray:
+        steps = month_idx[None, :] - cycle_idx
+        season = 1 + 0.25 * np.sin(2 * np.pi * month_idx[None, :] / 12 + phase[:, None])
+        return level[:, None] * season * (1 + trend[:, None]) ** steps
+
+    hist_mean = expected(hist_idx)
+    hist_qty = rng.gamma(shape=8.0, scale=hist_mean / 8.0)
+    item_codes = items["item"].to_numpy()
+    loc_codes = locations["location"].to_numpy()
+
+    def long_frame(values: np.ndarray, month_idx: np.ndarray, column: str) -> pd.DataFrame:
+        n_months = len(month_idx)
+        return pd.DataFrame(
+            {
+                "item": np.repeat(item_codes[cell_item], n_months),
+                "location": np.repeat(loc_codes[cell_loc], n_months),
+                "period": np.tile(month_names(month_idx), n_cells),
+                column: np.round(values.ravel(), 0),
+            }
+        )
+
+    actuals = long_frame(hist_qty, hist_idx, "quantity")
+
+    plan_mean = expected(plan_idx)
+    missing_dc = "DC-W1"
+    source_frames, source_values = [], {}
+    for source in _SOURCES:
+        noise = rng.normal(0, _SOURCE_NOISE[source], size=plan_mean.shape)
+        values = np.maximum(plan_mean * (1 + _SOURCE_BIAS[source] + noise), 0)
+        source_values[source] = values
+        frame = long_frame(values, plan_idx, "quantity")
+        frame.insert(0, "source", source)
+        if source == "dc":
+            frame = frame[frame["location"] != missing_dc]
+        source_frames.append(frame)
+    sources = pd.concat(source_frames, ignore_index=True)
+
+    # Weights per family × lag bucket: inverse of each source's error variance, shrunk.
+    bucket_of_lag = lag_bucket_labels(np.arange(1, horizon + 1))
+    bucket_labels = [label for label, _, _ in DEFAULT_LAG_BUCKETS if label in set(bucket_of_lag)]
+    inv_mse = np.array([1 / (_SOURCE_NOISE[s] ** 2 + _SOURCE_BIAS[s] ** 2) for s in _SOURCES])
+    weight_rows = []
+    for segment in ["all", *families]:
+        jitter = rng.uniform(0.8, 1.25, size=(len(bucket_labels), len(_SOURCES)))
+        raw = inv_mse[None, :] * jitter
+        psi = rng.uniform(0.1, 0.4)
+        shrunk = (1 - psi) * raw / raw.sum(axis=1, keepdims=True) + psi / len(_SOURCES)
+        n_cycles = int(rng.integers(6, 25))
+        for b, bucket in enumerate(bucket_labels):
+            for s, source in enumerate(_SOURCES):
+                weight_rows.append(
+                    {
+                        "segment": segment, "lag_bucket": bucket, "source": source,
+                        "weight": round(float(shrunk[b, s]), 4), "psi": round(psi, 3), "n_cycles": n_cycles,
+                        "mse": round(float(1 / (inv_mse[s] * jitter[b, s])), 5),
+                        "basis": "inverse MSE, shrunk toward equal",
+                        "note": (
+                            "few past cycles, leaning on equal weights" if n_cycles < 12
+                            else ("most accurate at this lag" if shrunk[b, s] == shrunk[b].max() else "")
+                        ),
+                    }
+                )
+    weights = pd.DataFrame(weight_rows)
+    # The blend uses the "all" segment so the example stays simple; family rows document the scheme.
+    all_w = weights[weights["segment"] == "all"].pivot(index="lag_bucket", columns="source", values="weight")
+    w_by_lag = all_w.loc[bucket_of_lag, list(_SOURCES)].to_numpy()  # horizon × sources
+    has_dc = (loc_codes[cell_loc] != missing_dc)[:, None, None]
+    stack = np.stack([source_values[s] for s in _SOURCES], axis=2)  # cells × horizon × sources
+    w = np.broadcast_to(w_by_lag[None, :, :], stack.shape).copy()
+    w[..., _SOURCES.index("dc")] *= has_dc[..., 0]
+    w /= w.sum(axis=2, keepdims=True)
+    blend = (stack * w).sum(axis=2)
+    lag_arr = np.arange(1, horizon + 1)
+    sigma = blend * 0.12 * np.sqrt(lag_arr)[None, :]
+    consensus = long_frame(blend, plan_idx, "consensus")
+    consensus.insert(3, "lag", np.tile(lag_arr, n_cells))
+    for name, z in (("80", 1.2816), ("95", 1.96)):
+        consensus[f"lower_{name}"] = np.round(np.maximum(blend - z * sigma, 0).ravel(), 0)
+        consensus[f"upper_{name}"] = np.round((blend + z * sigma).ravel(), 0)
+
+    # Last cycle's plan covered cycle … cycle+horizon−1; a few cells move a lot.
+    prev_idx = np.arange(cycle_idx, cycle_idx + horizon)
+    prev_mean = expected(prev_idx)
+    shock = np.where(rng.random(n_cells) < 0.05, rng.uniform(0.55, 1.6, n_cells), 1.0)
+    prev_values = prev_mean * shock[:, None] * (1 + rng.normal(0, 0.05, size=prev_mean.shape))
+    previous = long_frame(prev_values, prev_idx, "consensus")
+
+    spread = stack.max(axis=2) - stack.min(axis=2)
+    ratio = spread / np.maximum(blend, 1e-9)
+    disagreement = long_frame(spread, plan_idx, "spread")
+    disagreement["spread_ratio"] = np.round(ratio.ravel(), 3)
+    disagreement["flagged"] = disagreement["spread_ratio"] > 0.6
+    disagreement = disagreement[disagreement["flagged"]].merge(items[["item", "family"]], on="item")
+    disagreement = disagreement[["item", "location", "period", "family", "spread", "spread_ratio", "flagged"]]
+
+    scorecard = _example_scorecard(rng, bucket_labels)
+    cycles_back = [shift_month(cycle, -k) for k in range(11, -1, -1)]
+    scorecard_history = pd.DataFrame(
+        [
+            {
+                "source": s, "cycle": c,
+                "wape": round(100 * (_SOURCE_NOISE[s] * 1.6 + abs(_SOURCE_BIAS[s]) * 0.6) * rng.uniform(0.85, 1.15), 1),
+                "bias_pct": round(100 * _SOURCE_BIAS[s] * rng.uniform(0.6, 1.4), 1),
+            }
+            for s in _SOURCES
+            for c in cycles_back
+        ]
+    )
+    fva = pd.DataFrame(
+        {
+            "step": ["seasonal naive", "statistical", "+ sales", "+ marketing", "+ dc", "consensus"],
+            "wape": [31.5, 22.8, 21.9, 23.1, 20.7, 19.4],
+            "n": [n_cells * 12] * 6,
+        }
+    )
+    generated_at = datetime(2027, 4, 6, 9, 30)
+    decisions = pd.DataFrame(
+        {
+            "at": [datetime(2027, 4, 3, 14, 5), datetime(2027, 4, 4, 10, 40), datetime(2027, 4, 5, 16, 20)],
+            "author": ["R. Okafor (demand planning)", "L. Brandt (sales, North)", "M. Ruiz (marketing)"],
+            "scope": [item_codes[0], families[0], "all"],
+            "period": [shift_month(cycle, 2), shift_month(cycle, 4), shift_month(cycle, 6)],
+            "change": ["+15% over statistical", "set family to sales figure", "-8% promotion uplift removed"],
+            "reason": [
+                "Confirmed tender for a hotel refit; delivery booked for that month.",
+                "Range review moves two listings forward by a month.",
+                "Autumn campaign postponed; uplift taken out until a new date is set.",
+            ],
+        }
+    )
+    components = _example_components(rng, consensus, items, n_families)
+    n_sub = {s: int((sources["source"] == s).sum()) for s in _SOURCES}
+    submissions = pd.DataFrame(
+        [
+            {"source": "sales", "scope": "all", "filename": f"sales_{cycle}.xlsx", "submitted_by": "L. Brandt",
+             "submitted_at": datetime(2027, 4, 2, 17, 12), "status": "accepted", "rows": n_sub["sales"]},
+            {"source": "marketing", "scope": "all", "filename": f"marketing_{cycle}.csv", "submitted_by": "M. Ruiz",
+             "submitted_at": datetime(2027, 4, 4, 8, 55), "status": "late", "rows": n_sub["marketing"]},
+            {"source": "dc", "scope": "North", "filename": f"dc_north_{cycle}.xlsx", "submitted_by": "P. Nowak",
+             "submitted_at": datetime(2027, 4, 1, 11, 3), "status": "accepted", "rows": n_sub["dc"] // 2},
+            {"source": "dc", "scope": "South", "filename": f"dc_south_{cycle}.xlsx", "submitted_by": "A. Haddad",
+             "submitted_at": datetime(2027, 4, 2, 9, 47), "status": "accepted", "rows": n_sub["dc"] - n_sub["dc"] // 2},
+        ]
+    )
+    submissions.insert(3, "sha256", [f"{rng.integers(0, 2**63):016x}" * 4 for _ in range(len(submissions))])
+    missing = pd.DataFrame({"source": ["dc"], "scope": [missing_dc]})
+    method_notes = {
+        "Weights": (
+            "Each source is weighted by how accurate it has been, measured separately for each family and "
+            "lag bucket: weight ∝ 1 / mean squared error over past cycles (Bates–Granger), then pulled toward "
+            "equal weights by the shrinkage ψ when few cycles are available."
+        ),
+        "Bands": (
+            "The 80% and 95% bands come from the spread of past forecast errors at the same lag, widening "
+            "with the horizon. Family and total bands combine item bands assuming errors are independent."
+        ),
+        "Reconciliation": "Item, family and total figures add up: family numbers are sums of their items.",
+    }
+    band_coverage = pd.DataFrame(
+        {"level": ["item", "item", "family", "family"], "nominal": [0.8, 0.95, 0.8, 0.95],
+         "coverage": [0.77, 0.93, 0.82, 0.96], "winkler": [41.2, 63.5, 388.0, 602.1]}
+    )
+    return PackInputs(
+        company="Demo Kitchenware Co. (invented example)", cycle=cycle, status=status,
+        generated_at=generated_at, horizon=horizon, last_actual_month=cycle,
+        submissions=submissions, missing=missing, items=items, locations=locations, actuals=actuals,
+        sources=sources, consensus=consensus, previous=previous, weights=weights, scorecard=scorecard,
+        scorecard_history=scorecard_history, disagreement=disagreement.reset_index(drop=True), fva=fva,
+        decisions=decisions, components=components, method_notes=method_notes, band_coverage=band_coverage,
+    )
+
+
+def _example_scorecard(rng: np.random.Generator, bucket_labels: list[str]) -> pd.DataFrame:
+    rows = []
+    level_factor = {"item": 1.45, "family": 0.85, "total": 0.55}
+    for source in _SOURCES:
+        for level, factor in level_factor.items():
+            for b, bucket in enumerate(bucket_labels):
+                wape = 100 * (_SOURCE_NOISE[source] * 1.6 + abs(_SOURCE_BIAS[source]) * 0.6) * factor * (1 + 0.18 * b)
+                bias_pct = 100 * _SOURCE_BIAS[source] * rng.uniform(0.7, 1.3)
+                # Marketing's persistent optimism pushes its tracking signal beyond ±4.
+                ts = float(rng.normal(0, 1.3)) + (5.2 if source == "marketing" else 0.0)
+                rows.append(
+                    {
+                        "source": source, "level": level, "lag_bucket": bucket,
+                        "n": int(rng.integers(200, 900)), "n_zero_actual": int(rng.integers(0, 12)),
+                        "mad": round(wape * rng.uniform(0.6, 0.9), 1), "mse": round((wape * 1.3) ** 2, 1),
+                        "rmse": round(wape * 1.3, 1), "mape": round(wape * rng.uniform(1.1, 1.5), 1),
+                        "wape": round(wape, 1), "bias": round(bias_pct * 0.9, 1), "bias_pct": round(bias_pct, 1),
+                        "tracking_signal": round(ts, 2), "ts_flag": abs(ts) > 4,
+                        "mase": round(wape / 28.0 * rng.uniform(0.9, 1.1), 2),
+                    }
+                )
+    return pd.DataFrame(rows)
+
+
+def _example_components(
+    rng: np.random.Generator, consensus: pd.DataFrame, items: pd.DataFrame, n_families: int
+) -> pd.DataFrame:
+    n_components = max(6, min(3 * n_families, 300))
+    per_family = 3
+    fam_codes = pd.Categorical(items["family"]).codes
+    usage = pd.DataFrame(
+        {
+            "family_code": np.repeat(np.arange(n_families), per_family),
+            "component": [f"CMP-{c + 1:04d}" for c in rng.integers(0, n_components, size=n_families * per_family)],
+            "qty_per": rng.integers(1, 5, size=n_families * per_family),
+        }
+    )
+    demand = consensus[["item", "period", "consensus"]].merge(
+        pd.DataFrame({"item": items["item"], "family_code": fam_codes}), on="item"
+    )
+    demand = demand.groupby(["family_code", "period"], as_index=False)["consensus"].sum()
+    exploded = demand.merge(usage, on="family_code")
+    exploded["quantity"] = exploded["consensus"] * exploded["qty_per"]
+    return exploded.groupby(["component", "period"], as_index=False)["quantity"].sum().round({"quantity": 0})
