@@ -1,0 +1,102 @@
+"""Why a consensus number is what it is, in words a planner can read out in the meeting."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import pandas as pd
+from sqlalchemy import select
+
+from consensus.errors import NotFound
+from consensus.store import frames
+from consensus.store.db import session_scope
+from consensus.store.models import AlignmentTrace, CellSource, ConsensusLine, Decision, Item, WeightRecord
+from consensus.workflow.publish import latest_run
+
+
+@dataclass(frozen=True)
+class CellExplanation:
+    """Everything stored about one cell of a run, and its plain-words reading."""
+
+    line: dict
+    sources: pd.DataFrame
+    traces: pd.DataFrame
+    weights: pd.DataFrame
+    decisions: pd.DataFrame
+    text: str
+
+
+def _cell_rows(session, model, run_id: int, item: str, location: str, period: str) -> pd.DataFrame:
+    t = model.__table__
+    cols = [c.name for c in t.columns if c.name not in ("id", "run_id")]
+    return frames.read_frame(session, select(*[t.c[c] for c in cols]).where(t.c.run_id == run_id)
+                             .where(t.c.item == item).where(t.c.location == location).where(t.c.period == period),
+                             cols)
+
+
+def _fmt(x: float) -> str:
+    return f"{x:,.0f}" if abs(x) >= 10 else f"{x:,.1f}"
+
+
+def explain_cell(cycle: str, *, item: str, location: str, period: str, url=None) -> CellExplanation:
+    """Gather the audit of one cell and write it as a short explanation."""
+    with session_scope(url) as session:
+        run = latest_run(session, cycle)
+        lines = _cell_rows(session, ConsensusLine, run.id, item, location, period)
+        if lines.empty:
+            raise NotFound(f"no consensus for item {item} at {location} in {period} in cycle {cycle} (run #{run.id})")
+        line = lines.iloc[0].to_dict()
+        sources = _cell_rows(session, CellSource, run.id, item, location, period).sort_values("source")
+        traces = _cell_rows(session, AlignmentTrace, run.id, item, location, period).sort_values(["source", "row"])
+        family = session.get(Item, item).family
+        w = WeightRecord.__table__
+        weights = frames.read_frame(session, select(*[w.c[c] for c in (
+            "segment", "lag_bucket", "source", "weight", "psi", "n_cycles", "n_errors", "mad", "mse", "basis", "note")])
+            .where(w.c.run_id == run.id).where(w.c.segment.in_([family, item, "all"])),
+            ["segment", "lag_bucket", "source", "weight", "psi", "n_cycles", "n_errors", "mad", "mse", "basis", "note"])
+        d = Decision.__table__
+        decisions = frames.read_frame(session, select(d.c.author, d.c.kind, d.c.amount, d.c.reason, d.c.item,
+                                                      d.c.family, d.c.location, d.c.region)
+                                      .where(d.c.cycle == cycle).where(d.c.period == period)
+                                      .where((d.c.item == item) | (d.c.family == family)),
+                                      ["author", "kind", "amount", "reason", "item", "family", "location", "region"])
+        spec = run.spec
+    text = _write(cycle, run.id, run.status, spec, line, family, sources, traces, weights, decisions)
+    return CellExplanation(line, sources, traces, weights, decisions, text)
+
+
+def _write(cycle, run_id, status, spec, line, family, sources, traces, weights, decisions) -> str:
+    out = [f"Cycle {cycle}, run #{run_id} ({status}): item {line['item']} at {line['location']}, "
+           f"{line['period']} (lag {int(line['lag'])})",
+           f"Consensus {_fmt(line['consensus'])} units."]
+    if pd.notna(line.get("lower_80")):
+        out[-1] += (f" 80% band {_fmt(line['lower_80'])}–{_fmt(line['upper_80'])}, 95% band "
+                    f"{_fmt(line['lower_95'])}–{_fmt(line['upper_95'])} ({line['band_method']}).")
+    scheme = spec.get("weights", {}).get("scheme", "?")
+    out.append(f"Weights: scheme {scheme}, family {family}; each source's weight comes from its accuracy "
+               f"over the last {spec.get('weights', {}).get('window_cycles', '?')} cycles at this lag.")
+    for s in sources.itertuples(index=False):
+        why = s.weight_basis or ""
+        out.append(f"  {s.source:<12} {_fmt(s.value):>10} units  weight {s.weight:6.1%}  "
+                   f"adds {_fmt(s.contribution):>9}  {why}")
+        if s.bias_correction:
+            out.append(f"  {'':<12} bias correction {s.bias_correction:+,.1f} units")
+    if line.get("missing_sources"):
+        out.append(f"Missing here: {line['missing_sources']}; the weights of the sources present were "
+                   f"renormalised to sum to 100%.")
+    if len(sources) > 1:
+        lo, hi = sources["value"].min(), sources["value"].max()
+        flag = "over the review threshold, flagged" if line.get("flagged") else "within the review threshold"
+        out.append(f"Sources range {_fmt(lo)}–{_fmt(hi)} units, a spread of {line['spread_ratio']:.0%} of the "
+                   f"consensus ({flag}).")
+    if not traces.empty:
+        out.append("How each submitted number reached this cell:")
+        for t in traces.itertuples(index=False):
+            where = f"row {int(t.row)}" if pd.notna(t.row) else ""
+            out.append(f"  {t.source}: {t.submitted} ({where}) × share {t.share:.2%} = {_fmt(t.quantity)} units"
+                       + (f"; {t.share_basis}" if t.share_basis else ""))
+    if pd.notna(line.get("before_override")):
+        out.append(f"Changed in the meeting from {_fmt(line['before_override'])} units:")
+        for d in decisions.itertuples(index=False):
+            out.append(f"  {d.kind} {d.amount:+,.0f} by {d.author}: {d.reason}")
+    return "\n".join(out)

@@ -1,0 +1,215 @@
+"""Compute and store a cycle's consensus: statistical source, alignment, weights, combination, bands, audit.
+
+The run is one transaction.  Its settings (:class:`RunSpec`) and the ids and
+hashes of every submission it read are stored with it, so the same inputs give
+the same numbers and every number can be explained from stored rows.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import asdict, dataclass, field
+
+import numpy as np
+import pandas as pd
+from sqlalchemy import select, update
+
+from consensus import periods
+from consensus.errors import InvalidSpec
+from consensus.methods import accuracy, combine, events, intervals
+from consensus.methods.weights import WeightSpec, estimate_weights
+from consensus.store import frames
+from consensus.store.db import session_scope
+from consensus.store.models import (
+    AlignmentTrace,
+    CellSource,
+    ConsensusLine,
+    ConsensusRun,
+    Cycle,
+    Submission,
+    WeightRecord,
+)
+from consensus.workflow import decisions
+from consensus.workflow.align import align_lines
+from consensus.workflow.cycles import get_cycle
+from consensus.workflow.statistical_source import NAIVE, STATISTICAL, ensure_statistical
+
+COMBINED_SOURCES = ("sales", "marketing", "dc", STATISTICAL)
+RECONCILIATIONS = ("bottom_up",)
+
+
+@dataclass(frozen=True)
+class RunSpec:
+    """Every setting of a consensus run; stored with the run."""
+
+    weights: WeightSpec = field(default_factory=WeightSpec)
+    band_levels: tuple[float, ...] = (0.8, 0.95)
+    mix_window_months: int = 12
+    disagreement_threshold: float = 0.5
+    reconciliation: str = "bottom_up"
+
+    def __post_init__(self) -> None:
+        if self.reconciliation not in RECONCILIATIONS:
+            raise InvalidSpec(f"reconciliation must be one of {', '.join(RECONCILIATIONS)}")
+        if not all(0 < level < 1 for level in self.band_levels):
+            raise InvalidSpec("band levels must lie strictly between 0 and 1")
+        if not 1 <= self.mix_window_months <= 60:
+            raise InvalidSpec("mix window must be 1 to 60 months")
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+
+@dataclass
+class RunSummary:
+    run_id: int
+    cycle: str
+    cells: int
+    sources: list[str]
+    total: float
+    flagged: int
+    warnings: list[str]
+
+    def line(self) -> str:
+        return (f"cycle {self.cycle}: run #{self.run_id}, {self.cells:,} cells from {', '.join(self.sources)}; "
+                f"total {self.total:,.0f} units; {self.flagged} cells flagged for disagreement")
+
+
+def _previous_consensus(session, cycles: list[str]) -> pd.DataFrame:
+    """The latest stored run of each earlier cycle, as source 'consensus' (published runs first)."""
+    runs = frames.read_frame(session, select(ConsensusRun.__table__.c.id, ConsensusRun.__table__.c.cycle,
+                                             ConsensusRun.__table__.c.status)
+                             .where(ConsensusRun.__table__.c.cycle.in_(cycles)), ["id", "cycle", "status"])
+    if runs.empty:
+        return pd.DataFrame(columns=["source", "cycle", "item", "location", "period", "quantity"])
+    runs["rank"] = runs["status"].map({"published": 0, "draft": 1, "superseded": 2})
+    chosen = runs.sort_values(["cycle", "rank", "id"], ascending=[True, True, False]).drop_duplicates("cycle")
+    cl = ConsensusLine.__table__
+    lines = frames.read_frame(session, select(cl.c.run_id, cl.c.item, cl.c.location, cl.c.period, cl.c.consensus)
+                              .where(cl.c.run_id.in_(chosen["id"].tolist())),
+                              ["run_id", "item", "location", "period", "consensus"])
+    lines = lines.merge(chosen[["id", "cycle"]], left_on="run_id", right_on="id")
+    return lines.rename(columns={"consensus": "quantity"}).assign(source="consensus")[
+        ["source", "cycle", "item", "location", "period", "quantity"]]
+
+
+def gather_history(session, cycle: Cycle, *, window: int, items, locations, actuals, mix_window_months,
+                   progress: Callable[[str], None] | None = None) -> dict:
+    """Every cycle in the window aligned to planning grain, with the statistical source made where missing."""
+    names = [periods.shift_month(cycle.name, -k) for k in range(window, -1, -1)]
+    cycles = [c for c in (session.get(Cycle, n) for n in names) if c is not None]
+    made = []
+    for c in cycles:
+        if progress:
+            progress(f"statistical forecast {c.name}")
+        made.append(ensure_statistical(session, c, actuals=actuals, items=items))
+    session.flush()
+    lines = frames.active_forecast_lines(session, cycles=[c.name for c in cycles])
+    event_rows = frames.active_event_lines(session, cycles=[c.name for c in cycles])
+    aligned, traces, warnings, uplift_audit = [], None, [], None
+    for c in cycles:
+        if progress:
+            progress(f"align {c.name}")
+        known = actuals[actuals["period"] <= c.name]
+        result = align_lines(lines[lines["cycle"] == c.name], cycle=c.name, items=items, locations=locations,
+                             actuals=known, mix_window_months=mix_window_months)
+        frame = result.aligned
+        cycle_events = event_rows[event_rows["cycle"] == c.name]
+        if not cycle_events.empty:
+            stat = frame[frame["source"] == STATISTICAL]
+            adjusted, audit = events.apply_event_uplifts(stat, cycle_events, items=items, locations=locations)
+            # the un-uplifted statistical forecast is kept as its own reference series
+            frame = pd.concat([frame[frame["source"] != STATISTICAL],
+                               stat.assign(source="statistical_base"),
+                               adjusted.assign(source=STATISTICAL, cycle=c.name)], ignore_index=True)
+            if c.name == cycle.name:
+                uplift_audit = audit
+        aligned.append(frame)
+        if c.name == cycle.name:
+            traces, warnings = result.traces, result.warnings
+    history = pd.concat(aligned, ignore_index=True) if aligned else pd.DataFrame()
+    return {"aligned": history, "traces": traces, "warnings": warnings, "made": made,
+            "uplift_audit": uplift_audit, "cycles": [c.name for c in cycles]}
+
+
+def measure_history(session, cycle: Cycle, *, spec: "RunSpec", items, locations, actuals,
+                    progress: Callable[[str], None] | None = None) -> tuple[dict, pd.DataFrame]:
+    """The window's aligned sources and every past error known at this cycle (sources, consensus, naive)."""
+    gathered = gather_history(session, cycle, window=spec.weights.window_cycles, items=items, locations=locations,
+                              actuals=actuals, mix_window_months=spec.mix_window_months, progress=progress)
+    history = gathered["aligned"]
+    past = history[history["cycle"] < cycle.name]
+    past = pd.concat([past, _previous_consensus(session, gathered["cycles"][:-1])], ignore_index=True)
+    known_actuals = actuals[actuals["period"] <= cycle.name]
+    errors = accuracy.forecast_errors(past[["source", "cycle", "item", "location", "period", "quantity"]],
+                                      known_actuals)
+    return gathered, errors
+
+
+def run_cycle(cycle_name: str, *, url=None, spec: RunSpec | None = None,
+              progress: Callable[[str], None] | None = None) -> RunSummary:
+    """Compute, store and return the consensus of one cycle as a new draft run."""
+    spec = spec or RunSpec()
+    with session_scope(url) as session:
+        cycle = get_cycle(session, cycle_name)
+        items, locations = frames.load_items(session), frames.load_locations(session)
+        actuals = frames.load_actuals(session)
+        gathered, errors = measure_history(session, cycle, spec=spec, items=items, locations=locations,
+                                           actuals=actuals, progress=progress)
+        history = gathered["aligned"]
+        current = history[(history["cycle"] == cycle.name) & history["source"].isin(COMBINED_SOURCES)]
+        if current.empty:
+            raise InvalidSpec(f"cycle {cycle.name} has no forecast from any source and no order history")
+        if progress:
+            progress("weights")
+        sources = sorted(current["source"].unique())
+        weights = estimate_weights(errors[errors["source"].isin(sources)], cycle=cycle.name, items=items,
+                                   locations=locations, spec=spec.weights, sources=sources)
+        combined = combine.combine_sources(current, weights, items=items, spec=spec.weights,
+                                           threshold=spec.disagreement_threshold)
+        table = combined.consensus
+        if progress:
+            progress("error bands")
+        band_errors = _band_errors(errors)
+        banded = intervals.empirical_bands(table, band_errors, levels=spec.band_levels)
+        table = table.merge(banded[["item", "location", "period"] + _band_columns(spec.band_levels) + ["band_method"]],
+                            on=["item", "location", "period"], how="left")
+        table, applied = decisions.apply_decisions(session, cycle.name, table, items=items, locations=locations)
+        run = _store_run(session, cycle, spec=spec, table=table, combined=combined, gathered=gathered,
+                         applied=applied)
+        return RunSummary(run.id, cycle.name, len(table), sources, float(table["consensus"].sum()),
+                          int(table["flagged"].sum()), gathered["warnings"])
+
+
+def _band_columns(levels) -> list[str]:
+    cols = []
+    for level in levels:
+        pct = int(round(level * 100))
+        cols += [f"lower_{pct}", f"upper_{pct}"]
+    return cols
+
+
+def _band_errors(errors: pd.DataFrame) -> pd.DataFrame:
+    """Past errors that the bands are drawn from: the consensus's own where it has history, else the statistical."""
+    own = errors[errors["source"] == "consensus"]
+    return own if len(own) >= 30 else errors[errors["source"].isin(["consensus", STATISTICAL])]
+
+
+def _store_run(session, cycle: Cycle, *, spec: RunSpec, table: pd.DataFrame, combined, gathered, applied) -> ConsensusRun:
+    cr = ConsensusRun.__table__
+    session.execute(update(cr).where(cr.c.cycle == cycle.name).where(cr.c.status == "draft").values(status="superseded"))
+    inputs = frames.read_frame(session, select(Submission.__table__.c.id, Submission.__table__.c.source,
+                                               Submission.__table__.c.filename, Submission.__table__.c.sha256)
+                               .where(Submission.__table__.c.id.in_(
+                                   gathered["traces"]["submission_id"].dropna().astype(int).unique().tolist())),
+                               ["id", "source", "filename", "sha256"])
+    run = ConsensusRun(cycle=cycle.name, spec=spec.to_dict(), inputs=inputs.to_dict("records"),
+                       notes={"warnings": gathered["warnings"], "decisions_applied": applied,
+                              "statistical": [m for m in gathered["made"] if m["made"]]})
+    session.add(run)
+    session.flush()
+    frames.write_frame(session, ConsensusLine, table.assign(run_id=run.id))
+    frames.write_frame(session, CellSource, combined.contributions.assign(run_id=run.id))
+    frames.write_frame(session, AlignmentTrace, gathered["traces"].assign(run_id=run.id))
+    frames.write_frame(session, WeightRecord, combined.weights.assign(run_id=run.id))
+    return run
