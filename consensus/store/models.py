@@ -246,3 +246,10 @@ class Decision(SQLModel, table=True):
     kind: str = "set"  # set | delta | pct
     amount: float = 0.0
     reason: str
+
+
+class Setting(SQLModel, table=True):
+    """A named setting of this store, such as the company name printed on the pack."""
+
+    key: str = Field(primary_key=True)
+    value: str
