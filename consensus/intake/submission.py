@@ -140,7 +140,9 @@ def submit_file(path: Path | str, *, url=None, source: str | None = None, cycle:
     try:
         raw = reader.read_table(path)
         file_format = dict(raw.file_format)
-        kind = checks.detect_file_kind(raw)
+        kind = "events" if "event" in raw.frame.columns else "forecast"
+        if "date" in raw.frame.columns or {"family", "unit_price"} <= set(raw.frame.columns):
+            kind = checks.detect_file_kind(raw)
         if kind not in ("forecast", "events"):
             raise InputRejected(file=path.name, problems=[Problem(
                 path.name, None, None, kind,
