@@ -1,0 +1,646 @@
+"""The statistical forecast: one method per item × location, chosen on its own history.
+
+:func:`forecast_statistical` is the public entry point.  For a cycle ``C`` it
+uses only order history up to and including ``C`` (later rows are dropped
+first, so a backcast made at a past cycle cannot peek), and forecasts
+``C+1 … C+horizon``.
+
+How each series is forecast
+---------------------------
+1. **Span.**  A series starts at its first month with demand (> 0); months
+   from then to ``C`` without a row are zero demand.  ``n_months`` is the
+   span length.
+2. **Profile.**  Pattern (smooth / erratic / intermittent / lumpy), trend
+   and seasonality from :mod:`consensus.methods.demand_pattern`.
+3. **New items.**  A span shorter than :data:`NEW_ITEM_MONTHS` (6) months is
+   too short to fit or hold out anything: the forecast is the family's
+   seasonal profile scaled to the item's own demand so far (see
+   :func:`forecast_new_items`); a series with no demand at all gets zero.
+4. **Candidates.**  Smooth and erratic series: naive, seasonal naive, moving
+   average (3 months), SES, damped Holt, plus Holt when a trend was found
+   and Holt–Winters (additive; multiplicative when the span is strictly
+   positive) when seasonality was found.  Intermittent and lumpy series:
+   Croston, SBA, SES, moving average.  ``methods=`` restricts the set; when
+   the restriction leaves nothing that suits a series' profile, any
+   requested method its data allow is used, and failing that the new-item
+   fallback.
+5. **Fit.**  Smoothing parameters by grid search minimising in-sample
+   one-step squared error, all series at once (see
+   :func:`consensus.methods.smoothing.fit_smoothing`); Croston/SBA likewise.
+6. **Rolling-origin holdout.**  The last ``K = min(12, n_months // 2)``
+   months are held out.  Parameters fitted on the months before them are
+   kept fixed while the state rolls forward month by month; from every
+   origin the method forecasts up to ``min(horizon, K)`` months ahead
+   (Tashman 2000, "Out-of-sample tests of forecasting accuracy",
+   International Journal of Forecasting 16(4)).  The method with the lowest
+   holdout WAPE, ``Σ|actual − forecast| / Σ|actual|`` over all origins and
+   lags, is chosen; ties go to the simpler method (earlier in
+   :data:`CANDIDATE_METHODS`).
+7. **Forecast.**  The chosen method is refitted on the whole span and
+   forecasts the horizon; negative values are set to zero.
+8. **Intervals.**  Empirical quantiles of the chosen method's holdout errors
+   (actual − forecast) at each lag (Williams & Goodman 1971; Lee & Scholtes
+   2014), added to the forecast and floored at zero: the 80 % interval is
+   the 10 % … 90 % quantiles, the 95 % interval 2.5 % … 97.5 % (linear
+   interpolation between order statistics, numpy's default).  A lag with
+   fewer than :data:`MIN_INTERVAL_ERRORS` holdout errors (or beyond the
+   holdout) reuses the last lag that had enough, widened by √(h/h₀) (the
+   random-walk growth of forecast error, a stated extrapolation, not an
+   empirical quantile).  New-item fallbacks have no holdout and get no
+   interval (NaN).
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass
+from typing import Sequence
+
+import numpy as np
+import pandas as pd
+
+from consensus.errors import InvalidSpec
+from consensus.methods import intermittent, smoothing
+from consensus.methods.demand_pattern import classify_demand, detect_seasonality, detect_trend
+from consensus.periods import is_month, month_index, month_indexes, month_names
+
+#: Methods a series can be fitted with, simplest first (ties go to the earlier one).
+CANDIDATE_METHODS: tuple[str, ...] = (
+    "naive",
+    "seasonal_naive",
+    "moving_average",
+    "ses",
+    "croston",
+    "sba",
+    "holt_damped",
+    "holt",
+    "holt_winters_add",
+    "holt_winters_mul",
+)
+#: Methods the tool falls back to when no candidate can be fitted.
+FALLBACK_METHODS: tuple[str, ...] = ("new_item_profile", "zero_demand")
+#: The closed set of names that can appear in the ``method`` columns.
+METHODS: tuple[str, ...] = CANDIDATE_METHODS + FALLBACK_METHODS
+
+NEW_ITEM_MONTHS = 6
+HOLDOUT_MONTHS = 12
+MOVING_AVERAGE_MONTHS = 3
+MIN_INTERVAL_ERRORS = 3
+#: Series fitted together; bounds memory (grid × series × season arrays).
+BLOCK_SERIES = 2000
+
+_INTERMITTENT_PATTERNS = ("intermittent", "lumpy")
+_PARAMETER_COLUMNS = ("alpha", "beta", "gamma", "phi")
+
+
+@dataclass(frozen=True)
+class StatisticalResult:
+    """The statistical source for one cycle.
+
+    * ``forecast``: [item, location, period, lag, quantity, method]
+    * ``intervals``: [item, location, period, lower_80, upper_80, lower_95, upper_95]
+      (one lower/upper pair per requested level), empirical holdout quantiles
+    * ``series``: [item, location, pattern, has_trend, has_seasonality, method,
+      alpha, beta, gamma, phi, holdout_wape, n_months, fallback]
+    * ``seasonal_naive``: [item, location, period, lag, quantity], the
+      reference forecast for MASE and forecast value added (``y_{C+h−m⌈h/m⌉}``;
+      the last month where the span is shorter than a season, zero without
+      demand)
+    """
+
+    forecast: pd.DataFrame
+    intervals: pd.DataFrame
+    series: pd.DataFrame
+    seasonal_naive: pd.DataFrame
+
+
+@dataclass(frozen=True)
+class DemandMatrix:
+    """Monthly history as a dense matrix: row per (item, location), column per month up to the cycle.
+
+    ``first_month`` is the month index of column 0; the last column is the
+    cycle.  ``start[i]`` is the column of series i's first demand (``n_months``
+    of the matrix when it has none).
+    """
+
+    keys: pd.DataFrame
+    y: np.ndarray
+    start: np.ndarray
+    first_month: int
+
+
+def build_demand_matrix(history: pd.DataFrame, *, cycle: str) -> DemandMatrix:
+    """Turn long actuals [item, location, period, quantity] into a :class:`DemandMatrix`.
+
+    Rows after ``cycle`` are dropped first; duplicate rows of a month are
+    summed; months without a row are zero.  Raises ``InvalidSpec`` when a
+    column is missing, a period is not "YYYY-MM" or a quantity is not a
+    finite number.
+    """
+    missing = {"item", "location", "period", "quantity"} - set(history.columns)
+    if missing:
+        raise InvalidSpec(f"history lacks column(s) {sorted(missing)}; expected [item, location, period, quantity]")
+    periods = history["period"].astype(str).str.strip()
+    bad = ~periods.str.fullmatch(r"\d{4}-(0[1-9]|1[0-2])")
+    if bad.any():
+        raise InvalidSpec(f"history period {periods[bad].iloc[0]!r} is not a month in YYYY-MM form")
+    quantity = pd.to_numeric(history["quantity"], errors="coerce").to_numpy(dtype=float)
+    if not np.isfinite(quantity).all():
+        raise InvalidSpec("history has a quantity that is not a finite number")
+    cycle_index = month_index(cycle)
+    month = month_indexes(periods)
+    known = month <= cycle_index
+    frame = pd.DataFrame(
+        {
+            "item": history["item"].to_numpy()[known],
+            "location": history["location"].to_numpy()[known],
+            "month": month[known],
+            "quantity": quantity[known],
+        }
+    )
+    grouped = frame.groupby(["item", "location"], sort=True)
+    code = grouped.ngroup().to_numpy()
+    keys = grouped.size().reset_index()[["item", "location"]]
+    first_month = int(frame["month"].min()) if len(frame) else cycle_index
+    n_months = cycle_index - first_month + 1
+    y = np.zeros((len(keys), n_months))
+    np.add.at(y, (code, frame["month"].to_numpy() - first_month), frame["quantity"].to_numpy())
+    has_demand = y > 0
+    start = np.where(has_demand.any(axis=1), np.argmax(has_demand, axis=1), n_months)
+    return DemandMatrix(keys=keys, y=y, start=start.astype(int), first_month=first_month)
+
+
+def forecast_benchmark(
+    y: np.ndarray, start: np.ndarray, *, method: str, origins: np.ndarray, horizon: int, season_length: int = 12
+) -> np.ndarray:
+    """Naive, seasonal naive or moving-average forecasts ``(n_series, len(origins), horizon)``.
+
+    * naive: ``ŷ_{o+h} = y_o``;
+    * seasonal naive: ``ŷ_{o+h} = y_{o+h−m·⌈h/m⌉}`` (Hyndman & Athanasopoulos,
+      *Forecasting: Principles and Practice*, 3rd ed., section 5.2), naive
+      where that month precedes the span;
+    * moving average: mean of the last 3 months of the span up to ``o``.
+    """
+    y = np.asarray(y, dtype=float)
+    start = np.asarray(start, dtype=int)
+    origins = np.asarray(origins, dtype=int)
+    n_series = y.shape[0]
+    rows = np.arange(n_series)[:, None, None]
+    last = y[:, origins][:, :, None]  # (n, K, 1)
+    if method == "naive":
+        return np.broadcast_to(last, (n_series, len(origins), horizon)).copy()
+    if method == "seasonal_naive":
+        h = np.arange(1, horizon + 1)
+        back = h - season_length * np.ceil(h / season_length).astype(int)  # in −m+1 … 0
+        idx = origins[:, None] + back[None, :]  # (K, H)
+        inside = idx[None, :, :] >= start[:, None, None]
+        seasonal = y[rows, np.maximum(idx, 0)[None, :, :]]
+        return np.where(inside, seasonal, last)
+    if method == "moving_average":
+        offsets = np.arange(MOVING_AVERAGE_MONTHS)
+        idx = origins[:, None] - offsets[None, :]  # (K, W)
+        inside = idx[None, :, :] >= start[:, None, None]
+        values = np.where(inside, y[rows, np.maximum(idx, 0)[None, :, :]], 0.0)
+        mean = values.sum(axis=2) / np.maximum(inside.sum(axis=2), 1)
+        return np.broadcast_to(mean[:, :, None], (n_series, len(origins), horizon)).copy()
+    raise InvalidSpec(f"unknown benchmark method {method!r}; expected naive, seasonal_naive or moving_average")
+
+
+def seasonal_profiles(
+    y: np.ndarray, start: np.ndarray, group: np.ndarray, *, first_month: int, season_length: int = 12
+) -> np.ndarray:
+    """Seasonal index per group and calendar slot, shape (n_groups, m), mean 1; ones where unknown.
+
+    Classical ratio-to-moving-average decomposition (Persons 1919; Makridakis,
+    Wheelwright & Hyndman 1998, ch. 3) of each group's total demand: the
+    ratio of the total to its centred m-month moving average (2×m for even
+    m), averaged per calendar slot and normalised to mean 1.  A group needs
+    every slot covered by at least one ratio, i.e. two seasons of history;
+    otherwise its profile is flat.  Slot of column t is
+    ``(first_month + t) mod m``.  ``group`` is −1 for series in no group.
+    """
+    y = np.asarray(y, dtype=float)
+    group = np.asarray(group, dtype=int)
+    m = int(season_length)
+    n_groups = int(group.max()) + 1 if len(group) and group.max() >= 0 else 0
+    n_months = y.shape[1]
+    profiles = np.ones((n_groups, m))
+    if n_groups == 0:
+        return profiles
+    known = group >= 0
+    totals = np.zeros((n_groups, n_months))
+    np.add.at(totals, group[known], np.where(np.arange(n_months)[None, :] >= start[known, None], y[known], 0.0))
+    group_start = np.full(n_groups, n_months)
+    np.minimum.at(group_start, group[known], start[known])
+    weights = np.ones(m + 1) / m if m % 2 == 0 else np.ones(m) / m
+    if m % 2 == 0:
+        weights[0] = weights[-1] = 0.5 / m
+    half = len(weights) // 2
+    cma = np.full((n_groups, n_months), np.nan)
+    centre = np.arange(half, n_months - half)
+    if len(centre):
+        acc = np.zeros((n_groups, len(centre)))
+        for k, w in enumerate(weights):
+            acc += w * totals[:, centre - half + k]
+        cma[:, centre] = acc
+    covered = np.arange(n_months)[None, :] - half >= group_start[:, None]
+    with np.errstate(all="ignore"):
+        ratio = np.where(covered & (cma > 0), totals / cma, np.nan)
+    slot = (first_month + np.arange(n_months)) % m
+    sums = np.zeros((n_groups, m))
+    counts = np.zeros((n_groups, m))
+    finite = np.isfinite(ratio)
+    for s in range(m):
+        cols = slot == s
+        sums[:, s] = np.where(finite[:, cols], ratio[:, cols], 0.0).sum(axis=1)
+        counts[:, s] = finite[:, cols].sum(axis=1)
+    good = (counts > 0).all(axis=1)
+    with np.errstate(all="ignore"):
+        index = sums / counts
+        index = index / index.mean(axis=1, keepdims=True)
+    profiles[good] = index[good]
+    return profiles
+
+
+def forecast_new_items(
+    y: np.ndarray, start: np.ndarray, profile: np.ndarray, *, first_month: int, horizon: int, season_length: int = 12
+) -> np.ndarray:
+    """Forecasts ``(n_series, horizon)`` for short histories: seasonal profile × deseasonalised mean.
+
+    ``level = mean_t (y_t / index_{slot(t)})`` over the span, then
+    ``ŷ_{T+h} = level · index_{slot(T+h)}``; ``profile`` is each series'
+    ``(n_series, m)`` index (ones when its family has none).  Zero for a
+    series without demand.
+    """
+    y = np.asarray(y, dtype=float)
+    n_series, n_months = y.shape
+    m = int(season_length)
+    span = np.arange(n_months)[None, :] >= np.asarray(start)[:, None]
+    slot = (first_month + np.arange(n_months)) % m
+    index = profile[:, slot]
+    with np.errstate(all="ignore"):
+        level = np.where(span, y / index, 0.0).sum(axis=1) / span.sum(axis=1)
+    level = np.nan_to_num(level)
+    ahead = (first_month + n_months - 1 + np.arange(1, horizon + 1)) % m
+    return np.maximum(level[:, None] * profile[:, ahead], 0.0)
+
+
+def empirical_intervals(
+    point: np.ndarray, errors: np.ndarray, *, levels: Sequence[float]
+) -> dict[float, tuple[np.ndarray, np.ndarray]]:
+    """Lower/upper bounds ``(n_series, horizon)`` per level from holdout errors ``(n_series, n_origins, n_lags)``.
+
+    Bounds are ``point + q_{(1−L)/2}(e_h)`` and ``point + q_{(1+L)/2}(e_h)``
+    floored at 0, with ``e_h`` the finite errors at lag h; lags with fewer
+    than :data:`MIN_INTERVAL_ERRORS` errors, or beyond the last error lag,
+    reuse the last lag h₀ that had enough with quantiles scaled by √(h/h₀).
+    Series without such a lag get NaN.
+    """
+    point = np.asarray(point, dtype=float)
+    errors = np.asarray(errors, dtype=float)
+    n_series, horizon = point.shape
+    n_lags = errors.shape[2]
+    counts = np.isfinite(errors).sum(axis=1)  # (n, n_lags)
+    enough = counts >= MIN_INTERVAL_ERRORS
+    lag_numbers = np.arange(1, n_lags + 1)
+    last_good = np.maximum.accumulate(np.where(enough, lag_numbers[None, :], 0), axis=1)  # (n, n_lags)
+    tail = np.repeat(last_good[:, -1:], max(horizon - n_lags, 0), axis=1)
+    base_lag = np.concatenate([last_good, tail], axis=1)[:, :horizon]  # h₀ for each h
+    h = np.arange(1, horizon + 1)[None, :]
+    scale = np.sqrt(h / np.maximum(base_lag, 1))
+    probs = sorted({p for level in levels for p in ((1 - level) / 2, (1 + level) / 2)})
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN lags are handled below
+        quantiles = np.nanquantile(errors, probs, axis=1) if n_lags else np.full((len(probs), n_series, 0), np.nan)
+    rows = np.arange(n_series)[:, None]
+    out: dict[float, tuple[np.ndarray, np.ndarray]] = {}
+    for level in levels:
+        bounds = []
+        for p in ((1 - level) / 2, (1 + level) / 2):
+            q = quantiles[probs.index(p)]
+            q = np.where(enough, q, np.nan) if n_lags else q
+            picked = q[rows, np.maximum(base_lag - 1, 0)] if n_lags else np.full((n_series, horizon), np.nan)
+            picked = np.where(base_lag > 0, picked * scale, np.nan)
+            bounds.append(np.maximum(point + picked, 0.0))
+        out[level] = (bounds[0], bounds[1])
+    return out
+
+
+def _validate(cycle, horizon, methods, season_length, levels) -> tuple[str, ...]:
+    if not isinstance(cycle, str) or not is_month(cycle):
+        raise InvalidSpec(f"cycle must be a month in YYYY-MM form, got {cycle!r}")
+    if isinstance(horizon, bool) or not isinstance(horizon, (int, np.integer)) or horizon < 1:
+        raise InvalidSpec(f"horizon must be a positive whole number of months, got {horizon!r}")
+    if isinstance(season_length, bool) or not isinstance(season_length, (int, np.integer)) or season_length < 2:
+        raise InvalidSpec(f"season_length must be a whole number ≥ 2, got {season_length!r}")
+    for level in levels:
+        if not (0 < float(level) < 1):
+            raise InvalidSpec(f"interval levels must lie strictly between 0 and 1, got {level!r}")
+    if len(set(round(100 * float(v), 6) for v in levels)) != len(levels):
+        raise InvalidSpec(f"interval levels must be distinct, got {list(levels)!r}")
+    if methods is None:
+        return CANDIDATE_METHODS
+    if isinstance(methods, str):
+        raise InvalidSpec("methods must be a sequence of method names, not one string")
+    chosen = tuple(methods)
+    unknown = [m for m in chosen if m not in CANDIDATE_METHODS]
+    if unknown or not chosen:
+        raise InvalidSpec(f"unknown method(s) {unknown or chosen!r}; expected some of {list(CANDIDATE_METHODS)}")
+    return tuple(m for m in CANDIDATE_METHODS if m in chosen)
+
+
+def _level_label(level: float) -> str:
+    percent = 100 * float(level)
+    return f"{percent:g}".replace(".", "_")
+
+
+@dataclass
+class _BlockResult:
+    method: np.ndarray  # index into CANDIDATE_METHODS, −1 where nothing fitted
+    params: dict[str, np.ndarray]
+    point: np.ndarray  # (n, horizon)
+    errors: np.ndarray  # (n, n_origins, n_lags) holdout errors of the chosen method
+    wape: np.ndarray
+
+
+def _select_block(
+    y: np.ndarray,
+    start: np.ndarray,
+    allowed: np.ndarray,
+    *,
+    horizon: int,
+    season_length: int,
+) -> _BlockResult:
+    """Fit, hold out, choose and forecast every allowed candidate for a block of series.
+
+    ``allowed`` is ``(n, n_candidates)``: which methods each series may use.
+    """
+    n_series, n_months = y.shape
+    last = n_months - 1
+    span_months = n_months - start
+    holdout = np.minimum(HOLDOUT_MONTHS, span_months // 2)
+    train_end = n_months - holdout  # first held-out column
+    train_months = train_end - start
+    n_lags = min(horizon, HOLDOUT_MONTHS)
+    origins = np.arange(max(0, last - HOLDOUT_MONTHS), last)  # holdout origins
+    target = origins[:, None] + np.arange(1, n_lags + 1)[None, :]  # (K, L)
+    valid = (origins[None, :, None] >= (train_end - 1)[:, None, None]) & (target[None, :, :] <= last)
+    actual = y[:, np.minimum(target, last)]  # (n, K, L)
+    denominator = np.where(valid, np.abs(actual), 0.0).sum(axis=(1, 2))
+
+    scores = np.full((n_series, len(CANDIDATE_METHODS)), np.inf)
+    holdout_errors: dict[int, np.ndarray] = {}
+    full_params: dict[int, dict[str, np.ndarray]] = {}
+    members: dict[int, np.ndarray] = {}
+    for k, method in enumerate(CANDIDATE_METHODS):
+        rows = np.flatnonzero(allowed[:, k])
+        if not len(rows):
+            continue
+        ys, ss = y[rows], start[rows]
+        if method in ("naive", "seasonal_naive", "moving_average"):
+            fc = forecast_benchmark(ys, ss, method=method, origins=origins, horizon=n_lags, season_length=season_length)
+            full_params[k] = {}
+        elif method in intermittent.INTERMITTENT_METHODS:
+            fit = intermittent.fit_croston(
+                ys, ss, method=method, fit_ends=(train_end[rows], np.full(len(rows), n_months)),
+                init_available=train_months[rows],
+            )
+            fc = intermittent.forecast_croston(
+                ys, ss, method=method, alpha=fit.alpha[0], init_available=train_months[rows],
+                origins=origins, horizon=n_lags,
+            )
+            full_params[k] = {"alpha": fit.alpha[1]}
+            fc = np.where(np.isfinite(fit.sse[0])[:, None, None], fc, np.nan)
+        else:
+            fit = smoothing.fit_smoothing(
+                ys, ss, method=method, fit_ends=(train_end[rows], np.full(len(rows), n_months)),
+                init_available=train_months[rows], season_length=season_length,
+            )
+            fc = smoothing.forecast_smoothing(
+                ys, ss, method=method, params=fit.params[0], available=train_months[rows],
+                origins=origins, horizon=n_lags, season_length=season_length,
+            )
+            full_params[k] = fit.params[1]
+            fc = np.where(np.isfinite(fit.sse[0])[:, None, None], fc, np.nan)
+        err = np.where(valid[rows], actual[rows] - np.maximum(fc, 0.0), np.nan)
+        broken = (valid[rows] & ~np.isfinite(err)).any(axis=(1, 2))
+        scores[rows, k] = np.where(broken, np.inf, np.nansum(np.abs(err), axis=(1, 2)))
+        holdout_errors[k] = err
+        members[k] = rows
+
+    chosen = np.argmin(scores, axis=1)
+    fitted_any = np.isfinite(scores[np.arange(n_series), chosen])
+    chosen = np.where(fitted_any, chosen, -1)
+    point = np.full((n_series, horizon), np.nan)
+    errors = np.full((n_series, len(origins), n_lags), np.nan)
+    params = {name: np.full(n_series, np.nan) for name in _PARAMETER_COLUMNS}
+    final_origin = np.array([last])
+    for k, rows in members.items():
+        pick = chosen[rows] == k
+        if not pick.any():
+            continue
+        sel = rows[pick]
+        errors[sel] = holdout_errors[k][pick]
+        method = CANDIDATE_METHODS[k]
+        chosen_params = {name: values[pick] for name, values in full_params[k].items()}
+        for name, values in chosen_params.items():
+            params[name][sel] = values
+        if method in ("naive", "seasonal_naive", "moving_average"):
+            fc = forecast_benchmark(y[sel], start[sel], method=method, origins=final_origin, horizon=horizon,
+                                    season_length=season_length)
+        elif method in intermittent.INTERMITTENT_METHODS:
+            fc = intermittent.forecast_croston(
+                y[sel], start[sel], method=method, alpha=chosen_params["alpha"], init_available=train_months[sel],
+                origins=final_origin, horizon=horizon,
+            )
+        else:
+            fc = smoothing.forecast_smoothing(
+                y[sel], start[sel], method=method, params=chosen_params, available=train_months[sel],
+                origins=final_origin, horizon=horizon, season_length=season_length,
+            )
+        point[sel] = fc[:, 0, :]
+    params["phi"][chosen == CANDIDATE_METHODS.index("holt")] = 1.0  # undamped Holt: φ = 1
+    with np.errstate(all="ignore"):
+        wape = np.where(fitted_any & (denominator > 0), scores[np.arange(n_series), np.maximum(chosen, 0)] / denominator, np.nan)
+    return _BlockResult(method=chosen, params=params, point=point, errors=errors, wape=wape)
+
+
+def _allowed_candidates(
+    *, requested: tuple[str, ...], pattern: np.ndarray, has_trend: np.ndarray, has_seasonality: np.ndarray,
+    y: np.ndarray, start: np.ndarray, season_length: int,
+) -> np.ndarray:
+    """Which candidates each series may use: requested, fittable on its data, suited to its profile."""
+    n_series, n_months = y.shape
+    span_months = n_months - start
+    train_months = span_months - np.minimum(HOLDOUT_MONTHS, span_months // 2)
+    span = np.arange(n_months)[None, :] >= start[:, None]
+    positive = np.where(span, y > 0, True).all(axis=1)
+    train_end = start + train_months
+    demand_in_train = (span & (np.arange(n_months)[None, :] < train_end[:, None]) & (y > 0)).sum(axis=1)
+    sparse = np.isin(pattern, _INTERMITTENT_PATTERNS)
+    fittable = {
+        "naive": train_months >= 1,
+        "seasonal_naive": train_months >= season_length,
+        "moving_average": train_months >= 1,
+        "ses": train_months >= smoothing.minimum_months("ses"),
+        "croston": demand_in_train >= 2,
+        "sba": demand_in_train >= 2,
+        "holt_damped": train_months >= smoothing.minimum_months("holt_damped"),
+        "holt": train_months >= smoothing.minimum_months("holt"),
+        "holt_winters_add": train_months >= smoothing.minimum_months("holt_winters_add", season_length=season_length),
+        "holt_winters_mul": (train_months >= smoothing.minimum_months("holt_winters_mul", season_length=season_length))
+        & positive,
+    }
+    suited = {
+        "naive": ~sparse,
+        "seasonal_naive": ~sparse,
+        "moving_average": np.ones(n_series, bool),
+        "ses": np.ones(n_series, bool),
+        "croston": sparse,
+        "sba": sparse,
+        "holt_damped": ~sparse,
+        "holt": ~sparse & has_trend,
+        "holt_winters_add": ~sparse & has_seasonality,
+        "holt_winters_mul": ~sparse & has_seasonality,
+    }
+    wanted = np.array([m in requested for m in CANDIDATE_METHODS])
+    can = np.stack([fittable[m] for m in CANDIDATE_METHODS], axis=1) & wanted[None, :]
+    preferred = can & np.stack([suited[m] for m in CANDIDATE_METHODS], axis=1)
+    return np.where(preferred.any(axis=1)[:, None], preferred, can)
+
+
+def forecast_statistical(
+    history: pd.DataFrame,
+    *,
+    cycle: str,
+    horizon: int,
+    families: pd.Series | None = None,
+    methods: Sequence[str] | None = None,
+    season_length: int = 12,
+    levels: Sequence[float] = (0.8, 0.95),
+) -> StatisticalResult:
+    """Forecast every item × location from its own monthly history known at ``cycle``.
+
+    ``history`` holds long monthly actuals [item, location, period,
+    quantity]; rows after ``cycle`` are ignored.  ``families`` maps item →
+    family for the new-item fallback.  ``methods`` restricts the candidates
+    (names from :data:`CANDIDATE_METHODS`; others raise ``InvalidSpec``).
+    The module docstring gives the whole procedure and its sources.
+    """
+    requested = _validate(cycle, horizon, methods, season_length, levels)
+    horizon = int(horizon)
+    m = int(season_length)
+    matrix = build_demand_matrix(history, cycle=cycle)
+    y, start, keys = matrix.y, matrix.start, matrix.keys
+    n_series, n_months = y.shape
+    span_months = n_months - start
+
+    pattern = classify_demand(y, start)
+    has_trend = detect_trend(y, start)
+    has_seasonality = detect_seasonality(y, start, season_length=m)
+
+    method_name = np.full(n_series, "", dtype=object)
+    params = {name: np.full(n_series, np.nan) for name in _PARAMETER_COLUMNS}
+    point = np.zeros((n_series, horizon))
+    wape = np.full(n_series, np.nan)
+    fallback = np.full(n_series, "", dtype=object)
+    bounds = {level: (np.full((n_series, horizon), np.nan), np.full((n_series, horizon), np.nan)) for level in levels}
+
+    allowed = _allowed_candidates(
+        requested=requested, pattern=pattern, has_trend=has_trend, has_seasonality=has_seasonality,
+        y=y, start=start, season_length=m,
+    )
+    fit_rows = np.flatnonzero((span_months >= NEW_ITEM_MONTHS) & allowed.any(axis=1))
+    for lo in range(0, len(fit_rows), BLOCK_SERIES):
+        rows = fit_rows[lo:lo + BLOCK_SERIES]
+        block = _select_block(y[rows], start[rows], allowed[rows], horizon=horizon, season_length=m)
+        ok = block.method >= 0
+        done = rows[ok]
+        method_name[done] = np.array(CANDIDATE_METHODS, dtype=object)[block.method[ok]]
+        for name in _PARAMETER_COLUMNS:
+            params[name][done] = block.params[name][ok]
+        point[done] = np.maximum(block.point[ok], 0.0)
+        wape[done] = block.wape[ok]
+        for level, (low, high) in empirical_intervals(point[done], block.errors[ok], levels=levels).items():
+            bounds[level][0][done] = low
+            bounds[level][1][done] = high
+
+    rest = np.flatnonzero(method_name == "")
+    if len(rest):
+        group = np.full(n_series, -1)
+        family_of = None
+        if families is not None:
+            family_of = keys["item"].map(families).to_numpy(dtype=object)
+            known = pd.notna(family_of)
+            codes, _ = pd.factorize(pd.Series(family_of[known], dtype=object), sort=True)
+            group[known] = codes
+        profiles = seasonal_profiles(y, start, group, first_month=matrix.first_month, season_length=m)
+        own = np.ones((len(rest), m))
+        in_group = group[rest] >= 0
+        own[in_group] = profiles[group[rest][in_group]]
+        point[rest] = forecast_new_items(
+            y[rest], start[rest], own, first_month=matrix.first_month, horizon=horizon, season_length=m
+        )
+        no_demand = span_months[rest] == 0
+        method_name[rest] = np.where(no_demand, "zero_demand", "new_item_profile")
+        flat = (own == 1.0).all(axis=1)
+        family_text = np.array(
+            [f"family {f}" if family_of is not None and pd.notna(f) else "no family" for f in
+             (family_of[rest] if family_of is not None else [None] * len(rest))],
+            dtype=object,
+        )
+        reason = np.where(
+            span_months[rest] < NEW_ITEM_MONTHS,
+            "new item: " + span_months[rest].astype(str) + " month(s) since first demand",
+            "no requested method fits " + span_months[rest].astype(str) + " month(s) of history",
+        )
+        how = np.where(
+            flat, "flat profile (" + family_text + " has no seasonal profile) × item mean",
+            family_text + " seasonal profile × item mean",
+        )
+        fallback[rest] = np.where(no_demand, "no demand in history: forecast zero", reason + "; " + how)
+
+    cycle_index = month_index(cycle)
+    steps = np.arange(1, horizon + 1)
+    periods = month_names(cycle_index + steps)
+    item_rep = np.repeat(keys["item"].to_numpy(), horizon)
+    location_rep = np.repeat(keys["location"].to_numpy(), horizon)
+    period_rep = np.tile(periods, n_series)
+    lag_rep = np.tile(steps, n_series)
+    forecast = pd.DataFrame(
+        {
+            "item": item_rep, "location": location_rep, "period": period_rep, "lag": lag_rep,
+            "quantity": np.maximum(point, 0.0).ravel(), "method": np.repeat(method_name, horizon),
+        }
+    )
+    intervals = pd.DataFrame({"item": item_rep, "location": location_rep, "period": period_rep})
+    for level in levels:
+        label = _level_label(level)
+        intervals[f"lower_{label}"] = bounds[level][0].ravel()
+        intervals[f"upper_{label}"] = bounds[level][1].ravel()
+
+    reference = forecast_benchmark(
+        y, np.minimum(start, n_months - 1), method="seasonal_naive", origins=np.array([n_months - 1]),
+        horizon=horizon, season_length=m,
+    )[:, 0, :]
+    seasonal_naive = pd.DataFrame(
+        {
+            "item": item_rep, "location": location_rep, "period": period_rep, "lag": lag_rep,
+            "quantity": np.maximum(reference, 0.0).ravel(),
+        }
+    )
+    series = pd.DataFrame(
+        {
+            "item": keys["item"].to_numpy(),
+            "location": keys["location"].to_numpy(),
+            "pattern": pattern,
+            "has_trend": has_trend,
+            "has_seasonality": has_seasonality,
+            "method": method_name,
+            **params,
+            "holdout_wape": wape,
+            "n_months": span_months.astype(int),
+            "fallback": fallback,
+        }
+    )
+    return StatisticalResult(forecast=forecast, intervals=intervals, series=series, seasonal_naive=seasonal_naive)
