@@ -169,7 +169,7 @@ def shrinkage_intensity(residuals: np.ndarray) -> float:
     (Schäfer & Strimmer, 2005, Stat. Appl. Genet. Mol. Biol. 4(1):32, target
     D; as used for MinT by Wickramasuriya et al., 2019).  The sums over all
     i ≠ j are taken through T × T matrices, so the cost is O(n T²):
-    Σ_ij Σ_t z²_it z²_jt = ‖Σ_i z²_·i‖², Σ_ij (Σ_t z_it z_jt)² = ‖z′z‖²_F over
+    Σ_ij Σ_t z²_it z²_jt = Σ_t (Σ_i z²_it)², Σ_ij (Σ_t z_it z_jt)² = ‖z′z‖²_F over
     the T × T Gram matrix z′z, minus the i = j terms.
     """
     x = np.asarray(residuals, dtype=float)
@@ -180,12 +180,12 @@ def shrinkage_intensity(residuals: np.ndarray) -> float:
     scale = np.sqrt(variance)
     z = np.divide(x, scale[:, None], out=np.zeros_like(x), where=scale[:, None] > 0)
     z2 = z * z
-    gram = z.T @ z                              # T × T
-    gram_sq = z2.T @ z2                         # T × T: Σ_i z²_it z²_iu
-    sum_zz_sq_all = float(np.sum(gram * gram))  # Σ_ij (Σ_t z_it z_jt)²
+    gram = z.T @ z                              # T × T: Σ_i z_it z_iu
+    sum_zz_sq_all = float(np.sum(gram * gram))  # Σ_ij (Σ_t z_it z_jt)² = ‖z′z‖²_F
     per_series = z2.sum(axis=1)                 # Σ_t z²_it (= T for a non-constant series)
     sum_zz_sq_diag = float(np.sum(per_series ** 2))
-    sum_z2z2_all = float(gram_sq.sum())         # Σ_ij Σ_t z²_it z²_jt
+    per_period = z2.sum(axis=0)                 # Σ_i z²_it
+    sum_z2z2_all = float(per_period @ per_period)  # Σ_ij Σ_t z²_it z²_jt = Σ_t (Σ_i z²_it)²
     sum_z2z2_diag = float(np.sum(z2 * z2))
     variance_sum = ((sum_z2z2_all - sum_z2z2_diag) - (sum_zz_sq_all - sum_zz_sq_diag) / T) / (T * (T - 1))
     correlation_sum = (sum_zz_sq_all - sum_zz_sq_diag) / T ** 2
