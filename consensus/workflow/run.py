@@ -45,7 +45,6 @@ class RunSpec:
     weights: WeightSpec = field(default_factory=WeightSpec)
     band_levels: tuple[float, ...] = (0.8, 0.95)
     mix_window_months: int = 12
-    disagreement_threshold: float = 0.5
     reconciliation: str = "bottom_up"
 
     def __post_init__(self) -> None:
@@ -165,8 +164,7 @@ def run_cycle(cycle_name: str, *, url=None, spec: RunSpec | None = None,
         sources = sorted(current["source"].unique())
         weights = estimate_weights(errors[errors["source"].isin(sources)], cycle=cycle.name, items=items,
                                    locations=locations, spec=spec.weights, sources=sources)
-        combined = combine.combine_sources(current, weights, items=items, spec=spec.weights,
-                                           threshold=spec.disagreement_threshold)
+        combined = combine.combine_sources(current, weights, items=items, locations=locations, spec=spec.weights)
         table = combined.consensus
         if progress:
             progress("error bands")
