@@ -237,13 +237,13 @@ class Event:
 
 EVENTS = [
     Event("Winter installer offer", "TIMERS", None, None, "2025-12", "2026-01",
-          (("2025-08", 15),), 14.0, "Installer discount on timers over the winter"),
+          (("2025-08", 15),), 16.0, "Installer discount on timers over the winter"),
     Event("Spring drip push 2026", "DRIP-KITS", None, None, "2026-03", "2026-04",
           (("2025-09", 25), ("2026-01", 30)), 27.0, "First national drip-kit campaign; TV spots from March"),
     Event("Sprinkler summer deal 2026", "SPRINKLERS", None, "SOUTH", "2026-06", "2026-07",
           (("2026-01", 20),), 18.0, "Second sprinkler at half price, southern retailers"),
-    Event("Spares bundle week", "SPARES", None, "NORTH", "2026-08", "2026-08",
-          (("2026-03", 15),), 2.0, "Bundle offer on connectors and drippers"),
+    Event("Spares summer bundle", "SPARES", None, "NORTH", "2026-07", "2026-08",
+          (("2026-03", 15),), 0.0, "Bundle offer on connectors and drippers"),  # stock came late: no effect
     Event("Smart timer trade-in", None, "TM-SMART-1", None, "2026-09", "2026-10",
           (("2026-04", 40),), 35.0, "Trade in any old timer for a smart one"),
     Event("Spring drip push 2027", "DRIP-KITS", None, None, "2027-03", "2027-04",
