@@ -178,7 +178,7 @@ def forecast_benchmark(
     * naive: ``ŷ_{o+h} = y_o``;
     * seasonal naive: ``ŷ_{o+h} = y_{o+h−m·⌈h/m⌉}`` (Hyndman & Athanasopoulos,
       *Forecasting: Principles and Practice*, 3rd ed., section 5.2), naive
-      where that month precedes the span;
+      when the span up to ``o`` is shorter than one season;
     * moving average: mean of the last 3 months of the span up to ``o``.
     """
     y = np.asarray(y, dtype=float)
@@ -193,9 +193,9 @@ def forecast_benchmark(
         h = np.arange(1, horizon + 1)
         back = h - season_length * np.ceil(h / season_length).astype(int)  # in −m+1 … 0
         idx = origins[:, None] + back[None, :]  # (K, H)
-        inside = idx[None, :, :] >= start[:, None, None]
+        full_season = (origins[None, :] - start[:, None] + 1 >= season_length)[:, :, None]
         seasonal = y[rows, np.maximum(idx, 0)[None, :, :]]
-        return np.where(inside, seasonal, last)
+        return np.where(full_season, seasonal, last)
     if method == "moving_average":
         offsets = np.arange(MOVING_AVERAGE_MONTHS)
         idx = origins[:, None] - offsets[None, :]  # (K, W)

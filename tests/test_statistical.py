@@ -1,0 +1,281 @@
+"""The statistical source end to end: selection, fallback, intervals, reference forecast, invariants."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+from statsmodels.datasets import elec_equip
+from statsmodels.tsa.holtwinters import ExponentialSmoothing
+
+from consensus.errors import InvalidSpec
+from consensus.methods.smoothing import PARAMETER_GRIDS
+from consensus.methods.statistical import (
+    METHODS,
+    StatisticalResult,
+    build_demand_matrix,
+    forecast_statistical,
+)
+from consensus.periods import month_index, month_name
+
+FORECAST_COLUMNS = ["item", "location", "period", "lag", "quantity", "method"]
+INTERVAL_COLUMNS = ["item", "location", "period", "lower_80", "upper_80", "lower_95", "upper_95"]
+SERIES_COLUMNS = ["item", "location", "pattern", "has_trend", "has_seasonality", "method", "alpha", "beta",
+                  "gamma", "phi", "holdout_wape", "n_months", "fallback"]
+
+
+def long_history(series: dict[tuple[str, str], np.ndarray], first: str = "2021-01") -> pd.DataFrame:
+    """Long actuals from arrays of monthly quantities starting at ``first``."""
+    base = month_index(first)
+    rows = [
+        (item, location, month_name(base + k), float(q))
+        for (item, location), values in series.items()
+        for k, q in enumerate(values)
+    ]
+    return pd.DataFrame(rows, columns=["item", "location", "period", "quantity"])
+
+
+def orders(months: int = 48) -> np.ndarray:
+    """Euro-area electrical equipment orders (statsmodels.datasets.elec_equip, shipped offline)."""
+    return elec_equip.load().data.iloc[:months, 0].to_numpy(dtype=float)
+
+
+@pytest.fixture(scope="module")
+def scenario() -> pd.DataFrame:
+    rng = np.random.default_rng(42)
+    t = np.arange(48)
+    series = {
+        ("SEAS", "L1"): orders(48),
+        ("TREND", "L1"): np.round(40 + 3 * t + rng.normal(0, 4, 48)),
+        ("FLAT", "L2"): np.round(rng.normal(80, 6, 48)),
+        ("SPARSE", "L1"): (rng.random(48) < 0.3) * np.round(rng.gamma(2, 6, 48)),
+        ("NEW", "L1"): np.r_[np.zeros(44), [12, 15, 9, 14]],
+    }
+    return long_history(series, first="2021-01")
+
+
+@pytest.fixture(scope="module")
+def result(scenario) -> StatisticalResult:
+    families = pd.Series({"SEAS": "F1", "TREND": "F1", "FLAT": "F2", "SPARSE": "F2", "NEW": "F1"})
+    return forecast_statistical(scenario, cycle="2024-12", horizon=18, families=families)
+
+
+def test_frames_have_the_promised_shape(result):
+    assert list(result.forecast.columns) == FORECAST_COLUMNS
+    assert list(result.intervals.columns) == INTERVAL_COLUMNS
+    assert list(result.series.columns) == SERIES_COLUMNS
+    assert list(result.seasonal_naive.columns) == ["item", "location", "period", "lag", "quantity"]
+    assert len(result.series) == 5 and len(result.forecast) == 5 * 18
+    first = result.forecast[result.forecast["item"] == "FLAT"]
+    assert list(first["period"]) == [month_name(month_index("2025-01") + k) for k in range(18)]
+    assert list(first["lag"]) == list(range(1, 19))
+    assert (result.forecast["quantity"] >= 0).all()
+    assert set(result.forecast["method"]) <= set(METHODS)
+
+
+def test_profiles_and_choices_follow_the_data(result):
+    by_item = result.series.set_index("item")
+    assert by_item.loc["SEAS", "has_seasonality"]
+    assert by_item.loc["SEAS", "method"] in {"holt_winters_add", "holt_winters_mul", "seasonal_naive"}
+    assert by_item.loc["TREND", "has_trend"]
+    assert by_item.loc["SPARSE", "pattern"] in {"intermittent", "lumpy"}
+    assert by_item.loc["SPARSE", "method"] in {"croston", "sba", "ses", "moving_average"}
+    assert by_item.loc["NEW", "method"] == "new_item_profile"
+    assert by_item.loc["NEW", "n_months"] == 4 and "new item" in by_item.loc["NEW", "fallback"]
+    assert (by_item.drop(index="NEW")["fallback"] == "").all()
+    assert by_item.drop(index="NEW")["holdout_wape"].notna().all()
+
+
+def test_intervals_are_ordered_and_nested(result):
+    iv = result.intervals.merge(result.forecast, on=["item", "location", "period"])
+    fitted = iv[iv["method"] != "new_item_profile"]
+    assert fitted[INTERVAL_COLUMNS[3:]].notna().all().all()
+    assert (fitted["lower_95"] <= fitted["lower_80"] + 1e-9).all()
+    assert (fitted["lower_80"] <= fitted["upper_80"] + 1e-9).all()
+    assert (fitted["upper_80"] <= fitted["upper_95"] + 1e-9).all()
+    assert (fitted["lower_95"] >= 0).all()
+    assert iv.loc[iv["method"] == "new_item_profile", INTERVAL_COLUMNS[3:]].isna().all().all()
+
+
+def test_naive_holdout_wape_and_intervals_recomputed_by_hand():
+    # With methods=["naive"] the rolling-origin errors are y[o+h] - y[o] for the
+    # 12 origins o = T-13 … T-2 (holdout K = min(12, 48 // 2)).  WAPE and the
+    # empirical quantiles (numpy.quantile, linear) are recomputed here.
+    y = orders(48)
+    history = long_history({("A", "X"): y}, first="2021-01")
+    res = forecast_statistical(history, cycle="2024-12", horizon=3, methods=["naive"])
+    origins = np.arange(35, 47)
+    errors = {h: np.array([y[o + h] - y[o] for o in origins if o + h <= 47]) for h in (1, 2, 3)}
+    actuals = np.concatenate([[y[o + h] for o in origins if o + h <= 47] for h in (1, 2, 3)])
+    wape = np.abs(np.concatenate(list(errors.values()))).sum() / np.abs(actuals).sum()
+    assert res.series["holdout_wape"].iloc[0] == pytest.approx(wape)
+    assert (res.forecast["quantity"] == y[-1]).all()
+    for h in (1, 2, 3):
+        row = res.intervals.iloc[h - 1]
+        assert row["lower_80"] == pytest.approx(max(0.0, y[-1] + np.quantile(errors[h], 0.1)))
+        assert row["upper_95"] == pytest.approx(y[-1] + np.quantile(errors[h], 0.975))
+
+
+def test_ses_forecast_agrees_with_statsmodels_at_the_chosen_alpha():
+    # Whole pipeline for one method: the reported alpha minimises statsmodels'
+    # in-sample SSE over our grid (known initial level = first month), and the
+    # forecast equals statsmodels' forecast at that alpha.
+    y = orders(40)
+    history = long_history({("A", "X"): y}, first="2021-01")
+    res = forecast_statistical(history, cycle=month_name(month_index("2021-01") + 39), horizon=5, methods=["ses"])
+    alpha = res.series["alpha"].iloc[0]
+    sse = [ExponentialSmoothing(y, initialization_method="known", initial_level=y[0]).fit(
+        smoothing_level=a, optimized=False).sse for a in PARAMETER_GRIDS["ses"][0]]
+    assert alpha == pytest.approx(PARAMETER_GRIDS["ses"][0][int(np.argmin(sse))])
+    reference = ExponentialSmoothing(y, initialization_method="known", initial_level=y[0]).fit(
+        smoothing_level=alpha, optimized=False).forecast(5)
+    np.testing.assert_allclose(res.forecast["quantity"], reference, atol=1e-6)
+
+
+def test_missing_months_inside_the_span_are_zero_demand():
+    y = np.array([5, 0, 0, 7, 0, 3, 0, 0, 6, 0, 0, 4, 2, 0, 0, 5], dtype=float)
+    full = long_history({("A", "X"): y})
+    gaps = full[full["quantity"] != 0]
+    a = forecast_statistical(full, cycle="2022-04", horizon=4)
+    b = forecast_statistical(gaps, cycle="2022-04", horizon=4)
+    pd.testing.assert_frame_equal(a.forecast, b.forecast)
+    pd.testing.assert_frame_equal(a.series, b.series)
+    matrix = build_demand_matrix(gaps, cycle="2022-04")
+    np.testing.assert_array_equal(matrix.y[0], y)
+
+
+def test_new_item_gets_the_family_profile_scaled_to_its_demand():
+    # Family F: one established item with a pure seasonal shape; the classical
+    # ratio-to-centred-2x12-moving-average index is recomputed with pandas rolling
+    # means (Makridakis, Wheelwright & Hyndman 1998, ch. 3).
+    months = 36
+    shape = 1 + 0.5 * np.sin(2 * np.pi * np.arange(months) / 12)
+    old = np.round(100 * shape * (1 + 0.01 * np.arange(months)), 3)
+    new = np.r_[np.zeros(months - 3), [20.0, 30.0, 25.0]]
+    history = long_history({("OLD", "X"): old, ("NEW", "X"): new}, first="2022-01")
+    families = pd.Series({"OLD": "F", "NEW": "F"})
+    res = forecast_statistical(history, cycle="2024-12", horizon=12, families=families)
+    total = pd.Series(old + new)
+    cma = total.rolling(12).mean().rolling(2).mean().shift(-6)
+    ratio = total / cma
+    index = ratio.groupby(np.arange(months) % 12).mean()
+    index = index / index.mean()
+    level = np.mean(new[-3:] / index.to_numpy()[[9, 10, 11]])  # Oct, Nov, Dec
+    expected = level * index.to_numpy()  # Jan … Dec of the next year
+    got = res.forecast[res.forecast["item"] == "NEW"]["quantity"].to_numpy()
+    np.testing.assert_allclose(got, expected, rtol=1e-9)
+    text = res.series.set_index("item").loc["NEW", "fallback"]
+    assert "family F seasonal profile" in text
+
+
+def test_new_item_without_family_is_flat_and_no_demand_is_zero():
+    history = long_history({("NEW", "X"): [0, 0, 4, 6], ("NONE", "X"): [0, 0, 0, 0]})
+    res = forecast_statistical(history, cycle="2021-04", horizon=2)
+    q = res.forecast.set_index("item")["quantity"]
+    assert list(q.loc["NEW"]) == [5.0, 5.0]
+    assert list(q.loc["NONE"]) == [0.0, 0.0]
+    series = res.series.set_index("item")
+    assert series.loc["NONE", "method"] == "zero_demand" and series.loc["NONE", "pattern"] == "no_demand"
+
+
+def test_seasonal_naive_reference_repeats_last_season():
+    y = orders(30)
+    history = long_history({("A", "X"): y, ("B", "X"): np.r_[np.zeros(24), [3, 4, 5, 6, 7, 8]]})
+    res = forecast_statistical(history, cycle=month_name(month_index("2021-01") + 29), horizon=14)
+    ref = res.seasonal_naive
+    a = ref[ref["item"] == "A"]["quantity"].to_numpy()
+    np.testing.assert_allclose(a, np.r_[y[18:30], y[18:20]])  # y_{T+h-12⌈h/12⌉}
+    b = ref[ref["item"] == "B"]["quantity"].to_numpy()
+    assert (b == 8.0).all()  # span shorter than a season: last month
+
+
+def test_methods_restrict_the_candidates(scenario):
+    res = forecast_statistical(scenario, cycle="2024-12", horizon=6, methods=["ses", "holt_damped"])
+    fitted = res.series[res.series["fallback"] == ""]
+    assert set(fitted["method"]) <= {"ses", "holt_damped"}
+
+
+@pytest.mark.parametrize(
+    "kwargs",
+    [
+        {"methods": ["ses", "prophet"]},
+        {"methods": "ses"},
+        {"methods": []},
+        {"horizon": 0},
+        {"cycle": "2024-13"},
+        {"levels": (0.8, 1.2)},
+        {"season_length": 1},
+    ],
+)
+def test_bad_settings_raise_invalid_spec(scenario, kwargs):
+    args = {"cycle": "2024-12", "horizon": 6} | kwargs
+    with pytest.raises(InvalidSpec):
+        forecast_statistical(scenario, **args)
+
+
+def test_bad_history_raises_invalid_spec():
+    with pytest.raises(InvalidSpec):
+        forecast_statistical(pd.DataFrame({"item": ["A"], "period": ["2024-01"], "quantity": [1.0]}),
+                             cycle="2024-01", horizon=1)
+    bad = pd.DataFrame({"item": ["A"], "location": ["X"], "period": ["2024-1"], "quantity": [1.0]})
+    with pytest.raises(InvalidSpec):
+        forecast_statistical(bad, cycle="2024-01", horizon=1)
+
+
+# --- properties (hypothesis) -------------------------------------------------
+
+histories = st.lists(
+    st.tuples(
+        st.sampled_from(["A", "B", "C"]),
+        st.sampled_from(["X", "Y"]),
+        st.integers(min_value=0, max_value=35),  # month offset from 2022-01
+        st.floats(min_value=0, max_value=500, allow_nan=False, allow_infinity=False),
+    ),
+    min_size=1,
+    max_size=80,
+)
+
+
+def frame_of(rows) -> pd.DataFrame:
+    base = month_index("2022-01")
+    return pd.DataFrame(
+        [(i, loc, month_name(base + k), q) for i, loc, k, q in rows],
+        columns=["item", "location", "period", "quantity"],
+    )
+
+
+@settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(histories, st.integers(min_value=1, max_value=14))
+def test_forecasts_and_bounds_are_never_negative(rows, horizon):
+    res = forecast_statistical(frame_of(rows), cycle="2024-12", horizon=horizon)
+    assert (res.forecast["quantity"] >= 0).all()
+    assert (res.seasonal_naive["quantity"] >= 0).all()
+    bounds = res.intervals[INTERVAL_COLUMNS[3:]].to_numpy()
+    assert (bounds[~np.isnan(bounds)] >= 0).all()
+    assert len(res.forecast) == len(res.series) * horizon
+
+
+@settings(max_examples=20, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(histories, histories)
+def test_history_after_the_cycle_changes_nothing(rows, later_rows):
+    known = frame_of(rows)
+    future = frame_of(later_rows)
+    future["period"] = [month_name(month_index(p) + 36) for p in future["period"]]  # all after 2024-12
+    a = forecast_statistical(known, cycle="2024-12", horizon=6)
+    b = forecast_statistical(pd.concat([future, known, future]), cycle="2024-12", horizon=6)
+    for name in ("forecast", "intervals", "series", "seasonal_naive"):
+        pd.testing.assert_frame_equal(getattr(a, name), getattr(b, name))
+
+
+@settings(max_examples=15, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(histories)
+def test_reruns_and_row_order_give_identical_results(rows):
+    frame = frame_of(rows)
+    a = forecast_statistical(frame, cycle="2024-12", horizon=4)
+    b = forecast_statistical(frame, cycle="2024-12", horizon=4)
+    c = forecast_statistical(frame.iloc[::-1].reset_index(drop=True), cycle="2024-12", horizon=4)
+    for name in ("forecast", "intervals", "series", "seasonal_naive"):
+        pd.testing.assert_frame_equal(getattr(a, name), getattr(b, name))
+        pd.testing.assert_frame_equal(getattr(a, name), getattr(c, name), check_exact=False, rtol=1e-9)
