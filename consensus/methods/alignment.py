@@ -37,6 +37,8 @@ ALL = "all"
 #: Smallest shift of a month's mix from the year's (total-variation distance) that counts as seasonal.
 MIN_SEASONAL_SHIFT = 0.10
 SEASONAL_YEARS = 2
+#: How much more the month-of-year pattern must explain than year-to-year noise would.
+SEASONAL_VARIANCE_RATIO = 4.0
 
 MIX_COLUMNS = ["level", "group_item", "group_location", "item", "location", "month_of_year", "share", "basis",
                "imputed"]
@@ -228,20 +230,21 @@ def _group_indicator(codes: np.ndarray, n_groups: int) -> sparse.csr_matrix:
 def _seasonal_groups(real: np.ndarray, codes: np.ndarray, n_groups: int, *, min_shift: float) -> np.ndarray:
     """Which groups have a material, repeating month-of-year mix.
 
-    ``real`` is pairs × (years × 12) quantities in calendar order.  With
+    ``real`` is pairs × (Y years × 12) quantities in calendar order.  With
     s[i,y,m] a pair's share of its group in month m of year y, f[i] its share
-    over the whole span and p[i,m] its share in month m pooled over years,
-    a group is seasonal when every month has sales in every year and
+    over the whole span and p[i,m] its share in month m pooled over years, a
+    group is seasonal when every month has sales in every year and
 
-        D_season = max_m ½ Σ_i |p[i,m] − f[i]|  ≥  min_shift, and
-        D_season > 2 · D_noise,  D_noise = mean_m mean_y ½ Σ_i |s[i,y+1,m] − s[i,y,m]|.
+        max_m ½ Σ_i |p[i,m] − f[i]|  ≥  min_shift          (material), and
+        Σ_{i,m} (p[i,m] − f[i])²  ≥  4 · Σ_{i,m,y} (s[i,y+1,m] − s[i,y,m])² / (2Y)   (repeating).
 
-    In words: in its most distinctive month the mix moves by at least
-    ``min_shift`` of total-variation distance, and by clearly more than the
-    same month's mix typically moves from one year to the next.  This is our
-    own rule: a month shift that does not repeat is noise, not season.  The
-    factor 2 is because, for independent yearly noise e, the pooled shift is
-    |e₁+e₂|/2 against a year-to-year move of |e₁−e₂|, half the size on average.
+    The first says the most distinctive month moves the mix by at least
+    ``min_shift`` of total-variation distance.  The second is a variance
+    ratio: if shares only wobbled independently from year to year with
+    variance σ², the pooled month shares would scatter around f with variance
+    σ²/Y and consecutive-year differences with 2σ², so the two sides match
+    and the ratio is near 1; we ask for 4.  This is our own rule of thumb,
+    chosen so that a one-off month (a promotion in one year) stays flat.
     """
     n_pairs = real.shape[0]
     years = real.shape[1] // 12
@@ -254,10 +257,11 @@ def _seasonal_groups(real: np.ndarray, codes: np.ndarray, n_groups: int, *, min_
         pooled = cube.sum(axis=1) / group_year_month.sum(axis=1)[codes]
         flat = real.sum(axis=1) / group_year_month.sum(axis=(1, 2))[codes]
     shares, pooled, flat = (np.nan_to_num(a) for a in (shares, pooled, flat))
-    d_season = 0.5 * (indicator @ np.abs(pooled - flat[:, None])).max(axis=1)
-    step = np.abs(np.diff(shares, axis=1)).reshape(n_pairs, -1)
-    d_noise = 0.5 * (indicator @ step).mean(axis=1)
-    return valid & (d_season >= min_shift) & (d_season > 2.0 * d_noise)
+    deviation = pooled - flat[:, None]
+    shift = 0.5 * (indicator @ np.abs(deviation)).max(axis=1)
+    signal = indicator @ (deviation ** 2).sum(axis=1)
+    noise = indicator @ (np.diff(shares, axis=1) ** 2).sum(axis=(1, 2)) / (2 * years)
+    return valid & (shift >= min_shift) & (signal >= SEASONAL_VARIANCE_RATIO * noise) & (signal > 0)
 
 
 def historical_mix(actuals: pd.DataFrame, *, items: pd.DataFrame, locations: pd.DataFrame, cycle: str,
