@@ -37,6 +37,18 @@ TRACKING_SIGNAL_LIMIT = 4.0
 MONTHS_PER_SEASON = 12
 
 
+def month_indexes_factorized(months: pd.Series) -> np.ndarray:
+    """:func:`consensus.periods.month_indexes`, parsing each distinct month once.
+
+    Frames hold millions of rows but only a few dozen distinct months, so
+    factorising first turns the string parsing into an integer lookup.
+    """
+    codes, uniques = pd.factorize(months, sort=False)
+    if not len(uniques):
+        return np.empty(len(codes), dtype=int)
+    return month_indexes(pd.Series(uniques, dtype=object))[codes]
+
+
 def _as_float_arrays(actual, forecast) -> tuple[np.ndarray, np.ndarray]:
     a = np.asarray(actual, dtype=float).ravel()
     f = np.asarray(forecast, dtype=float).ravel()
@@ -181,7 +193,7 @@ def forecast_errors(forecasts: pd.DataFrame, actuals: pd.DataFrame) -> pd.DataFr
     )
     if fc.empty or act.empty:
         return pd.DataFrame({c: pd.Series(dtype=float if c in ("forecast", "actual", "error") else object) for c in columns})
-    fc = fc.assign(lag=month_indexes(fc["period"]) - month_indexes(fc["cycle"]))
+    fc = fc.assign(lag=month_indexes_factorized(fc["period"]) - month_indexes_factorized(fc["cycle"]))
     fc = fc[fc["lag"] >= 1]
     months_with_actuals = pd.Index(act["period"].unique())
     known_series = act[["item", "location"]].drop_duplicates()
@@ -340,7 +352,7 @@ def seasonal_naive_scale(
     if not isinstance(season, (int, np.integer)) or season < 1:
         raise InvalidSpec(f"season must be a positive whole number of months, got {season!r}")
     frame = _attach_level_keys(actuals, level, items, locations)
-    frame = frame.assign(_m=month_indexes(frame["period"]))
+    frame = frame.assign(_m=month_indexes_factorized(frame["period"]))
     group = keys if keys else None
     if group:
         totals = frame.groupby(keys + ["_m"], sort=True)["quantity"].sum().unstack("_m")

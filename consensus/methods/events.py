@@ -26,7 +26,8 @@ import numpy as np
 import pandas as pd
 
 from consensus.errors import InvalidSpec
-from consensus.periods import is_month, month_indexes
+from consensus.methods.accuracy import month_indexes_factorized
+from consensus.periods import is_month
 
 _PRODUCT_KEYS = ("item", "family")
 _PLACE_KEYS = ("location", "region", None)
@@ -66,8 +67,8 @@ def _normalise_events(events: pd.DataFrame) -> pd.DataFrame:
             problems.append(f"event(s) {sorted(map(str, ev.loc[bad, 'event']))} have a {edge} that is not YYYY-MM")
     if problems:
         raise InvalidSpec("; ".join(problems))
-    ev["start_m"] = month_indexes(events["start"])
-    ev["end_m"] = month_indexes(events["end"])
+    ev["start_m"] = month_indexes_factorized(events["start"])
+    ev["end_m"] = month_indexes_factorized(events["end"])
     backwards = ev["end_m"] < ev["start_m"]
     if backwards.any():
         raise InvalidSpec(f"event(s) {sorted(map(str, ev.loc[backwards, 'event']))} end before they start")
@@ -131,7 +132,7 @@ def apply_event_uplifts(
     cells = base.assign(
         family=base["item"].map(items.drop_duplicates("item").set_index("item")["family"]).astype(object),
         region=base["location"].map(locations.drop_duplicates("location").set_index("location")["region"]).astype(object),
-        _m=month_indexes(base["period"]),
+        _m=month_indexes_factorized(base["period"]),
         base=base["quantity"].astype(float),
     ).drop(columns=["quantity"])
     matched = _match_events_to_cells(ev, cells)
