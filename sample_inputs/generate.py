@@ -425,11 +425,16 @@ def plan_sales(sc: Scenario) -> dict[str, pd.DataFrame]:
     forecast = same month k years earlier × (1 + believed growth)^k × (1 + optimism) × noise,
     with believed growth updated each cycle as 0.75·previous + 0.25·(last 12 months / the 12 before − 1),
     starting from the 10 % the budget assumed: a slow belief, so a turn in demand is seen late.
+    Once the launch is announced, its expected units go into the family's plan.
     """
     rng = stream("sales")
     families, fr_actual = family_region_actuals(sc)
     optimism = rng.uniform(0.08, 0.13, (len(families), len(REGIONS)))
     belief = np.full((len(families), len(REGIONS)), 0.10)
+    timers = families.index(LAUNCH_ITEM[2])
+    launch_announced = next(e.announced for e in EVENTS if e.item == LAUNCH_ITEM[0])
+    launch_season = seasonal_factors(np.array([LAUNCH_ITEM[2]]), np.array(["NORTH"]))[0, 0]
+    region_shares = sc.locations.groupby("region", sort=True)["share"].sum().loc[list(REGIONS)].to_numpy()
     plans = {}
     for cycle in PAST_CYCLES + [CURRENT_CYCLE]:
         c = history_position(cycle)
@@ -439,6 +444,11 @@ def plan_sales(sc: Scenario) -> dict[str, pd.DataFrame]:
         ref, years_back, periods = reference_positions(cycle, HORIZON)
         noise = rng.lognormal(-0.05**2 / 2, 0.05, (len(families), len(REGIONS), HORIZON))
         units = (fr_actual[:, :, ref] * (1 + belief[:, :, None]) ** years_back * (1 + optimism[:, :, None]) * noise)
+        if month_index(cycle) >= month_index(launch_announced):
+            # Sales add marketing's launch volume to the family as soon as they hear of it, optimism included.
+            after_launch = np.array([month_index(p) >= month_index(LAUNCH_MONTH) for p in periods])
+            launch = LAUNCH_UNITS_PER_MONTH * region_shares[:, None] * launch_season[ref][None, :] * after_launch
+            units[timers] += launch * (1 + optimism[timers][:, None])
         f_idx, r_idx, p_idx = np.meshgrid(np.arange(len(families)), np.arange(len(REGIONS)), np.arange(HORIZON),
                                           indexing="ij")
         plans[cycle] = pd.DataFrame({
