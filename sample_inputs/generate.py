@@ -363,7 +363,6 @@ def draw_actuals(items: pd.DataFrame, locations: pd.DataFrame) -> tuple[np.ndarr
 def split_into_order_lines(items: pd.DataFrame, locations: pd.DataFrame, actual: np.ndarray) -> pd.DataFrame:
     """Daily order lines whose monthly sums are exactly ``actual``: units spread over lines on business days."""
     rng = stream("orders")
-    n_items, n_locations, n_months = actual.shape
     line_size = np.where(items["is_lumpy"], LUMPY_LINE_SIZE, items["family"].map(LINE_SIZE)).astype(float)
     wanted = np.rint(actual / line_size[:, None, None] * rng.uniform(0.6, 1.4, actual.shape))
     n_lines = np.minimum(np.clip(wanted, 1, MAX_LINES_PER_MONTH), actual).astype(np.int64)
