@@ -44,7 +44,7 @@ def write_template(path: Path, frame: pd.DataFrame, *, meta: dict[str, str]) -> 
     layout = _template_frame(frame)
     if suffix == ".csv":
         # A byte-order mark lets spreadsheet programs open the UTF-8 file with accents intact.
-        layout.to_csv(path, index=False, encoding="utf-8-sig", lineterminator="\r\n")
+        layout.to_csv(path, index=False, encoding="utf-8-sig", lineterminator="\r\n", float_format="%.15g")
         return path
     _write_xlsx(path, layout, _template_meta(meta))
     return path

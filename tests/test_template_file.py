@@ -1,0 +1,117 @@
+"""Fill-in templates: layout, hidden meta sheet, and the round trip through read and check."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import openpyxl
+import pandas as pd
+import pytest
+
+from consensus.errors import InvalidSpec
+from consensus.intake.checks import check_forecast_rows, detect_file_kind
+from consensus.intake.reader import read_table
+from consensus.intake.template_file import write_template
+from consensus.periods import horizon_months
+
+ITEMS = pd.DataFrame({"item": ["A100", "00123"], "family": ["FAM1", "FAM1"], "unit_price": [10.0, 2.0]})
+LOCATIONS = pd.DataFrame({"location": ["L1", "L2"], "region": ["NORTH", "NORTH"]})
+CYCLE = "2026-11"
+HORIZONS = {CYCLE: horizon_months(CYCLE, 18)}
+META = {"source": "sales", "cycle": CYCLE, "scope": "region NORTH", "grain": "item-location-month",
+        "generated_at": "2026-11-30T08:00:00+00:00"}
+
+
+def _scope_frame() -> pd.DataFrame:
+    months = HORIZONS[CYCLE][:3]
+    frame = pd.DataFrame(
+        [(item, location, month) for item in ITEMS["item"] for location in LOCATIONS["location"] for month in months],
+        columns=["item", "location", "period"],
+    )
+    frame["last_consensus"] = np.where(frame.index % 4 == 0, np.nan, frame.index * 1.5)
+    frame["quantity"] = 99.0  # a template never suggests the number to fill in
+    return frame
+
+
+def test_xlsx_template_layout(tmp_path):
+    path = write_template(tmp_path / "sales_north.xlsx", _scope_frame(), meta=META)
+    workbook = openpyxl.load_workbook(path)
+    sheet = workbook["forecast"]
+    header = [c.value for c in sheet[1]]
+    assert header == ["item", "location", "period", "quantity", "last_consensus"]
+    assert all(c.font.bold for c in sheet[1])
+    assert sheet.freeze_panes == "A2"
+    assert all(sheet.cell(row=r, column=4).value is None for r in range(2, sheet.max_row + 1))
+    assert sheet.cell(row=2, column=1).value == "A100" and sheet.cell(row=8, column=1).value == "00123"
+    assert sheet.cell(row=3, column=5).value == 1.5 and sheet.cell(row=2, column=5).value is None
+    assert sheet.cell(row=1, column=5).comment is not None
+    assert all(sheet.column_dimensions[letter].width >= 8 for letter in "ABCDE")
+    hidden = workbook["_consensus"]
+    assert hidden.sheet_state == "hidden"
+    assert {r[0]: r[1] for r in hidden.iter_rows(min_row=2, values_only=True)} == META
+    assert workbook.sheetnames == ["forecast", "_consensus"]
+
+
+def test_filled_xlsx_template_round_trips_through_read_and_check(tmp_path):
+    path = write_template(tmp_path / "sales_north.xlsx", _scope_frame(), meta=META)
+    workbook = openpyxl.load_workbook(path)
+    sheet = workbook["forecast"]
+    for row in range(2, sheet.max_row + 1):
+        sheet.cell(row=row, column=4).value = (row - 2) * 10  # a submitter types whole numbers
+    workbook.save(path)
+
+    raw = read_table(path)
+    assert raw.meta == META
+    assert raw.file_format["sheet"] == "forecast"
+    assert raw.rows.tolist() == list(range(2, 14))
+    assert raw.frame["item"].tolist()[6] == "00123"  # leading zeros survive as text
+    assert raw.frame["quantity"].tolist()[:3] == ["0", "10", "20"]
+    assert detect_file_kind(raw) == "forecast"
+
+    result = check_forecast_rows(raw, filename=path.name, items=ITEMS, locations=LOCATIONS, horizons=HORIZONS,
+                                 default_cycle=raw.meta["cycle"])
+    assert result.is_clean and result.warnings == []  # last_consensus is a reference column, ignored quietly
+    assert result.clean["quantity"].tolist() == [10.0 * i for i in range(12)]
+    assert set(result.clean["period"]) == set(HORIZONS[CYCLE][:3])
+
+
+def test_unfilled_template_is_not_taken_as_zeros(tmp_path):
+    path = write_template(tmp_path / "blank.xlsx", _scope_frame(), meta=META)
+    result = check_forecast_rows(read_table(path), filename="blank.xlsx", items=ITEMS, locations=LOCATIONS,
+                                 horizons=HORIZONS, default_cycle=CYCLE)
+    assert result.total_problems == 12
+    assert str(result.problems[0]).startswith("blank.xlsx, row 2, column 'quantity': got ''")
+
+
+def test_generated_at_is_added_when_missing(tmp_path):
+    path = write_template(tmp_path / "t.xlsx", _scope_frame(), meta={"source": "dc", "cycle": CYCLE})
+    meta = read_table(path).meta
+    assert list(meta) == ["source", "cycle", "generated_at"]
+    assert pd.Timestamp(meta["generated_at"]).tz is not None
+
+
+def test_csv_template_carries_the_frame_only(tmp_path):
+    path = write_template(tmp_path / "sales_north.csv", _scope_frame(), meta=META)
+    assert path.read_bytes().startswith(b"\xef\xbb\xbfitem,location,period,quantity,last_consensus\r\n")
+    raw = read_table(path)
+    assert raw.meta == {}  # CSV has nowhere to keep it: submit with source and cycle flags
+    assert raw.frame["quantity"].eq("").all()
+    assert raw.frame["last_consensus"].tolist()[:3] == ["", "1.5", "3"]
+    assert raw.frame["item"].tolist()[6] == "00123"
+
+
+def test_template_format_is_a_closed_set(tmp_path):
+    with pytest.raises(InvalidSpec, match="template format"):
+        write_template(tmp_path / "t.ods", _scope_frame(), meta=META)
+
+
+def test_template_without_quantity_column_gets_one(tmp_path):
+    frame = _scope_frame().drop(columns=["quantity", "last_consensus"])
+    path = write_template(tmp_path / "t.xlsx", frame, meta=META)
+    assert list(read_table(path).frame.columns) == ["item", "location", "period", "quantity"]
+
+
+def test_returned_template_path_is_the_one_given(tmp_path):
+    target = tmp_path / "nested.xlsx"
+    assert write_template(target, _scope_frame(), meta=META) == Path(target)
