@@ -1,0 +1,181 @@
+"""Speed, accuracy and memory of the statistical forecast on 10,000 simulated monthly series.
+
+Run:  python bench/bench_statistical.py [--series 10000] [--months 48] [--sample 500] [--seed 2024]
+      python bench/bench_statistical.py --series 1000 --sample 50     (quick run)
+
+A fixed-seed simulation of our own: level series, trending series, seasonal
+series (multiplicative annual shape, some trending), and intermittent items
+(Bernoulli demand occurrence × gamma sizes).  Prints one table:
+
+* fit-and-select time of ``forecast_statistical`` over all series (full
+  history, horizon 12) and over the history less its last 6 months (horizon 6);
+* statsmodels' ``ExponentialSmoothing`` (Holt–Winters, additive trend and
+  season, estimated initial states, default optimiser) fitted in a loop over a
+  random sample of the same series on the same shortened history, scaled per
+  series; the ratio of per-series times (target ≥ 20× faster);
+* holdout WAPE over the last 6 months on that sample, ours against
+  statsmodels' (target: ours no worse); both forecasts floored at zero;
+* peak memory: tracemalloc peak during one ``forecast_statistical`` call and
+  the process's peak resident set (target under 2 GB).
+"""
+
+from __future__ import annotations
+
+import argparse
+import resource
+import sys
+import time
+import tracemalloc
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+
+from consensus.methods.statistical import forecast_statistical  # noqa: E402
+from consensus.periods import month_index, month_names  # noqa: E402
+
+FIRST_MONTH = "2021-01"
+HOLDOUT = 6
+TARGET_SPEEDUP = 20.0
+TARGET_MEMORY_MIB = 2048.0
+
+
+def simulate_demand(n_series: int, months: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
+    """Fixed-seed demand matrix (n_series, months) and each series' kind."""
+    rng = np.random.default_rng(seed)
+    kinds = rng.choice(["level", "trend", "seasonal", "seasonal_trend", "intermittent"],
+                       size=n_series, p=[0.25, 0.2, 0.25, 0.1, 0.2])
+    t = np.arange(months)[None, :]
+    level = rng.lognormal(mean=4.0, sigma=1.0, size=(n_series, 1))
+    slope = rng.uniform(-0.01, 0.03, size=(n_series, 1)) * level
+    amplitude = rng.uniform(0.15, 0.5, size=(n_series, 1))
+    phase = rng.uniform(0, 2 * np.pi, size=(n_series, 1))
+    season = 1 + amplitude * np.sin(2 * np.pi * t / 12 + phase)
+    noise = rng.normal(0, 1, size=(n_series, months)) * rng.uniform(0.05, 0.25, size=(n_series, 1))
+    has_trend = np.isin(kinds, ["trend", "seasonal_trend"])[:, None]
+    has_season = np.isin(kinds, ["seasonal", "seasonal_trend"])[:, None]
+    mean = (level + np.where(has_trend, slope, 0.0) * t) * np.where(has_season, season, 1.0)
+    y = np.maximum(mean * (1 + noise), 0.0)
+    occurs = rng.random((n_series, months)) < rng.uniform(0.15, 0.6, size=(n_series, 1))
+    sizes = rng.gamma(shape=rng.uniform(0.8, 3.0, size=(n_series, 1)), scale=level / 2, size=(n_series, months))
+    intermittent = (kinds == "intermittent")[:, None]
+    y = np.where(intermittent, occurs * sizes, y)
+    return np.round(y), kinds
+
+
+def long_history(y: np.ndarray) -> pd.DataFrame:
+    n_series, months = y.shape
+    periods = month_names(month_index(FIRST_MONTH) + np.arange(months))
+    return pd.DataFrame(
+        {
+            "item": np.repeat([f"S{i:05d}" for i in range(n_series)], months),
+            "location": "DC1",
+            "period": np.tile(periods, n_series),
+            "quantity": y.ravel(),
+        }
+    )
+
+
+def wape(actual: np.ndarray, forecast: np.ndarray) -> float:
+    return float(np.abs(actual - forecast).sum() / np.abs(actual).sum())
+
+
+def fit_statsmodels(y: np.ndarray, horizon: int) -> tuple[np.ndarray, float]:
+    """Holt–Winters (additive trend and season) per series in a loop; forecasts and seconds."""
+    from statsmodels.tsa.holtwinters import ExponentialSmoothing
+
+    out = np.zeros((len(y), horizon))
+    started = time.perf_counter()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        for i, series in enumerate(y):
+            model = ExponentialSmoothing(series, trend="add", seasonal="add", seasonal_periods=12,
+                                         initialization_method="estimated")
+            out[i] = model.fit().forecast(horizon)
+    return np.maximum(out, 0.0), time.perf_counter() - started
+
+
+def main() -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--series", type=int, default=10_000)
+    parser.add_argument("--months", type=int, default=48)
+    parser.add_argument("--sample", type=int, default=500)
+    parser.add_argument("--seed", type=int, default=2024)
+    parser.add_argument("--skip-statsmodels", action="store_true")
+    args = parser.parse_args()
+
+    y, kinds = simulate_demand(args.series, args.months, args.seed)
+    history = long_history(y)
+    last = month_index(FIRST_MONTH) + args.months - 1
+    cycle_full = month_names([last])[0]
+    cycle_holdout = month_names([last - HOLDOUT])[0]
+
+    started = time.perf_counter()
+    full = forecast_statistical(history, cycle=cycle_full, horizon=12)
+    seconds_full = time.perf_counter() - started
+    started = time.perf_counter()
+    backcast = forecast_statistical(history, cycle=cycle_holdout, horizon=HOLDOUT)
+    seconds_holdout = time.perf_counter() - started
+
+    ours = backcast.forecast["quantity"].to_numpy().reshape(args.series, HOLDOUT)
+    actual = y[:, -HOLDOUT:]
+    sample = np.sort(np.random.default_rng(args.seed + 1).choice(args.series, size=min(args.sample, args.series),
+                                                                 replace=False))
+
+    rows = [
+        ("series × months", f"{args.series:,} × {args.months}", ""),
+        ("ours: fit+select, full history (h=12)", f"{seconds_full:.1f} s", f"{1000 * seconds_full / args.series:.2f} ms/series"),
+        (f"ours: fit+select, history less {HOLDOUT} (h={HOLDOUT})", f"{seconds_holdout:.1f} s",
+         f"{1000 * seconds_holdout / args.series:.2f} ms/series"),
+    ]
+    if not args.skip_statsmodels:
+        theirs, seconds_sm = fit_statsmodels(y[sample, : args.months - HOLDOUT], HOLDOUT)
+        per_sm = seconds_sm / len(sample)
+        per_ours = seconds_holdout / args.series
+        speedup = per_sm / per_ours
+        rows += [
+            (f"statsmodels Holt–Winters loop, {len(sample)} series", f"{seconds_sm:.1f} s",
+             f"{1000 * per_sm:.2f} ms/series"),
+            ("speed-up per series (target ≥ 20×)", f"{speedup:.0f}×", "PASS" if speedup >= TARGET_SPEEDUP else "FAIL"),
+        ]
+        ours_wape = wape(actual[sample], ours[sample])
+        sm_wape = wape(actual[sample], theirs)
+        rows += [
+            (f"holdout WAPE, sample of {len(sample)}: ours", f"{ours_wape:.4f}", ""),
+            (f"holdout WAPE, sample of {len(sample)}: statsmodels HW", f"{sm_wape:.4f}",
+             "PASS" if ours_wape <= sm_wape else "FAIL"),
+        ]
+        for kind in ("level", "trend", "seasonal", "seasonal_trend", "intermittent"):
+            in_kind = kinds[sample] == kind
+            if in_kind.any():
+                rows.append((f"  {kind} ({in_kind.sum()}): ours / statsmodels",
+                             f"{wape(actual[sample][in_kind], ours[sample][in_kind]):.4f}",
+                             f"{wape(actual[sample][in_kind], theirs[in_kind]):.4f}"))
+    rows.append(("holdout WAPE, all series: ours", f"{wape(actual, ours):.4f}", ""))
+
+    tracemalloc.start()
+    forecast_statistical(history, cycle=cycle_full, horizon=12)
+    _, peak = tracemalloc.get_traced_memory()
+    tracemalloc.stop()
+    peak_mib = peak / 2**20
+    rss_mib = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    rows += [
+        ("peak traced memory of one call", f"{peak_mib:.0f} MiB", "PASS" if peak_mib < TARGET_MEMORY_MIB else "FAIL"),
+        ("peak resident set of the process", f"{rss_mib:.0f} MiB", "PASS" if rss_mib < TARGET_MEMORY_MIB else "FAIL"),
+    ]
+    methods = full.series["method"].value_counts()
+    rows.append(("methods chosen (full history)", ", ".join(f"{m} {c}" for m, c in methods.items()), ""))
+
+    width = max(len(r[0]) for r in rows)
+    print(f"{'measure':<{width}}  {'value':>14}  note")
+    print("-" * (width + 30))
+    for name, value, note in rows:
+        print(f"{name:<{width}}  {value:>14}  {note}")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
