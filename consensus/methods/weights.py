@@ -223,10 +223,12 @@ def estimate_weights(
     cycle_idx = month_indexes_factorized(frame["cycle"])
     period_idx = month_indexes_factorized(frame["period"])
     in_window = (cycle_idx >= current - spec.window_cycles) & (cycle_idx <= current - 1) & (period_idx <= current)
-    window = frame[in_window]
+    # A fixed row order makes the float sums, hence the weights, independent of input order.
+    window = frame[in_window].assign(_c=cycle_idx[in_window])
+    window = window.sort_values(["source", "_c", "item", "location", "period"], kind="mergesort")
     window = window.assign(
         segment=assign_segments(window, segment=spec.segment, items=items, locations=locations),
-        discount_weight=float(spec.discount) ** (current - 1 - cycle_idx[in_window]).astype(float),
+        discount_weight=float(spec.discount) ** (current - 1 - window["_c"].to_numpy()).astype(float),
     )
     keys = ["segment", "lag_bucket", "source"]
     own = _error_statistics(window, keys)
