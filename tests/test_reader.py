@@ -45,7 +45,7 @@ READ_REFUSALS: dict[str, tuple[dict, list[str]]] = {
     # Good files read with options that cannot be met.
     "../good/second_sheet.xlsx#missing": ({"sheet": "Budget"}, ["second_sheet.xlsx;", "a sheet named 'Budget'",
                                                                  "'Notes', 'Plan'"]),
-    "../good/second_sheet.xlsx#first": ({}, ["second_sheet.xlsx;", "sheet 'Notes'", "header only"]),
+    "../good/second_sheet.xlsx#first": ({}, ["second_sheet.xlsx;", "sheet 'Notes'", "header only", "also has 'Plan': name the sheet"]),
     "../good/forecast.csv#sheet": ({"sheet": "forecast"}, ["forecast.csv;", "but this is a CSV file"]),
 }
 

@@ -154,9 +154,9 @@ def _empty_frame(columns) -> pd.DataFrame:
 
 
 def _text(frame: pd.DataFrame, column: str) -> pd.Series:
-    """A column as stripped text, or all "" when the file does not have it."""
+    """A column as text (the reader has stripped it), or all "" when the file does not have it."""
     if column in frame.columns:
-        return frame[column].astype("str").str.strip()
+        return frame[column].astype("str")
     return pd.Series("", index=frame.index, dtype="str")
 
 
@@ -201,18 +201,29 @@ def _code_lookup(codes) -> tuple[set[str], dict[str, str]]:
 
 def _match_codes(issues: _Issues, text: pd.Series, filled, codes, *, column: str, what: str) -> pd.Series:
     """Resolve codes against the master: exact first, else a unique case-insensitive match."""
-    exact, by_lower = _code_lookup(codes)
     filled = np.asarray(filled, dtype=bool)
+    if not filled.any():
+        return pd.Series("", index=text.index, dtype="str")
+    exact, by_lower = _code_lookup(codes)
     is_exact = text.isin(exact).to_numpy()
-    respelled = text.str.lower().map(by_lower)
-    is_respelled = filled & ~is_exact & respelled.notna().to_numpy()
-    issues.add(filled & ~is_exact & ~is_respelled, column, text, f"{_with_article(what)} code in the {MASTER_OF[column]} master")
-    if is_respelled.any():
-        pairs = pd.DataFrame({"given": text[is_respelled], "master": respelled[is_respelled]}).drop_duplicates()
+    resolved = text.where(filled & is_exact, "")
+    inexact = filled & ~is_exact
+    respelled = text[inexact].str.lower().map(by_lower)
+    found = respelled.notna().to_numpy()
+    issues.add(_spread(inexact, ~found), column, text, f"{_with_article(what)} code in the {MASTER_OF[column]} master")
+    if found.any():
+        pairs = pd.DataFrame({"given": text[inexact][found], "master": respelled[found]}).drop_duplicates()
         for given, master in zip(pairs["given"], pairs["master"]):
             issues.warn(column, given, f"the exact spelling; read as the master's '{master}'")
-    resolved = text.where(~is_respelled, respelled)
-    return resolved.where(filled & (is_exact | is_respelled), "")
+        resolved[_spread(inexact, found)] = respelled[found].to_numpy()
+    return resolved
+
+
+def _spread(where: np.ndarray, subset: np.ndarray) -> np.ndarray:
+    """A full-length mask that is true at the positions of ``where`` selected by ``subset``."""
+    mask = np.zeros(len(where), dtype=bool)
+    mask[np.flatnonzero(where)[subset]] = True
+    return mask
 
 
 def _parse_numbers(
@@ -290,6 +301,8 @@ def _month_numbers(text: pd.Series, valid) -> np.ndarray:
 def _iso_week_mondays(text: pd.Series, filled) -> tuple[np.ndarray, pd.Series]:
     """Which "YYYY-Www" cells are real ISO weeks (ISO 8601), and each one's Monday."""
     filled = np.asarray(filled, dtype=bool)
+    if not filled.any():
+        return filled, pd.Series(pd.NaT, index=text.index, dtype="datetime64[ns]")
     shaped = filled & text.str.match(WEEK_PATTERN).to_numpy()
     mondays = pd.to_datetime(text.where(shaped, "") + "-1", format="%G-W%V-%u", errors="coerce")
     calendar = mondays.dt.isocalendar()

@@ -105,6 +105,9 @@ def decode_text(data: bytes, *, filename: str) -> tuple[str, str]:
     "é" into "Ã©" without any error.  Bytes 0x81, 0x8D, 0x8F, 0x90 and 0x9D
     are undefined in Windows-1252 (Microsoft's published code page table),
     so a file containing them is refused rather than read as something else.
+    One ambiguity is left, as with any detector: Windows-1252 text whose
+    accented characters happen to form valid UTF-8 sequences (for example
+    "Ã©") is read as UTF-8.  Such runs are rare in real text.
     """
     if data[:2] in (b"\xff\xfe", b"\xfe\xff"):
         _refuse(filename, "UTF-8 or Windows-1252 text; this file is UTF-16 (save it as CSV UTF-8)")
@@ -205,7 +208,8 @@ def _read_xlsx(path: Path, name: str, *, sheet: str | None) -> RawTable:
         _refuse(name, f"a readable .xlsx workbook ({type(exc).__name__}: {exc})")
     try:
         worksheet = _pick_sheet(workbook, name, sheet)
-        header_cells, header_row, data_rows, data_numbers = _sheet_cells(worksheet, name)
+        others = [ws.title for ws in workbook.worksheets if ws.title not in (worksheet.title, META_SHEET)]
+        header_cells, header_row, data_rows, data_numbers = _sheet_cells(worksheet, name, others=others)
         meta = _read_meta(workbook)
     finally:
         workbook.close()
@@ -236,7 +240,7 @@ def _pick_sheet(workbook, name: str, sheet: str | None):
     return visible[0]
 
 
-def _sheet_cells(worksheet, name: str) -> tuple[tuple, int, list[tuple], list[int]]:
+def _sheet_cells(worksheet, name: str, *, others: list[str]) -> tuple[tuple, int, list[tuple], list[int]]:
     """Header cells, header row number, data rows and their row numbers; fully empty rows skipped."""
     worksheet.reset_dimensions()  # some writers store a wrong used-range; read every row
     header = None
@@ -252,10 +256,11 @@ def _sheet_cells(worksheet, name: str) -> tuple[tuple, int, list[tuple], list[in
             rows.append(values)
             numbers.append(number)
     where = f"sheet {worksheet.title!r}"
+    hint = f" (the workbook also has {', '.join(map(repr, others))}: name the sheet to read)" if others else ""
     if header is None:
-        _refuse(name, f"a header row and data rows in {where}; the sheet is empty")
+        _refuse(name, f"a header row and data rows in {where}; the sheet is empty{hint}")
     if not rows:
-        _refuse(name, f"at least one data row below the header in {where}; it has a header only")
+        _refuse(name, f"at least one data row below the header in {where}; it has a header only{hint}")
     # Trailing cells that are empty in the header and every row are formatting, not columns.
     used = max(len(header), *(len(r) for r in rows))
     while used > 0 and (header[used - 1] if used <= len(header) else None) is None and all(
