@@ -331,12 +331,14 @@ def test_detect_file_kind_from_columns():
     assert detect_file_kind(read_table(GOOD / "bom.csv")) == "bom"
 
 
-def test_detect_file_kind_refuses_to_guess_between_forecast_and_monthly_actuals():
+def test_monthly_actuals_taken_for_a_forecast_fail_the_horizon_check():
     raw = read_table(GOOD / "actuals_monthly.csv")
-    with pytest.raises(InputRejected, match="tell a forecast from monthly actuals"):
-        detect_file_kind(raw)
+    assert detect_file_kind(raw) == "forecast"
+    result = check_forecast_rows(raw, filename="actuals_monthly.csv", items=ITEMS, locations=LOCATIONS,
+                                 horizons=HORIZONS, default_cycle=DEFAULT_CYCLE)
+    assert result.total_problems == 3
+    assert all("the horizon 2026-12 … 2028-05" in p.expected for p in result.problems)
     assert detect_file_kind(_raw(raw.frame.to_dict("list"), meta={"kind": "actuals"})) == "actuals"
-    assert detect_file_kind(_raw(raw.frame.to_dict("list"), meta={"source": "dc"})) == "forecast"
     with pytest.raises(InputRejected, match="the columns of a forecast"):
         detect_file_kind(_raw({"colour": ["red"]}))
 

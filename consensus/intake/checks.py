@@ -762,9 +762,11 @@ def detect_file_kind(raw: RawTable) -> str:
     """Tell from a file's columns (and a template's meta) which kind of input it is.
 
     Returns one of "forecast", "events", "actuals", "items", "locations",
-    "bom".  A file whose columns fit both a forecast and monthly actuals
-    (item, location, period, quantity only) needs a template's meta or an
-    explicit kind, and is refused rather than guessed.
+    "bom".  A ``kind`` key in a template's meta wins.  Columns that fit both
+    a forecast and monthly actuals (item, location, period, quantity) count
+    as a forecast: order history normally comes as dated lines, and monthly
+    history mistaken for a forecast is refused by the horizon check, row by
+    row, instead of being stored.  Columns that fit no kind are refused.
     """
     columns = set(raw.frame.columns)
     meta_kind = str(raw.meta.get("kind", "")).strip().lower()
@@ -779,11 +781,9 @@ def detect_file_kind(raw: RawTable) -> str:
     numbers = columns & {"quantity", "value"}
     times = columns & {"period", "week"}
     if numbers and times:
-        forecast_only = columns & {"family", "region", "value", "week", "cycle", "note", "last_consensus"}
-        if forecast_only or raw.meta.get("source"):
-            return "forecast"
-        _refuse_kind(raw, "columns that tell a forecast from monthly actuals (a template's "
-                          "source, a 'date' column for order lines, or the kind given on submit)")
+        # item, location, period, quantity fits monthly actuals too; actuals are loaded apart from
+        # submissions, and a history file taken for a forecast fails the horizon check by name.
+        return "forecast"
     if {"item", "family"} <= columns:
         return "items"
     if {"location", "region"} <= columns and "item" not in columns:
