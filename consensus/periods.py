@@ -45,16 +45,19 @@ def month_name(index: int) -> str:
 
 
 def month_indexes(months: pd.Series) -> np.ndarray:
-    """Vectorised :func:`month_index` for a Series of well-formed months."""
-    text = months.astype(str)
-    return text.str.slice(0, 4).astype(int).to_numpy() * 12 + text.str.slice(5, 7).astype(int).to_numpy() - 1
+    """Vectorised :func:`month_index` for a Series of well-formed months (each distinct month parsed once)."""
+    codes, uniques = pd.factorize(pd.Series(months).astype(str), sort=False)
+    text = pd.Series(uniques, dtype=object).astype(str)
+    parsed = text.str.slice(0, 4).astype(int).to_numpy() * 12 + text.str.slice(5, 7).astype(int).to_numpy() - 1
+    return parsed[codes] if len(parsed) else np.zeros(len(codes), dtype=int)
 
 
 def month_names(indexes) -> np.ndarray:
-    """Vectorised :func:`month_name`."""
+    """Vectorised :func:`month_name` (each distinct index formatted once)."""
     idx = np.asarray(indexes, dtype=int)
-    years, months0 = np.divmod(idx, 12)
-    return np.array([f"{y:04d}-{m + 1:02d}" for y, m in zip(years, months0)], dtype=object)
+    uniques, codes = np.unique(idx, return_inverse=True)
+    names = np.array([month_name(u) for u in uniques], dtype=object)
+    return names[codes.reshape(idx.shape)] if idx.size else np.array([], dtype=object)
 
 
 def shift_month(month: str, months: int) -> str:

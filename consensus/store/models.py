@@ -253,3 +253,23 @@ class Setting(SQLModel, table=True):
 
     key: str = Field(primary_key=True)
     value: str
+
+
+class AlignedLine(SQLModel, table=True):
+    """Derived, not input: a past cycle's sources at planning grain, kept so runs need not re-align history.
+
+    ``key`` fingerprints everything the alignment read (the submissions in force,
+    the order history known at the cycle, the settings); a different key is a
+    stale row, never used.
+    """
+
+    __table_args__ = (Index("ix_aligned_cycle_key", "cycle", "key"),)
+    id: int | None = Field(default=None, primary_key=True)
+    cycle: str
+    key: str
+    source: str
+    item: str
+    location: str
+    period: str
+    lag: int
+    quantity: float

@@ -7,12 +7,14 @@ the same numbers and every number can be explained from stored rows.
 
 from __future__ import annotations
 
+import hashlib
+import warnings as warnings_module
 from collections.abc import Callable
 from dataclasses import asdict, dataclass, field
 
 import numpy as np
 import pandas as pd
-from sqlalchemy import select, update
+from sqlalchemy import delete, select, update
 
 from consensus import periods
 from consensus.errors import InvalidSpec
@@ -21,12 +23,14 @@ from consensus.methods.weights import WeightSpec, estimate_weights
 from consensus.store import frames
 from consensus.store.db import session_scope
 from consensus.store.models import (
+    AlignedLine,
     AlignmentTrace,
     CellSource,
     ConsensusLine,
     ConsensusRun,
     Cycle,
     Submission,
+    SubmissionCycle,
     WeightRecord,
 )
 from consensus.workflow import decisions
@@ -35,6 +39,8 @@ from consensus.workflow.cycles import get_cycle
 from consensus.workflow.statistical_source import NAIVE, STATISTICAL, ensure_statistical
 
 COMBINED_SOURCES = ("sales", "marketing", "dc", STATISTICAL)
+ALIGNMENT_VERSION = "1"  # bump when alignment changes, so cached past alignments are redone
+ALIGNED_COLUMNS_NO_CYCLE = ["source", "item", "location", "period", "lag", "quantity"]
 RECONCILIATIONS = ("bottom_up",)
 
 
@@ -92,9 +98,71 @@ def _previous_consensus(session, cycles: list[str]) -> pd.DataFrame:
         ["source", "cycle", "item", "location", "period", "quantity"]]
 
 
+def _pad_statistical(frame: pd.DataFrame, cycle: Cycle, items, locations) -> pd.DataFrame:
+    """Give every master item × location a statistical forecast: zero where it has no history (a new item)."""
+    stat = frame[frame["source"] == STATISTICAL]
+    if stat.empty:
+        return frame
+    grid = (items[["item"]].merge(locations[["location"]], how="cross")
+            .merge(pd.DataFrame({"period": periods.horizon_months(cycle.name, cycle.horizon)}), how="cross"))
+    known = pd.MultiIndex.from_frame(stat[["item", "location", "period"]])
+    extra = grid[~pd.MultiIndex.from_frame(grid).isin(known)]
+    if extra.empty:
+        return frame
+    extra = extra.assign(source=STATISTICAL, cycle=cycle.name, quantity=0.0,
+                         lag=periods.lags(pd.Series(cycle.name, index=extra.index), extra["period"]))
+    return pd.concat([frame, extra[frame.columns]], ignore_index=True)
+
+
+def align_cycle(cycle: Cycle, lines: pd.DataFrame, cycle_events: pd.DataFrame, *, items, locations, actuals,
+                mix_window_months: int) -> tuple[pd.DataFrame, pd.DataFrame, list[str]]:
+    """One cycle's sources at planning grain, marketing events applied to the statistical source.
+
+    Returns (aligned, traces, warnings).  The statistical forecast before the
+    events is kept as source ``statistical_base`` so marketing's value added can
+    be measured; each event's uplift is traced to the cells it touched.
+    """
+    known = actuals[actuals["period"] <= cycle.name]
+    result = align_lines(lines, cycle=cycle.name, items=items, locations=locations, actuals=known,
+                         mix_window_months=mix_window_months)
+    frame = _pad_statistical(result.aligned, cycle, items, locations)
+    traces, warnings = result.traces, list(result.warnings)
+    stat = frame[frame["source"] == STATISTICAL]
+    if cycle_events.empty or stat.empty:
+        return frame, traces, warnings
+    with warnings_module.catch_warnings(record=True) as caught:
+        warnings_module.simplefilter("always")
+        adjusted, audit = events.apply_event_uplifts(stat, cycle_events, items=items, locations=locations)
+    warnings += [str(w.message) for w in caught]
+    frame = pd.concat([frame[frame["source"] != STATISTICAL], stat.assign(source="statistical_base"),
+                       adjusted.assign(source=STATISTICAL, cycle=cycle.name)[frame.columns]], ignore_index=True)
+    if not audit.empty:
+        first = cycle_events.drop_duplicates("event").set_index("event")
+        uplift = audit.assign(source="marketing event", share=1.0,
+                              submission_id=audit["event"].map(first["submission_id"]),
+                              row=audit["event"].map(first["row"]),
+                              submitted="event " + audit["event"].astype(str),
+                              share_basis="uplift on the statistical forecast of "
+                                          + audit["base"].map("{:,.1f}".format) + " units",
+                              quantity=audit["uplift_units"])
+        traces = pd.concat([traces, uplift[traces.columns]], ignore_index=True)
+    return frame, traces, warnings
+
+
+def _alignment_key(session, cycle: str, digest: str, mix_window_months: int) -> str:
+    sc = SubmissionCycle.__table__
+    ids = sorted(r.submission_id for r in session.execute(
+        select(sc.c.submission_id).where(sc.c.cycle == cycle).where(sc.c.status == "accepted")))
+    return hashlib.sha256(f"{ALIGNMENT_VERSION}|{ids}|{digest}|{mix_window_months}".encode()).hexdigest()
+
+
 def gather_history(session, cycle: Cycle, *, window: int, items, locations, actuals, mix_window_months,
                    progress: Callable[[str], None] | None = None) -> dict:
-    """Every cycle in the window aligned to planning grain, with the statistical source made where missing."""
+    """Every cycle in the window aligned to planning grain, with the statistical source made where missing.
+
+    Past cycles are read from the alignment cache when nothing they depend on
+    has changed; the current cycle is always aligned afresh, with its traces.
+    """
     names = [periods.shift_month(cycle.name, -k) for k in range(window, -1, -1)]
     cycles = [c for c in (session.get(Cycle, n) for n in names) if c is not None]
     made = []
@@ -103,32 +171,33 @@ def gather_history(session, cycle: Cycle, *, window: int, items, locations, actu
             progress(f"statistical forecast {c.name}")
         made.append(ensure_statistical(session, c, actuals=actuals, items=items))
     session.flush()
-    lines = frames.active_forecast_lines(session, cycles=[c.name for c in cycles])
-    event_rows = frames.active_event_lines(session, cycles=[c.name for c in cycles])
-    aligned, traces, warnings, uplift_audit = [], None, [], None
-    for c in cycles:
+    keys = {m["cycle"]: _alignment_key(session, m["cycle"], m["digest"], mix_window_months) for m in made}
+    al = AlignedLine.__table__
+    cached = frames.read_frame(session, select(*[al.c[k] for k in ("cycle", "key", *ALIGNED_COLUMNS_NO_CYCLE)])
+                               .where(al.c.cycle.in_([c.name for c in cycles if c.name != cycle.name])),
+                               ["cycle", "key", *ALIGNED_COLUMNS_NO_CYCLE])
+    cached = cached[cached["key"] == cached["cycle"].map(keys)]
+    cached_cycles = set(cached["cycle"].unique())
+    to_align = [c for c in cycles if c.name == cycle.name or c.name not in cached_cycles]
+    names_to_align = [c.name for c in to_align]
+    lines = frames.active_forecast_lines(session, cycles=names_to_align)
+    event_rows = frames.active_event_lines(session, cycles=names_to_align)
+    aligned, traces, warnings = [cached.drop(columns="key")], None, []
+    for c in to_align:
         if progress:
             progress(f"align {c.name}")
-        known = actuals[actuals["period"] <= c.name]
-        result = align_lines(lines[lines["cycle"] == c.name], cycle=c.name, items=items, locations=locations,
-                             actuals=known, mix_window_months=mix_window_months)
-        frame = result.aligned
-        cycle_events = event_rows[event_rows["cycle"] == c.name]
-        if not cycle_events.empty:
-            stat = frame[frame["source"] == STATISTICAL]
-            adjusted, audit = events.apply_event_uplifts(stat, cycle_events, items=items, locations=locations)
-            # the un-uplifted statistical forecast is kept as its own reference series
-            frame = pd.concat([frame[frame["source"] != STATISTICAL],
-                               stat.assign(source="statistical_base"),
-                               adjusted.assign(source=STATISTICAL, cycle=c.name)], ignore_index=True)
-            if c.name == cycle.name:
-                uplift_audit = audit
+        frame, cycle_traces, cycle_warnings = align_cycle(
+            c, lines[lines["cycle"] == c.name], event_rows[event_rows["cycle"] == c.name], items=items,
+            locations=locations, actuals=actuals, mix_window_months=mix_window_months)
         aligned.append(frame)
         if c.name == cycle.name:
-            traces, warnings = result.traces, result.warnings
-    history = pd.concat(aligned, ignore_index=True) if aligned else pd.DataFrame()
+            traces, warnings = cycle_traces, cycle_warnings
+        else:
+            session.execute(delete(al).where(al.c.cycle == c.name))
+            frames.write_frame(session, AlignedLine, frame.assign(key=keys[c.name]))
+    history = pd.concat([f for f in aligned if not f.empty], ignore_index=True)
     return {"aligned": history, "traces": traces, "warnings": warnings, "made": made,
-            "uplift_audit": uplift_audit, "cycles": [c.name for c in cycles]}
+            "cycles": [c.name for c in cycles]}
 
 
 def measure_history(session, cycle: Cycle, *, spec: "RunSpec", items, locations, actuals,
@@ -169,9 +238,13 @@ def run_cycle(cycle_name: str, *, url=None, spec: RunSpec | None = None,
         if progress:
             progress("error bands")
         band_errors = _band_errors(errors)
-        banded = intervals.empirical_bands(table, band_errors, levels=spec.band_levels)
-        table = table.merge(banded[["item", "location", "period"] + _band_columns(spec.band_levels) + ["band_method"]],
-                            on=["item", "location", "period"], how="left")
+        if band_errors.empty:  # a store's very first cycle: say so rather than invent a band
+            table = table.assign(**{c: np.nan for c in _band_columns(spec.band_levels)},
+                                 band_method="no error history yet (run 'consensus backcast')")
+        else:
+            banded = intervals.empirical_bands(table, band_errors, levels=spec.band_levels)
+            table = table.merge(banded[["item", "location", "period", *_band_columns(spec.band_levels),
+                                        "band_method"]], on=["item", "location", "period"], how="left")
         table, applied = decisions.apply_decisions(session, cycle.name, table, items=items, locations=locations)
         run = _store_run(session, cycle, spec=spec, table=table, combined=combined, gathered=gathered,
                          applied=applied)

@@ -42,9 +42,9 @@ def ensure_statistical(session: Session, cycle: Cycle, *, actuals: pd.DataFrame,
     digest = actuals_digest(known)
     current = _in_force(session, STATISTICAL, cycle.name)
     if current is not None and current.file_format.get("actuals_digest") == digest:
-        return {"cycle": cycle.name, "made": False, "submission_id": current.id}
+        return {"cycle": cycle.name, "made": False, "submission_id": current.id, "digest": digest}
     if known.empty:
-        return {"cycle": cycle.name, "made": False, "submission_id": None}
+        return {"cycle": cycle.name, "made": False, "submission_id": None, "digest": digest}
     families = items.set_index("item")["family"]
     result = forecast_statistical(known, cycle=cycle.name, horizon=cycle.horizon, families=families)
     forecast = result.forecast.merge(result.intervals, on=["item", "location", "period"], how="left")
@@ -71,7 +71,7 @@ def ensure_statistical(session: Session, cycle: Cycle, *, actuals: pd.DataFrame,
             submission_id=sub.id, cycle=cycle.name, source=source, row=rows.index + 2))
         sub_ids[source] = sub.id
     session.flush()
-    return {"cycle": cycle.name, "made": True, "submission_id": sub_ids[STATISTICAL]}
+    return {"cycle": cycle.name, "made": True, "submission_id": sub_ids[STATISTICAL], "digest": digest}
 
 
 def series_table(session: Session, cycle: str) -> pd.DataFrame:
