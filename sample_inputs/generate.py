@@ -677,6 +677,17 @@ PEOPLE = {
 }
 
 
+#: What the demo's review meeting decides (recorded after the first run, applied by the second).
+MEETING_DECISIONS = [
+    {"family": "SPRINKLERS", "region": "NORTH", "period": "2027-04", "kind": "pct", "amount": 8.0,
+     "reason": "Garden-centre group in the north confirmed an extra spring display run",
+     "author": "Wren Caldicott"},
+    {"item": "TM-HUB-4", "period": "2027-03", "kind": "set", "amount": 240.0,
+     "reason": "Launch month: hold the first allocation at the committed retailer orders",
+     "author": "Amara Quennell"},
+]
+
+
 def manifest_files() -> list[dict]:
     entry = lambda path, kind, source, cycle, who: {  # noqa: E731
         "path": path, "kind": kind, "source": source, "cycle": cycle, "submitted_by": PEOPLE[who]}
@@ -747,6 +758,7 @@ def write_all(out: Path) -> list[Path]:
         "horizon": HORIZON,
         "past_cycles": PAST_CYCLES,
         "files": manifest_files(),
+        "decisions": MEETING_DECISIONS,
     }
     (out / "manifest.json").write_text(json.dumps(manifest, indent=2, ensure_ascii=False) + "\n", encoding="utf-8")
     return [out / f["path"] for f in manifest["files"]] + [out / "manifest.json"]

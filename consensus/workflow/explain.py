@@ -8,6 +8,7 @@ import pandas as pd
 from sqlalchemy import select
 
 from consensus.errors import NotFound
+from consensus.periods import lag_bucket_labels
 from consensus.store import frames
 from consensus.store.db import session_scope
 from consensus.store.models import AlignmentTrace, CellSource, ConsensusLine, Decision, Item, WeightRecord
@@ -35,7 +36,7 @@ def _cell_rows(session, model, run_id: int, item: str, location: str, period: st
 
 
 def _fmt(x: float) -> str:
-    return f"{x:,.0f}" if abs(x) >= 10 else f"{x:,.1f}"
+    return f"{x:,.0f}" if abs(x) >= 10 or x == 0 else f"{x:,.1f}"
 
 
 def explain_cell(cycle: str, *, item: str, location: str, period: str, url=None) -> CellExplanation:
@@ -48,6 +49,7 @@ def explain_cell(cycle: str, *, item: str, location: str, period: str, url=None)
         line = lines.iloc[0].to_dict()
         sources = _cell_rows(session, CellSource, run.id, item, location, period).sort_values("source")
         traces = _cell_rows(session, AlignmentTrace, run.id, item, location, period).sort_values(["source", "row"])
+        traces = traces[traces["source"].isin([*sources["source"], "marketing event"])]
         family = session.get(Item, item).family
         w = WeightRecord.__table__
         weights = frames.read_frame(session, select(*[w.c[c] for c in (
@@ -72,11 +74,21 @@ def _write(cycle, run_id, status, spec, line, family, sources, traces, weights, 
     if pd.notna(line.get("lower_80")):
         out[-1] += (f" 80% band {_fmt(line['lower_80'])}–{_fmt(line['upper_80'])}, 95% band "
                     f"{_fmt(line['lower_95'])}–{_fmt(line['upper_95'])} ({line['band_method']}).")
-    scheme = spec.get("weights", {}).get("scheme", "?")
-    out.append(f"Weights: scheme {scheme}, family {family}; each source's weight comes from its accuracy "
-               f"over the last {spec.get('weights', {}).get('window_cycles', '?')} cycles at this lag.")
+    wspec = spec.get("weights", {})
+    bucket = str(lag_bucket_labels([int(line["lag"])])[0])
+    used = weights[(weights["lag_bucket"] == bucket)].set_index("source") if not weights.empty else weights
+    out.append(f"Weights: scheme {wspec.get('scheme', '?')} for family {family} at lag bucket {bucket}, from each "
+               f"source's errors over the last {wspec.get('window_cycles', '?')} cycles.")
     for s in sources.itertuples(index=False):
-        why = s.weight_basis or ""
+        why = ""
+        if s.source in getattr(used, "index", []):
+            w = used.loc[s.source]
+            if pd.notna(w["mse"]):
+                why = f"MSE {w['mse']:,.1f} over {int(w['n_cycles'])} cycles"
+                if pd.notna(w["psi"]):
+                    why += f", shrinkage ψ {w['psi']:.2f}"
+            if w["basis"] and w["basis"] != "segment":
+                why += f" ({w['note'] or w['basis']})"
         out.append(f"  {s.source:<12} {_fmt(s.value):>10} units  weight {s.weight:6.1%}  "
                    f"adds {_fmt(s.contribution):>9}  {why}")
         if s.bias_correction:
