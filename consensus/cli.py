@@ -15,7 +15,7 @@ from consensus.store.db import ENV_VAR
 app = typer.Typer(
     help="Monthly demand review: take in every source's forecast, weigh it by its measured accuracy, merge "
          "into one explained consensus, publish the pack.\n\nExample: consensus demo --workdir demo",
-    no_args_is_help=True, add_completion=False, rich_markup_mode=None,
+    no_args_is_help=True, add_completion=False, rich_markup_mode=None, pretty_exceptions_show_locals=False,
 )
 cycle_app = typer.Typer(help="Open and list planning cycles.\n\nExample: consensus cycle open 2027-03 --horizon 18",
                         no_args_is_help=True)

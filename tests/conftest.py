@@ -58,3 +58,36 @@ def master_store(store_url) -> str:
     load_master_file(DATA / "good" / "locations.csv", kind="locations", url=store_url)
     open_cycle("2026-11", horizon=18, url=store_url)
     return store_url
+
+
+def readme_commands() -> list[str]:
+    """The two Quick start commands of the README, as a user would copy them."""
+    text = (Path(__file__).parent.parent / "README.md").read_text(encoding="utf-8")
+    section = text.split("## Quick start", 1)[1].split("\n## ", 1)[0]
+    blocks = section.split("```sh\n")[1:]
+    return [b.split("```", 1)[0].strip() for b in blocks]
+
+
+@pytest.fixture(scope="session")
+def demo_dir(tmp_path_factory) -> Path:
+    """A folder where the README's demo command has been run, as a user would run it (package already installed)."""
+    import subprocess
+    import sys
+
+    first = readme_commands()[0]
+    demo_part = first.split("&&")[-1].strip()  # the install part is what this test session already did
+    assert demo_part.startswith("consensus demo"), first
+    folder = tmp_path_factory.mktemp("readme_demo")
+    console = Path(sys.executable).parent / "consensus"
+    command = demo_part.replace("consensus", str(console) if console.exists() else "consensus", 1)
+    done = subprocess.run(command, shell=True, cwd=folder, capture_output=True, text=True, timeout=1200)
+    assert done.returncode == 0, done.stderr[-3000:]
+    (folder / "stdout.txt").write_text(done.stdout)
+    workdir = folder / demo_part.split("--workdir", 1)[1].split()[0]
+    get_engine.cache_clear()
+    return workdir
+
+
+@pytest.fixture(scope="session")
+def demo_url(demo_dir) -> str:
+    return f"sqlite:///{demo_dir / 'consensus.db'}"

@@ -81,7 +81,7 @@ def apply_decisions(session, cycle: str, table: pd.DataFrame, *, items: pd.DataF
     cells = table.merge(items[["item", "family"]], on="item").merge(locations[["location", "region"]], on="location")
     applied = []
     for d in found.itertuples(index=False):  # a handful of decisions, each vectorised over its cells
-        mask = (cells["period"] == d.period).to_numpy()
+        mask = (cells["period"] == d.period).to_numpy().copy()
         for column in ("item", "family", "location", "region"):
             value = getattr(d, column)
             if value is not None and not pd.isna(value):
@@ -100,9 +100,10 @@ def apply_decisions(session, cycle: str, table: pd.DataFrame, *, items: pd.DataF
         cells.loc[idx[first_touch], "before_override"] = before[first_touch]
         cells.loc[idx, "consensus"] = after
         ratio = np.divide(after, before, out=np.ones_like(after), where=before > 0)
+        shift = np.where(before > 0, 0.0, after - before)  # a band around zero moves with the new number
         for lo, hi in (("lower_80", "upper_80"), ("lower_95", "upper_95")):
             if lo in cells.columns:  # the band moves with the number it surrounds
-                cells.loc[idx, lo] = cells.loc[idx, lo].to_numpy(dtype=float) * ratio
-                cells.loc[idx, hi] = cells.loc[idx, hi].to_numpy(dtype=float) * ratio
+                cells.loc[idx, lo] = np.maximum(cells.loc[idx, lo].to_numpy(dtype=float) * ratio + shift, 0.0)
+                cells.loc[idx, hi] = cells.loc[idx, hi].to_numpy(dtype=float) * ratio + shift
         applied.append({"id": int(d.id), "cells": int(mask.sum()), "before": float(total), "after": float(target)})
     return cells.drop(columns=["family", "region"]), applied
