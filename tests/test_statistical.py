@@ -17,6 +17,7 @@ from consensus.methods.statistical import (
     StatisticalResult,
     build_demand_matrix,
     forecast_statistical,
+    nan_quantiles,
 )
 from consensus.periods import month_index, month_name
 
@@ -118,6 +119,18 @@ def test_naive_holdout_wape_and_intervals_recomputed_by_hand():
         assert row["upper_95"] == pytest.approx(y[-1] + np.quantile(errors[h], 0.975))
 
 
+def test_nan_quantiles_match_numpy_nanquantile():
+    # numpy.nanquantile (linear, Hyndman & Fan definition 7) is the oracle.
+    rng = np.random.default_rng(8)
+    x = rng.normal(size=(50, 12, 6))
+    x[rng.random(x.shape) < 0.4] = np.nan
+    x[0, :, 0] = np.nan
+    probs = [0.025, 0.1, 0.5, 0.9, 0.975]
+    with np.errstate(all="ignore"), pytest.warns(RuntimeWarning):
+        expected = np.nanquantile(x, probs, axis=1)
+    np.testing.assert_allclose(nan_quantiles(x, probs), expected, rtol=1e-12, atol=1e-12)
+
+
 def test_ses_forecast_agrees_with_statsmodels_at_the_chosen_alpha():
     # Whole pipeline for one method: the reported alpha minimises statsmodels'
     # in-sample SSE over our grid (known initial level = first month), and the
@@ -178,6 +191,7 @@ def test_new_item_without_family_is_flat_and_no_demand_is_zero():
     assert list(q.loc["NONE"]) == [0.0, 0.0]
     series = res.series.set_index("item")
     assert series.loc["NONE", "method"] == "zero_demand" and series.loc["NONE", "pattern"] == "no_demand"
+    assert "no family given" in series.loc["NEW", "fallback"]
 
 
 def test_seasonal_naive_reference_repeats_last_season():
