@@ -36,12 +36,13 @@ from consensus.store.models import (
 from consensus.workflow import decisions
 from consensus.workflow.align import align_lines
 from consensus.workflow.cycles import get_cycle
+from consensus.workflow.reconciliation import DEFAULT_RECONCILIATION, RECONCILIATION_METHODS, reconcile_consensus
 from consensus.workflow.statistical_source import NAIVE, STATISTICAL, ensure_statistical
 
 COMBINED_SOURCES = ("sales", "marketing", "dc", STATISTICAL)
 ALIGNMENT_VERSION = "1"  # bump when alignment changes, so cached past alignments are redone
 ALIGNED_COLUMNS_NO_CYCLE = ["source", "item", "location", "period", "lag", "quantity"]
-RECONCILIATIONS = ("bottom_up",)
+RECONCILIATIONS = RECONCILIATION_METHODS
 
 
 @dataclass(frozen=True)
@@ -51,7 +52,7 @@ class RunSpec:
     weights: WeightSpec = field(default_factory=WeightSpec)
     band_levels: tuple[float, ...] = (0.8, 0.95)
     mix_window_months: int = 12
-    reconciliation: str = "bottom_up"
+    reconciliation: str = DEFAULT_RECONCILIATION
 
     def __post_init__(self) -> None:
         if self.reconciliation not in RECONCILIATIONS:
@@ -235,6 +236,9 @@ def run_cycle(cycle_name: str, *, url=None, spec: RunSpec | None = None,
                                    locations=locations, spec=spec.weights, sources=sources)
         combined = combine.combine_sources(current, weights, items=items, locations=locations, spec=spec.weights)
         table = combined.consensus
+        table, gathered["reconciliation"] = reconcile_consensus(
+            table, current, errors, items=items, locations=locations, method=spec.reconciliation,
+            weight_spec=spec.weights, cycle=cycle.name, actuals=actuals)
         if progress:
             progress("error bands")
         band_errors = _band_errors(errors)
