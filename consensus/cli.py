@@ -178,11 +178,13 @@ def status(ctx: typer.Context, cycle: str = CycleOpt) -> None:
         table = submission_status(cycle, url=_url(ctx))
     except ConsensusError as e:
         _fail(e)
-    table = table.assign(when=table["submitted_at"].astype(str).str.slice(0, 16))
-    table["reasons"] = table.get("reasons", "").map(
-        lambda r: "; ".join(r[:3]) + (" …" if len(r) > 3 else "") if isinstance(r, list) else "")
-    columns = ["source", "scope", "state", "filename", "submitted_by", "when", "row_count", "grain", "reasons"]
+    table = table.assign(when=table["submitted_at"].astype(str).str.slice(0, 16).replace("NaT", ""),
+                         rows=table["row_count"].map(lambda n: "" if n != n else f"{int(n):,}"))
+    columns = ["source", "scope", "state", "filename", "submitted_by", "when", "rows"]
     _print_frame(table[columns].fillna("").astype(str), f"Submissions for cycle {cycle}")
+    for row in table[table["state"] == "rejected"].itertuples(index=False):
+        reasons = row.reasons if isinstance(row.reasons, list) else []
+        typer.echo(f"rejected {row.filename}: " + "; ".join(reasons[:3]) + (" …" if len(reasons) > 3 else ""))
 
 
 @app.command()
