@@ -26,6 +26,8 @@ LEVEL_KEYS: dict[str, tuple[str, ...]] = {
     "family": ("family",),
     "location": ("location",),
     "region": ("region",),
+    # Sales plan family × region, so this is where their own numbers are scored.
+    "family_region": ("family", "region"),
     "total": (),
 }
 
@@ -216,6 +218,9 @@ def _check_level(level: str) -> tuple[str, ...]:
 
 
 def _attach_level_keys(frame: pd.DataFrame, level: str, items: pd.DataFrame, locations: pd.DataFrame) -> pd.DataFrame:
+    if level == "family_region":
+        frame = _attach_level_keys(frame, "family", items, locations)
+        return _attach_level_keys(frame, "region", items, locations)
     if level == "family" and "family" not in frame.columns:
         frame = frame.merge(items[["item", "family"]], on="item", how="left")
         frame["family"] = frame["family"].fillna("(unknown family)")
