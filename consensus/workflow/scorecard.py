@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import pandas as pd
 
-from consensus.methods import accuracy
+from consensus.methods import accuracy, events
 from consensus.store import frames
 from consensus.store.db import session_scope
 from consensus.workflow.cycles import get_cycle
@@ -27,3 +27,18 @@ def scorecard(cycle: str, *, level: str = "family", window: int | None = None, u
     scale = accuracy.seasonal_naive_scale(actuals[actuals["period"] <= cycle], level=level, items=items,
                                           locations=locations)
     return accuracy.accuracy_table(errors, level=level, items=items, locations=locations, seasonal_scale=scale)
+
+
+def marketing_value_added(cycle: str, *, url=None) -> pd.DataFrame:
+    """Did marketing's event uplifts make the statistical forecast better?  By lag bucket, on the cells they touched."""
+    spec = RunSpec()
+    with session_scope(url) as session:
+        c = get_cycle(session, cycle)
+        items, locations = frames.load_items(session), frames.load_locations(session)
+        actuals = frames.load_actuals(session)
+        _, errors = measure_history(session, c, spec=spec, items=items, locations=locations, actuals=actuals)
+    with_events = errors[errors["source"] == "statistical"]
+    without = errors[errors["source"] == "statistical_base"]
+    if without.empty:
+        return pd.DataFrame()
+    return events.uplift_value_added(with_events, without)
