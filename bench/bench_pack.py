@@ -1,0 +1,71 @@
+"""Time and memory of rendering a large meeting pack (200 families, 5,000 items by default).
+
+Run:  python bench/bench_pack.py [--families 200] [--items 5000] [--out /tmp/bench_pack.pdf]
+Prints one table: each stage's wall time and the peak resident memory of the process.
+Target: the whole render (context + HTML + PDF) under 60 s on 2 cores.
+"""
+
+from __future__ import annotations
+
+import argparse
+import resource
+import sys
+import time
+from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+
+from consensus.pack.inputs import example_pack_inputs  # noqa: E402
+from consensus.pack.render import render_pack  # noqa: E402
+
+TARGET_SECONDS = 60.0
+
+
+def peak_rss_mib() -> float:
+    """Peak resident set size of this process so far, in MiB (Linux reports KiB)."""
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+
+
+def main() -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--families", type=int, default=200)
+    parser.add_argument("--items", type=int, default=5000)
+    parser.add_argument("--out", default="/tmp/bench_pack.pdf")
+    parser.add_argument("--html", default="/tmp/bench_pack.html")
+    args = parser.parse_args()
+
+    started = time.perf_counter()
+    inputs = example_pack_inputs(n_families=args.families, n_items=args.items, seed=7)
+    build_seconds = time.perf_counter() - started
+    rss_after_inputs = peak_rss_mib()
+
+    started = time.perf_counter()
+    pack = render_pack(inputs, pdf_path=args.out, html_path=args.html)
+    render_seconds = time.perf_counter() - started
+
+    rows = [
+        ("scenario", f"{args.families} families, {args.items:,} items, {len(inputs.consensus):,} consensus rows"),
+        ("build inputs (not part of target)", f"{build_seconds:6.1f} s"),
+        ("context + charts", f"{pack.seconds.get('context', 0):6.1f} s"),
+        ("HTML templates", f"{pack.seconds.get('html', 0):6.1f} s"),
+        ("WeasyPrint layout", f"{pack.seconds.get('layout', 0):6.1f} s"),
+        ("PDF write", f"{pack.seconds.get('pdf', 0):6.1f} s"),
+        ("render total", f"{render_seconds:6.1f} s  (target < {TARGET_SECONDS:.0f} s: "
+                         f"{'met' if render_seconds < TARGET_SECONDS else 'MISSED'})"),
+        ("pages", f"{pack.n_pages}"),
+        ("PDF size", f"{Path(args.out).stat().st_size / 2**20:6.1f} MiB"),
+        ("HTML size", f"{len(pack.html.encode()) / 2**20:6.1f} MiB"),
+        ("peak RSS after inputs", f"{rss_after_inputs:6.0f} MiB"),
+        ("peak RSS overall", f"{peak_rss_mib():6.0f} MiB"),
+        ("refused fetches", f"{len(pack.refused)}"),
+    ]
+    width = max(len(name) for name, _ in rows)
+    print(f"{'measure'.ljust(width)}  value")
+    print(f"{'-' * width}  {'-' * 40}")
+    for name, value in rows:
+        print(f"{name.ljust(width)}  {value}")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

@@ -1,0 +1,362 @@
+"""Charts of the meeting pack, drawn with matplotlib and returned as inline SVG text.
+
+SVG keeps lines sharp in print and lets the HTML carry its own pictures.  Text is
+kept as SVG ``<text>`` (``svg.fonttype = none``) so files stay small and
+WeasyPrint sets the labels in the pack's own font.  Element ids are salted per
+chart so many charts can share one HTML page without clashing.
+"""
+
+from __future__ import annotations
+
+import io
+import re
+from collections.abc import Mapping, Sequence
+
+import matplotlib
+
+matplotlib.use("Agg")  # no display in a batch job; must precede pyplot-free Figure use on some setups
+
+import numpy as np
+from matplotlib import rc_context
+from matplotlib.backends.backend_svg import FigureCanvasSVG
+from matplotlib.figure import Figure
+from matplotlib.ticker import FuncFormatter, MaxNLocator
+
+from consensus.periods import month_indexes
+
+#: Colours chosen for this pack: a dark neutral for history, a deep blue for the
+#: consensus, and source hues spread in lightness as well as hue (orange, reddish
+#: purple, teal, grey) so they stay apart for the common colour-vision deficiencies;
+#: every source also has its own dash pattern, so colour is never the only cue.
+ACTUAL_COLOUR = "#1d1d1f"
+CONSENSUS_COLOUR = "#0b4f8a"
+PREVIOUS_COLOUR = "#9a9a9a"
+SOURCE_STYLES: dict[str, tuple[str, tuple]] = {
+    "sales": ("#d97a00", (0, (5, 2))),
+    "marketing": ("#b3467f", (0, (1.5, 1.5))),
+    "dc": ("#1f9a8a", (0, (6, 1.5, 1.5, 1.5))),
+    "statistical": ("#5f5f5f", (0, (3, 1.2, 1, 1.2, 1, 1.2))),
+}
+_FALLBACK_SOURCE_COLOURS = ("#7a6a00", "#4d7ab3", "#a05a2c", "#3f7f3f")
+STEP_IMPROVES_COLOUR = "#0b4f8a"
+STEP_WORSENS_COLOUR = "#d97a00"
+
+_RC = {
+    "svg.fonttype": "none",
+    "font.family": "DejaVu Sans",
+    "font.size": 7.5,
+    "axes.linewidth": 0.6,
+    "axes.edgecolor": "#555555",
+    "axes.labelcolor": "#333333",
+    "xtick.color": "#444444",
+    "ytick.color": "#444444",
+    "xtick.major.width": 0.5,
+    "ytick.major.width": 0.5,
+    "path.simplify": True,
+}
+_MONTH_ABBR = ("Jan", "Feb", "Mar", "Apr", "May", "Jun", "Jul", "Aug", "Sep", "Oct", "Nov", "Dec")
+_PROLOGUE = re.compile(r"^.*?(?=<svg)", re.S)
+_METADATA = re.compile(r"<metadata>.*?</metadata>\s*", re.S)
+_ID_OR_REFERENCE = re.compile(r'(id="|url\(#|href="#)([^")]+)')
+_PLAIN_GROUP = re.compile(r'<g id="[^"]*">')
+
+
+def source_style(source: str, position: int = 0) -> tuple[str, tuple]:
+    """Colour and dash pattern of a source's line (known sources first, others from a fallback set)."""
+    if source in SOURCE_STYLES:
+        return SOURCE_STYLES[source]
+    return _FALLBACK_SOURCE_COLOURS[position % len(_FALLBACK_SOURCE_COLOURS)], (0, (4, 1, 1, 1))
+
+
+def _thousands(value: float, _pos=None) -> str:
+    return f"{value:,.0f}"
+
+
+def _month_label(index: float, _pos=None) -> str:
+    year, month0 = divmod(int(round(index)), 12)
+    return f"{_MONTH_ABBR[month0]}\n{year}" if month0 == 0 or _pos == 0 else _MONTH_ABBR[month0]
+
+
+def _unwrap_plain_groups(text: str) -> str:
+    """Drop ``<g id="…">`` wrappers that carry nothing but an id.
+
+    matplotlib wraps every artist in such a group; WeasyPrint's SVG renderer
+    cascades styles node by node, so removing them roughly halves drawing time.
+    The writer puts each group tag on its own line, which makes a line scan with
+    a stack exact; anything unexpected returns the text unchanged.
+    """
+    out, dropped = [], []
+    for line in text.split("\n"):
+        stripped = line.strip()
+        if stripped.startswith("<g"):
+            plain = _PLAIN_GROUP.fullmatch(stripped) is not None
+            dropped.append(plain)
+            if plain:
+                continue
+        elif stripped == "</g>":
+            if not dropped:
+                return text
+            if dropped.pop():
+                continue
+        out.append(line)
+    return "\n".join(out) if not dropped else text
+
+
+def _figure_to_svg(figure: Figure, salt: str) -> str:
+    buffer = io.StringIO()
+    with rc_context({**_RC, "svg.hashsalt": salt}):
+        FigureCanvasSVG(figure).print_svg(buffer, metadata={"Date": None, "Creator": None})
+    text = _METADATA.sub("", _PROLOGUE.sub("", buffer.getvalue(), count=1))
+    text = _unwrap_plain_groups(text)
+    # Ids are salted per chart, and prefixed, so one HTML page can hold hundreds of charts.
+    prefix = re.sub(r"[^A-Za-z0-9_-]", "-", salt)
+    text = _ID_OR_REFERENCE.sub(lambda m: f"{m.group(1)}{prefix}-{m.group(2)}", text)
+    return text.replace("<svg ", '<svg class="chart" role="img" ', 1)
+
+
+def legend_entries(source_names: Sequence[str], *, with_previous: bool = True) -> list[dict[str, str]]:
+    """The family chart's legend as HTML swatches: label plus a CSS background drawing the same dashes.
+
+    The legend sits in the page, not in each SVG, because it is identical on
+    every family page and text inside SVG is the costliest thing to render.
+    """
+    entries = [
+        {"label": "actual", "kind": "line", "css": _dash_css(ACTUAL_COLOUR, None, 1.3)},
+        {"label": "consensus", "kind": "line strong", "css": _dash_css(CONSENSUS_COLOUR, None, 2.6)},
+        {"label": "80% band", "kind": "band", "css": f"background: {CONSENSUS_COLOUR}; opacity: 0.34"},
+        {"label": "95% band", "kind": "band", "css": f"background: {CONSENSUS_COLOUR}; opacity: 0.14"},
+    ]
+    if with_previous:
+        entries.append({"label": "last cycle", "kind": "line", "css": _dash_css(PREVIOUS_COLOUR, (0, (1, 1.2)), 0.9)})
+    for position, name in enumerate(source_names):
+        colour, dashes = source_style(name, position)
+        entries.append({"label": name, "kind": "line", "css": _dash_css(colour, dashes, 1.0)})
+    return entries
+
+
+def _dash_css(colour: str, dashes: tuple | None, width_pt: float) -> str:
+    """CSS drawing a matplotlib dash pattern (on/off lengths in line widths) as a repeating gradient."""
+    height = f"height: {max(width_pt, 1.0):.1f}pt"
+    if dashes is None:
+        return f"background: {colour}; {height}"
+    _, pattern = dashes
+    scale = max(width_pt, 1.0)  # matplotlib scales dashes with the line width
+    stops, at = [], 0.0
+    for i, length in enumerate(pattern):
+        end = at + length * scale
+        paint = colour if i % 2 == 0 else "rgba(255,255,255,0)"
+        stops.append(f"{paint} {at:.2f}pt, {paint} {end:.2f}pt")
+        at = end
+    return f"background: repeating-linear-gradient(to right, {', '.join(stops)}); {height}"
+
+
+def _style_axes(ax, *, y_label: str) -> None:
+    ax.spines[["top", "right"]].set_visible(False)
+    ax.yaxis.set_major_formatter(FuncFormatter(_thousands))
+    ax.yaxis.set_major_locator(MaxNLocator(nbins=5, min_n_ticks=3))
+    ax.set_ylabel(y_label)
+    ax.grid(axis="y", color="#e3e3e3", linewidth=0.5)
+    ax.set_axisbelow(True)
+    ax.margins(x=0.01)
+
+
+class FamilyChartPainter:
+    """Draws the family chart for many families on one reused figure.
+
+    Building a matplotlib figure (axes, ticks, legend) costs more than drawing it,
+    and every family page shares the same months and sources, so the artists are
+    made once and each family only swaps the data in.
+    """
+
+    def __init__(
+        self,
+        *,
+        history_months: Sequence[str],
+        plan_months: Sequence[str],
+        source_names: Sequence[str],
+        quantity_unit: str = "units",
+        with_previous: bool = True,
+        with_legend: bool = False,
+    ) -> None:
+        self.hist_x = month_indexes(_series(history_months)) if len(history_months) else np.array([], dtype=int)
+        self.plan_x = month_indexes(_series(plan_months)) if len(plan_months) else np.array([], dtype=int)
+        self.source_names = list(source_names)
+        nan_plan = np.full(len(self.plan_x), np.nan)
+        with rc_context(_RC):
+            figure = Figure(figsize=(7.0, 2.9 if with_legend else 2.45))
+            ax = figure.add_axes((0.085, 0.3, 0.9, 0.64))
+            self.band_95 = ax.fill_between(self.plan_x, nan_plan, nan_plan, color=CONSENSUS_COLOUR, alpha=0.12,
+                                           linewidth=0, label="95% band")
+            self.band_80 = ax.fill_between(self.plan_x, nan_plan, nan_plan, color=CONSENSUS_COLOUR, alpha=0.26,
+                                           linewidth=0, label="80% band")
+            self.previous_line = None
+            if with_previous:
+                (self.previous_line,) = ax.plot(self.plan_x, nan_plan, color=PREVIOUS_COLOUR, linewidth=0.9,
+                                                linestyle=(0, (1, 1.2)), label="last cycle")
+            self.source_lines = {}
+            for position, name in enumerate(self.source_names):
+                colour, dashes = source_style(name, position)
+                (self.source_lines[name],) = ax.plot(self.plan_x, nan_plan, color=colour, linewidth=1.0,
+                                                     linestyle=dashes, label=name)
+            (self.actual_line,) = ax.plot(self.hist_x, np.full(len(self.hist_x), np.nan), color=ACTUAL_COLOUR,
+                                          linewidth=1.3, label="actual")
+            join_x = np.concatenate([self.hist_x[-1:], self.plan_x])
+            (self.consensus_line,) = ax.plot(join_x, np.full(len(join_x), np.nan), color=CONSENSUS_COLOUR,
+                                             linewidth=2.6, label="consensus", solid_capstyle="round", zorder=5)
+            _style_axes(ax, y_label=f"{quantity_unit} per month")
+            ax.yaxis.set_major_locator(MaxNLocator(nbins=4, min_n_ticks=3))
+            all_x = np.concatenate([self.hist_x, self.plan_x])
+            if len(all_x):
+                # Labels each January and July (year under January and the first label), marks each quarter.
+                labelled = all_x[all_x % 6 == 0]
+                ax.set_xticks(labelled, [_month_label(t, i) for i, t in enumerate(labelled)])
+                ax.set_xticks(all_x[all_x % 3 == 0], minor=True)
+                ax.tick_params(axis="x", which="minor", length=2, width=0.4)
+                ax.set_xlim(all_x[0] - 0.5, all_x[-1] + 0.5)
+            # Everything is drawn inside the limits set per family, so clipping only costs time.
+            for artist in [*ax.lines, *ax.collections]:
+                artist.set_clip_on(False)
+            ax.patch.set_visible(False)
+            figure.patch.set_visible(False)
+            ax.set_xlabel("month", labelpad=1, loc="left")
+            if len(self.hist_x) and len(self.plan_x):
+                boundary = self.hist_x[-1] + 0.5
+                ax.axvline(boundary, color="#333333", linewidth=0.8)
+                on_top = ax.get_xaxis_transform()  # x in months, y as a fraction of the axes
+                ax.text(boundary - 0.4, 0.99, "◀ history", transform=on_top, ha="right", va="top", fontsize=7,
+                        color="#333333")
+                ax.text(boundary + 0.4, 0.99, "plan ▶", transform=on_top, ha="left", va="top", fontsize=7,
+                        color="#333333")
+            if with_legend:
+                handles, labels = ax.get_legend_handles_labels()
+                order = _legend_order(labels)
+                figure.legend([handles[i] for i in order], [labels[i] for i in order], loc="lower center",
+                              ncol=min(len(order), 5), frameon=False, fontsize=6.8, handlelength=2.8,
+                              columnspacing=1.6, bbox_to_anchor=(0.5, 0.0))
+            else:
+                ax.set_position((0.085, 0.2, 0.9, 0.74))
+        self.figure, self.ax = figure, ax
+
+    def draw(
+        self,
+        *,
+        actual: np.ndarray,
+        consensus: np.ndarray,
+        lower_80: np.ndarray,
+        upper_80: np.ndarray,
+        lower_95: np.ndarray,
+        upper_95: np.ndarray,
+        sources: Mapping[str, np.ndarray],
+        previous: np.ndarray | None = None,
+        salt: str = "family",
+    ) -> str:
+        """SVG of one family: actuals, each source, the consensus with its 80%/95% band, history | plan rule."""
+        actual = np.asarray(actual, dtype=float)
+        consensus = np.asarray(consensus, dtype=float)
+        self.band_95.set_data(self.plan_x, lower_95, upper_95)
+        self.band_80.set_data(self.plan_x, lower_80, upper_80)
+        if self.previous_line is not None:
+            self.previous_line.set_ydata(np.full(len(self.plan_x), np.nan) if previous is None else previous)
+        for name, line in self.source_lines.items():
+            values = sources.get(name)
+            line.set_ydata(np.full(len(self.plan_x), np.nan) if values is None else values)
+        self.actual_line.set_ydata(actual)
+        # Join the plan to the last actual so the eye reads one continuous story.
+        self.consensus_line.set_ydata(np.concatenate([actual[-1:], consensus]) if len(self.hist_x) else consensus)
+        stacked = [actual, consensus, upper_95, *(v for v in sources.values())]
+        if previous is not None:
+            stacked.append(previous)
+        finite = np.concatenate([np.asarray(v, dtype=float).ravel() for v in stacked])
+        finite = finite[np.isfinite(finite)]
+        top = float(finite.max()) if finite.size else 1.0
+        # Head-room for the history/plan labels above the highest line.
+        self.ax.set_ylim(0, max(top, 1.0) * 1.12)
+        return _figure_to_svg(self.figure, salt)
+
+
+def draw_family_chart(
+    *,
+    history_months: Sequence[str],
+    actual: np.ndarray,
+    plan_months: Sequence[str],
+    consensus: np.ndarray,
+    lower_80: np.ndarray,
+    upper_80: np.ndarray,
+    lower_95: np.ndarray,
+    upper_95: np.ndarray,
+    sources: Mapping[str, np.ndarray],
+    previous: np.ndarray | None = None,
+    quantity_unit: str = "units",
+    salt: str = "family",
+) -> str:
+    """SVG of one family chart with its own legend (a one-off :class:`FamilyChartPainter`)."""
+    painter = FamilyChartPainter(history_months=history_months, plan_months=plan_months,
+                                 source_names=list(sources), quantity_unit=quantity_unit,
+                                 with_previous=previous is not None, with_legend=True)
+    return painter.draw(actual=actual, consensus=consensus, lower_80=lower_80, upper_80=upper_80,
+                        lower_95=lower_95, upper_95=upper_95, sources=sources, previous=previous, salt=salt)
+
+
+def _legend_order(labels: list[str]) -> list[int]:
+    first = ["actual", "consensus", "80% band", "95% band", "last cycle"]
+    ranked = [labels.index(name) for name in first if name in labels]
+    return ranked + [i for i, name in enumerate(labels) if name not in first]
+
+
+def draw_accuracy_history(
+    *, cycles: Sequence[str], wape_by_source: Mapping[str, np.ndarray], salt: str = "history"
+) -> str:
+    """SVG line chart of each source's WAPE (%) over recent cycles."""
+    with rc_context(_RC):
+        figure = Figure(figsize=(7.0, 2.1))
+        ax = figure.add_axes((0.085, 0.2, 0.72, 0.74))
+        x = np.arange(len(cycles))
+        for position, (name, values) in enumerate(wape_by_source.items()):
+            colour, dashes = source_style(name, position)
+            ax.plot(x, values, color=colour, linewidth=1.4, linestyle=dashes, marker="o", markersize=2.5,
+                    label=name)
+            if len(values) and np.isfinite(values[-1]):
+                ax.annotate(f"{name} {values[-1]:.1f}%", (x[-1], values[-1]), xytext=(6, 0),
+                            textcoords="offset points", va="center", fontsize=6.8, color=colour,
+                            annotation_clip=False)
+        _style_axes(ax, y_label="WAPE, %")
+        ax.set_ylim(bottom=0)
+        ax.set_xticks(x, list(cycles))
+        ax.tick_params(axis="x", labelsize=6.3)
+        ax.set_xlabel("cycle", labelpad=1)
+    return _figure_to_svg(figure, salt)
+
+
+def draw_value_added_steps(*, steps: Sequence[str], wape: np.ndarray, salt: str = "fva") -> str:
+    """SVG stairstep of forecast value added: WAPE (%) after each step, with the change from the step before."""
+    wape = np.asarray(wape, dtype=float)
+    with rc_context(_RC):
+        figure = Figure(figsize=(7.0, 2.4))
+        ax = figure.add_axes((0.085, 0.17, 0.9, 0.76))
+        x = np.arange(len(steps))
+        change = np.diff(wape, prepend=np.nan)
+        colours = [
+            "#8a8a8a" if not np.isfinite(c) else (STEP_IMPROVES_COLOUR if c <= 0 else STEP_WORSENS_COLOUR)
+            for c in change
+        ]
+        hatches = ["" if not np.isfinite(c) or c <= 0 else "////" for c in change]
+        bars = ax.bar(x, wape, color=colours, width=0.62, edgecolor="white", linewidth=0.6)
+        for bar, hatch in zip(bars, hatches):
+            bar.set_hatch(hatch)
+        ax.step(np.append(x - 0.31, x[-1] + 0.31) if len(x) else x,
+                np.append(wape, wape[-1:]) if len(x) else wape, where="post", color="#333333",
+                linewidth=0.7)
+        for xi, w, c in zip(x, wape, change):
+            label = f"{w:.1f}%" if not np.isfinite(c) else f"{w:.1f}%\n{'▼' if c <= 0 else '▲'} {c:+.1f} pt"
+            ax.text(xi, w, label, ha="center", va="bottom", fontsize=6.8, color="#222222")
+        _style_axes(ax, y_label="WAPE, % (lower is better)")
+        ax.set_ylim(0, (np.nanmax(wape) if len(wape) else 1) * 1.35)
+        ax.set_xticks(x, list(steps))
+        ax.set_xlabel("forecast step", labelpad=1)
+    return _figure_to_svg(figure, salt)
+
+
+def _series(values):
+    import pandas as pd
+
+    return pd.Series(list(values), dtype=object)

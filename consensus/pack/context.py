@@ -1,0 +1,845 @@
+"""Turn a cycle's :class:`PackInputs` into the context the pack templates render.
+
+All aggregation is done here, once, with pandas: family × month frames are built by
+one groupby over the whole cycle and then split into per-family pages, so the
+cost of a pack grows with its rows, not with rows × families.  The templates only
+lay out what this module hands them (plus the number formatting filters below).
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from markupsafe import Markup
+
+from consensus.errors import InvalidSpec
+from consensus.pack import charts
+from consensus.pack.inputs import PackInputs
+from consensus.periods import (
+    DEFAULT_LAG_BUCKETS,
+    horizon_months,
+    lag_bucket_labels,
+    month_index,
+    month_indexes,
+    month_names,
+    month_range,
+    shift_month,
+)
+
+UNCERTAINTY_CAUTION = (
+    "Every forecast in this pack will be wrong by some amount. The shaded 80% and 95% bands show how much: "
+    "judging by past errors at the same lag, actual demand should land inside the 80% band about four months "
+    "in five. Plan stock and capacity for the band, not only for the single line."
+)
+TS_LIMIT_DEFAULT = 4.0
+_MINUS = "\u2212"
+_UP, _DOWN = "▲", "▼"
+_SOURCE_ORDER = ("statistical", "sales", "marketing", "dc")
+_EXCEPTION_KINDS = {
+    "disagreement": "Sources disagree",
+    "tracking": "Biased source",
+    "missing": "Missing input",
+    "change": "Large change vs last cycle",
+    "band": "Unusually wide band",
+}
+
+
+# --------------------------------------------------------------------------- number formatting
+
+
+def format_quantity(value: Any) -> str:
+    """A quantity as the pack prints it: whole units with thousands separators, "–" when unknown."""
+    if value is None or (isinstance(value, float) and not math.isfinite(value)) or pd.isna(value):
+        return "–"
+    text = f"{round(float(value)):,.0f}"
+    return text.replace("-", _MINUS)
+
+
+def format_change(value: Any, *, digits: int = 0, suffix: str = "") -> str:
+    """A signed change with a direction symbol ("▲ +1,234", "▼ −56"), so sign never rests on colour."""
+    if value is None or pd.isna(value) or not math.isfinite(float(value)):
+        return "–"
+    value = float(value)
+    rounded = round(value, digits)
+    if rounded == 0:
+        return f"0{suffix}"
+    body = f"{abs(rounded):,.{digits}f}{suffix}"
+    return f"{_UP} +{body}" if rounded > 0 else f"{_DOWN} {_MINUS}{body}"
+
+
+def format_percent(value: Any, *, digits: int = 1, signed: bool = False) -> str:
+    """A percentage already in percent units ("12.3%"); signed adds ▲/▼ and +/−."""
+    if value is None or pd.isna(value) or not math.isfinite(float(value)):
+        return "–"
+    if signed:
+        return format_change(value, digits=digits, suffix="%")
+    return f"{float(value):,.{digits}f}%".replace("-", _MINUS)
+
+
+def format_money(value: Any) -> str:
+    """A money amount, whole currency units with thousands separators."""
+    return format_quantity(value)
+
+
+def format_share(value: Any) -> str:
+    """A fraction (0–1) as a whole percentage ("34%")."""
+    if value is None or pd.isna(value):
+        return "–"
+    return f"{100 * float(value):.0f}%"
+
+
+# --------------------------------------------------------------------------- helpers
+
+
+def _ratio_pct(numerator: pd.Series, denominator: pd.Series) -> pd.Series:
+    """100·(numerator/denominator − 1) where the denominator is positive, else NaN."""
+    den = denominator.where(denominator > 0)
+    return 100 * (numerator / den - 1)
+
+
+def _records(frame: pd.DataFrame) -> list[dict]:
+    """Frame rows as plain dicts with NaN turned into None, for the templates."""
+    if frame.empty:
+        return []
+    clean = frame.astype(object).where(frame.notna(), None)
+    return clean.to_dict("records")
+
+
+def _with_master(frame: pd.DataFrame, items: pd.DataFrame) -> pd.DataFrame:
+    """Attach family and unit price; items unknown to the master go to family "(unassigned)"."""
+    out = frame.merge(items[["item", "family", "unit_price"]], on="item", how="left")
+    out["family"] = out["family"].fillna("(unassigned)")
+    out["unit_price"] = pd.to_numeric(out["unit_price"], errors="coerce").fillna(0.0)
+    return out
+
+
+def _as_numeric(frame: pd.DataFrame, columns) -> pd.DataFrame:
+    return frame.assign(**{c: pd.to_numeric(frame[c], errors="coerce") for c in columns})
+
+
+def _source_order(names) -> list[str]:
+    names = list(dict.fromkeys(str(n) for n in names))
+    known = [s for s in _SOURCE_ORDER if s in names]
+    return known + sorted(n for n in names if n not in known)
+
+
+def _scope_mask(scope: str, cells: pd.DataFrame) -> pd.Series:
+    """Cells covered by a submission scope: "all", a region, a location, a family or an item."""
+    scope = str(scope)
+    if scope.lower() in ("all", "*", ""):
+        return pd.Series(True, index=cells.index)
+    return (
+        (cells["region"] == scope) | (cells["location"] == scope)
+        | (cells["family"] == scope) | (cells["item"] == scope)
+    )
+
+
+# --------------------------------------------------------------------------- the context
+
+
+def build_pack_context(
+    inputs: PackInputs,
+    *,
+    summary_windows: tuple[int, ...] = (3, 6, 12),
+    summary_family_rows: int = 12,
+    top_changes: int = 5,
+    top_decisions: int = 8,
+    exception_rows: int = 15,
+    change_threshold_pct: float = 25.0,
+    band_ratio_threshold: float = 0.8,
+    band_months: int = 3,
+    ts_limit: float = TS_LIMIT_DEFAULT,
+    history_months_shown: int = 24,
+    component_rows: int = 40,
+    with_charts: bool = True,
+) -> dict[str, Any]:
+    """Everything the templates show, aggregated once from ``inputs``.
+
+    Money at stake for an exception is quantity × unit price: the spread between
+    sources for disagreement, the change for a moved plan, half the 80% band
+    width for a wide band, |bias %| × the source's plan value for a biased source,
+    and the next ``band_months`` of plan value in scope for a missing input.
+    Family bands combine item × location bands as √Σ(deviation²), which assumes
+    independent errors (normal approximation); errors that move together would
+    make family bands wider.
+    """
+    if any(int(w) < 1 for w in summary_windows):
+        raise InvalidSpec(f"summary windows must be positive month counts, got {summary_windows!r}")
+    if ts_limit <= 0 or band_ratio_threshold <= 0 or change_threshold_pct <= 0:
+        raise InvalidSpec("ts_limit, band_ratio_threshold and change_threshold_pct must be positive")
+
+    plan_months = horizon_months(inputs.cycle, int(inputs.horizon))
+    items = inputs.items.copy()
+    items["unit_price"] = pd.to_numeric(items["unit_price"], errors="coerce").fillna(0.0)
+    locations = inputs.locations
+
+    cons = _with_master(
+        _as_numeric(inputs.consensus, ["consensus", "lower_80", "upper_80", "lower_95", "upper_95", "lag"]), items
+    )
+    cons = cons.merge(locations, on="location", how="left")
+    cons["value"] = cons["consensus"] * cons["unit_price"]
+    previous = _with_master(_as_numeric(inputs.previous, ["consensus"]), items)
+    actuals = _with_master(_as_numeric(inputs.actuals, ["quantity"]), items)
+    sources = _with_master(_as_numeric(inputs.sources, ["quantity"]), items)
+    source_names = _source_order(sources["source"].unique()) if not sources.empty else []
+
+    # One family × month table for the whole cycle: consensus, band deviations, last cycle, last year.
+    cons["dev_lo80"] = (cons["consensus"] - cons["lower_80"]) ** 2
+    cons["dev_hi80"] = (cons["upper_80"] - cons["consensus"]) ** 2
+    cons["dev_lo95"] = (cons["consensus"] - cons["lower_95"]) ** 2
+    cons["dev_hi95"] = (cons["upper_95"] - cons["consensus"]) ** 2
+    fam_plan = cons.groupby(["family", "period"], as_index=False)[
+        ["consensus", "value", "dev_lo80", "dev_hi80", "dev_lo95", "dev_hi95"]
+    ].sum()
+    fam_prev = previous.groupby(["family", "period"], as_index=False)["consensus"].sum().rename(
+        columns={"consensus": "previous"}
+    )
+    fam_act = actuals.groupby(["family", "period"], as_index=False)["quantity"].sum().rename(
+        columns={"quantity": "actual"}
+    )
+    fam_plan = fam_plan.merge(fam_prev, on=["family", "period"], how="left")
+    last_year = fam_act.assign(
+        period=month_names(month_indexes(fam_act["period"]) + 12) if not fam_act.empty else fam_act["period"]
+    ).rename(columns={"actual": "last_year"})
+    fam_plan = fam_plan.merge(last_year, on=["family", "period"], how="left")
+
+    family_value = fam_plan.groupby("family")["value"].sum().sort_values(ascending=False)
+    family_order = list(family_value.index)
+
+    summary = _summary_tables(fam_plan, plan_months, summary_windows, family_order, summary_family_rows)
+    changes_top, changes_flagged = _changes_vs_last_cycle(
+        cons, previous, sources, inputs, top_changes, change_threshold_pct, source_names
+    )
+    exceptions = _exceptions(
+        inputs, cons, sources, items, changes_flagged, exception_rows=exception_rows, ts_limit=ts_limit,
+        band_ratio_threshold=band_ratio_threshold, band_months=band_months, plan_months=plan_months,
+    )
+    families = _family_pages(
+        inputs, fam_plan, fam_act, sources, cons, family_order, source_names, plan_months,
+        history_months_shown=history_months_shown, with_charts=with_charts,
+    )
+    scorecard = _scorecard(inputs, ts_limit=ts_limit, source_names=source_names, with_charts=with_charts)
+    fva = _value_added(inputs.fva, with_charts=with_charts)
+
+    decisions = inputs.decisions.copy()
+    if not decisions.empty:
+        decisions = decisions.sort_values("at", kind="stable")
+        decisions["at"] = decisions["at"].map(_format_when)
+
+    submissions = inputs.submissions.copy()
+    if not submissions.empty:
+        submissions = submissions.sort_values(["source", "scope"], kind="stable")
+        submissions["submitted_at"] = submissions["submitted_at"].map(_format_when)
+        submissions["sha_short"] = submissions["sha256"].astype(str).str.slice(0, 12)
+        submissions["is_late"] = submissions["status"].astype(str).str.lower().eq("late")
+
+    total_12 = next((w for w in summary["windows"] if w["months"] == 12), None)
+    meta = {
+        "company": inputs.company,
+        "cycle": inputs.cycle,
+        "status": inputs.status,
+        "status_label": inputs.status.upper(),
+        "is_draft": inputs.status == "draft",
+        "generated_at": _format_when(inputs.generated_at),
+        "horizon": int(inputs.horizon),
+        "last_actual_month": inputs.last_actual_month,
+        "first_plan_month": plan_months[0],
+        "last_plan_month": plan_months[-1],
+        "quantity_unit": inputs.quantity_unit,
+        "currency": inputs.currency,
+        "n_families": len(family_order),
+        "n_items": int(items["item"].nunique()),
+        "n_locations": int(locations["location"].nunique()),
+        "n_cells": int(cons[["item", "location"]].drop_duplicates().shape[0]) if not cons.empty else 0,
+        "sources": source_names,
+    }
+    return {
+        "meta": meta,
+        "caution_text": UNCERTAINTY_CAUTION,
+        "top_decisions": int(top_decisions),
+        "submissions": _records(submissions),
+        "missing": _records(inputs.missing),
+        "summary": summary,
+        "headline_total_12": total_12["total"]["consensus"] if total_12 else None,
+        "top_changes": changes_top,
+        "exceptions": exceptions,
+        "families": families,
+        "family_legend": charts.legend_entries(source_names, with_previous=not inputs.previous.empty),
+        "scorecard": scorecard,
+        "fva": fva,
+        "decisions": _records(decisions),
+        "components": _components(inputs.components, plan_months, component_rows),
+        "method_notes": [{"title": k, "text": v} for k, v in inputs.method_notes.items()],
+        "band_coverage": _band_coverage(inputs.band_coverage),
+    }
+
+
+def _format_when(value: Any) -> str:
+    if value is None or (not isinstance(value, str) and pd.isna(value)):
+        return "–"
+    stamp = pd.Timestamp(value)
+    return stamp.strftime("%Y-%m-%d %H:%M")
+
+
+# --------------------------------------------------------------------------- executive summary
+
+
+def _summary_tables(
+    fam_plan: pd.DataFrame, plan_months: list[str], windows, family_order: list[str], max_rows: int
+) -> dict[str, Any]:
+    """Consensus for the next N months by family, against last cycle and the same months last year.
+
+    Changes are measured on the months both figures cover, so a last plan that
+    stops short does not read as a fall.
+    """
+    month_pos = {m: i for i, m in enumerate(plan_months)}
+    frame = fam_plan.assign(position=fam_plan["period"].map(month_pos))
+    frame = frame[frame["position"].notna()]
+    has_prev = frame["previous"].notna()
+    has_ly = frame["last_year"].notna()
+    frame = frame.assign(
+        cons_vs_prev=frame["consensus"].where(has_prev, 0.0),
+        prev=frame["previous"].fillna(0.0),
+        cons_vs_ly=frame["consensus"].where(has_ly, 0.0),
+        ly=frame["last_year"].fillna(0.0),
+        n_prev=has_prev.astype(int),
+        n_ly=has_ly.astype(int),
+    )
+    sums_cols = ["consensus", "value", "cons_vs_prev", "prev", "cons_vs_ly", "ly", "n_prev", "n_ly"]
+    shown = family_order[:max_rows]
+    rest = family_order[max_rows:]
+    out_windows, by_family = [], {}
+    for months in windows:
+        months = int(months)
+        if months > len(plan_months):
+            continue
+        in_window = frame[frame["position"] < months]
+        per_family = in_window.groupby("family")[sums_cols].sum().reindex(family_order).fillna(0.0)
+        per_family["vs_prev_pct"] = _ratio_pct(per_family["cons_vs_prev"], per_family["prev"])
+        per_family["vs_ly_pct"] = _ratio_pct(per_family["cons_vs_ly"], per_family["ly"])
+        total = per_family[sums_cols].sum()
+        total_row = {
+            "consensus": float(total["consensus"]),
+            "value": float(total["value"]),
+            "previous": float(total["prev"]) if total["n_prev"] else None,
+            "last_year": float(total["ly"]) if total["n_ly"] else None,
+            "vs_prev_pct": float(100 * (total["cons_vs_prev"] / total["prev"] - 1)) if total["prev"] > 0 else None,
+            "vs_ly_pct": float(100 * (total["cons_vs_ly"] / total["ly"] - 1)) if total["ly"] > 0 else None,
+        }
+        other = per_family.loc[rest, sums_cols].sum() if rest else None
+        out_windows.append(
+            {
+                "months": months,
+                "label": f"Next {months} months",
+                "first": plan_months[0],
+                "last": plan_months[months - 1],
+                "total": total_row,
+                "partial_previous": bool(total["n_prev"] < months * max(len(family_order), 1)),
+                "other": None if other is None else {
+                    "consensus": float(other["consensus"]),
+                    "vs_prev_pct": float(100 * (other["cons_vs_prev"] / other["prev"] - 1)) if other["prev"] > 0 else None,
+                    "vs_ly_pct": float(100 * (other["cons_vs_ly"] / other["ly"] - 1)) if other["ly"] > 0 else None,
+                },
+            }
+        )
+        by_family[months] = per_family
+    # One row per family holding every window's figures, for the by-family tables.
+    rows = []
+    for family in family_order:
+        row = {"family": family, "windows": []}
+        for window in out_windows:
+            pf = by_family[window["months"]].loc[family]
+            row["windows"].append(
+                {
+                    "consensus": float(pf["consensus"]),
+                    "previous": float(pf["prev"]) if pf["n_prev"] else None,
+                    "vs_prev_pct": None if pd.isna(pf["vs_prev_pct"]) else float(pf["vs_prev_pct"]),
+                    "last_year": float(pf["ly"]) if pf["n_ly"] else None,
+                    "vs_ly_pct": None if pd.isna(pf["vs_ly_pct"]) else float(pf["vs_ly_pct"]),
+                }
+            )
+        rows.append(row)
+    return {
+        "windows": out_windows,
+        "rows_shown": rows[: len(shown)],
+        "rows_all": rows,
+        "n_other": len(rest),
+    }
+
+
+# --------------------------------------------------------------------------- changes against last cycle
+
+
+def _weights_by_family_source(weights: pd.DataFrame, families, source_names) -> pd.DataFrame:
+    """Mean weight of each source per family over lag buckets; families without rows use segment "all"."""
+    w = _as_numeric(weights, ["weight"])
+    mean_w = w.groupby(["segment", "source"], as_index=False)["weight"].mean()
+    grid = pd.MultiIndex.from_product([list(families), list(source_names)], names=["family", "source"]).to_frame(
+        index=False
+    )
+    own = grid.merge(mean_w.rename(columns={"segment": "family"}), on=["family", "source"], how="left")
+    overall = mean_w[mean_w["segment"].astype(str).str.lower() == "all"][["source", "weight"]]
+    own = own.merge(overall.rename(columns={"weight": "weight_all"}), on="source", how="left")
+    own["weight"] = own["weight"].fillna(own["weight_all"]).fillna(1.0 / max(len(source_names), 1))
+    return own[["family", "source", "weight"]]
+
+
+def _changes_vs_last_cycle(
+    cons, previous, sources, inputs, top_n, threshold_pct, source_names
+) -> tuple[list[dict], pd.DataFrame]:
+    """Items whose plan moved most (in money) since the last published cycle, and what moved them.
+
+    A change is explained by each source's pull Δ_s = w_s · (source_s − last plan),
+    summed over the months both plans cover: with weights adding to one the
+    consensus move is Σ_s Δ_s before overrides, so the largest |Δ_s| of the same
+    sign names the source that moved the number.
+    """
+    empty = pd.DataFrame(columns=["item", "family", "now", "before", "change", "change_pct", "at_stake"])
+    if cons.empty or previous.empty:
+        return [], empty
+    common = cons[["item", "location", "period", "consensus", "family", "unit_price"]].merge(
+        previous[["item", "location", "period", "consensus"]].rename(columns={"consensus": "before"}),
+        on=["item", "location", "period"],
+    )
+    if common.empty:
+        return [], empty
+    by_item = common.groupby(["item", "family"], as_index=False).agg(
+        now=("consensus", "sum"), before=("before", "sum"), unit_price=("unit_price", "first"),
+        first=("period", "min"), last=("period", "max"),
+    )
+    by_item["change"] = by_item["now"] - by_item["before"]
+    by_item["change_pct"] = _ratio_pct(by_item["now"], by_item["before"])
+    by_item["at_stake"] = by_item["change"].abs() * by_item["unit_price"]
+    flagged = by_item[by_item["change_pct"].abs() > threshold_pct].sort_values("at_stake", ascending=False)
+
+    top = by_item.nlargest(top_n, "at_stake")
+    if top.empty:
+        return [], flagged
+    keys = common[common["item"].isin(top["item"])][["item", "location", "period", "before"]]
+    src = sources[sources["item"].isin(top["item"])][["source", "item", "location", "period", "quantity"]]
+    src = src.merge(keys, on=["item", "location", "period"])
+    pull = src.groupby(["item", "source"], as_index=False).agg(quantity=("quantity", "sum"), before=("before", "sum"))
+    pull = pull.merge(top[["item", "family"]], on="item")
+    pull = pull.merge(_weights_by_family_source(inputs.weights, top["family"].unique(), source_names),
+                      on=["family", "source"], how="left")
+    pull["pull"] = pull["weight"].fillna(0) * (pull["quantity"] - pull["before"])
+    pull = pull.merge(top[["item", "change"]], on="item")
+    same_sign = np.sign(pull["pull"]) == np.sign(pull["change"])
+    pull["rank_key"] = pull["pull"].abs().where(same_sign, -1.0)
+    drivers = pull.sort_values("rank_key", ascending=False).drop_duplicates("item")
+    drivers = drivers.set_index("item")[["source", "pull", "quantity", "before", "rank_key"]]
+
+    decisions = inputs.decisions
+    out = []
+    for row in top.itertuples(index=False):
+        driver = drivers.loc[row.item] if row.item in drivers.index else None
+        if driver is not None and driver["rank_key"] >= 0:
+            why = (
+                f"{driver['source']} moved {format_change(driver['quantity'] - driver['before'])} "
+                f"vs last plan; weighted pull {format_change(driver['pull'])}"
+            )
+        else:
+            why = "no source explains the move; see decisions and overrides"
+        overrides = decisions[(decisions["scope"] == row.item) | (decisions["scope"] == row.family)]
+        out.append(
+            {
+                "item": row.item, "family": row.family, "months": f"{row.first} – {row.last}",
+                "before": row.before, "now": row.now, "change": row.change,
+                "change_pct": None if pd.isna(row.change_pct) else row.change_pct,
+                "at_stake": row.at_stake, "why": why,
+                "override": "; ".join(overrides["change"].astype(str)) if not overrides.empty else "",
+            }
+        )
+    return out, flagged
+
+
+# --------------------------------------------------------------------------- exceptions
+
+
+def _exceptions(
+    inputs, cons, sources, items, changes_flagged, *, exception_rows, ts_limit, band_ratio_threshold,
+    band_months, plan_months,
+) -> dict[str, Any]:
+    """The exceptions of the cycle, each table ranked by money at stake, plus one ranked list of decisions."""
+    ranked_parts = []
+
+    # Sources disagree: cells flagged by the disagreement measure.
+    dis = inputs.disagreement
+    if not dis.empty and "flagged" in dis:
+        dis = dis[dis["flagged"].astype(bool)]
+    dis = _as_numeric(dis, ["spread", "spread_ratio"]).merge(items[["item", "unit_price"]], on="item", how="left")
+    dis["at_stake"] = dis["spread"] * dis["unit_price"].fillna(0)
+    dis_cells = dis.nlargest(exception_rows, "at_stake")
+    if not dis_cells.empty:
+        # Name the lowest and highest source for the cells shown (a handful of rows).
+        span = sources.merge(dis_cells[["item", "location", "period"]], on=["item", "location", "period"])
+        lo = span.loc[span.groupby(["item", "location", "period"])["quantity"].idxmin()]
+        hi = span.loc[span.groupby(["item", "location", "period"])["quantity"].idxmax()]
+        keys = ["item", "location", "period"]
+        dis_cells = dis_cells.merge(
+            lo[keys + ["source", "quantity"]].rename(columns={"source": "low_source", "quantity": "low"}),
+            on=keys, how="left",
+        ).merge(
+            hi[keys + ["source", "quantity"]].rename(columns={"source": "high_source", "quantity": "high"}),
+            on=keys, how="left",
+        )
+    dis_family = (
+        dis.groupby("family", as_index=False).agg(cells=("item", "size"), at_stake=("at_stake", "sum"))
+        .sort_values("at_stake", ascending=False)
+        if not dis.empty else pd.DataFrame(columns=["family", "cells", "at_stake"])
+    )
+    if not dis.empty:
+        dis_item = dis.groupby(["item", "family"], as_index=False).agg(
+            cells=("period", "size"), at_stake=("at_stake", "sum"), spread=("spread", "sum")
+        )
+        ranked_parts.append(pd.DataFrame({
+            "kind": "disagreement", "scope": dis_item["item"] + " (" + dis_item["family"].astype(str) + ")",
+            "detail": dis_item["cells"].astype(str) + " month × location cells; sources span "
+                      + dis_item["spread"].map(format_quantity) + " " + inputs.quantity_unit,
+            "question": "Which source should the plan follow for " + dis_item["item"] + "?",
+            "at_stake": dis_item["at_stake"],
+        }))
+
+    # Biased sources: tracking signal beyond the limit.
+    score = _as_numeric(inputs.scorecard, ["tracking_signal", "bias_pct", "wape"])
+    biased = score[score["tracking_signal"].abs() > ts_limit].copy()
+    plan_value = (
+        sources.assign(value=sources["quantity"] * sources["unit_price"]).groupby("source")["value"].sum()
+        if not sources.empty else pd.Series(dtype=float)
+    )
+    biased["at_stake"] = biased["source"].map(plan_value).fillna(0) * biased["bias_pct"].abs() / 100
+    biased = biased.sort_values(["at_stake", "source", "level"], ascending=[False, True, True])
+    if not biased.empty:
+        worst = biased.loc[biased.groupby("source")["tracking_signal"].apply(lambda s: s.abs().idxmax())]
+        ranked_parts.append(pd.DataFrame({
+            "kind": "tracking", "scope": worst["source"],
+            "detail": "tracking signal " + worst["tracking_signal"].map(lambda v: f"{v:+.1f}".replace("-", _MINUS))
+                      + " at " + worst["level"].astype(str) + " level, lag " + worst["lag_bucket"].astype(str)
+                      + "; bias " + worst["bias_pct"].map(lambda v: format_percent(v, signed=True)),
+            "question": "Correct or down-weight " + worst["source"] + "'s persistent bias?",
+            "at_stake": worst["at_stake"],
+        }))
+
+    # Missing and late submissions: the plan value their scope carries in the next months.
+    near = cons[cons["period"].isin(plan_months[:band_months])]
+    missing = inputs.missing.copy()
+    if not missing.empty:
+        missing["at_stake"] = [
+            float(near.loc[_scope_mask(scope, near), "value"].sum()) for scope in missing["scope"]
+        ]  # one boolean mask per missing submission: a handful of rows, each vectorised
+        ranked_parts.append(pd.DataFrame({
+            "kind": "missing", "scope": missing["source"].astype(str) + " · " + missing["scope"].astype(str),
+            "detail": f"no submission received; plan value in scope, next {band_months} months",
+            "question": "Chase " + missing["source"].astype(str) + " for " + missing["scope"].astype(str)
+                        + ", or plan without it?",
+            "at_stake": missing["at_stake"],
+        }))
+    subs = inputs.submissions
+    late = subs[subs["status"].astype(str).str.lower() == "late"].copy() if not subs.empty else subs
+    if not late.empty:
+        late["submitted_at"] = late["submitted_at"].map(_format_when)
+
+    # Large changes against last cycle (already ranked by money).
+    if not changes_flagged.empty:
+        ranked_parts.append(pd.DataFrame({
+            "kind": "change", "scope": changes_flagged["item"] + " (" + changes_flagged["family"].astype(str) + ")",
+            "detail": changes_flagged["change_pct"].map(lambda v: format_percent(v, signed=True))
+                      + " vs last cycle (" + changes_flagged["change"].map(format_change) + ")",
+            "question": "Accept the move for " + changes_flagged["item"] + "?",
+            "at_stake": changes_flagged["at_stake"],
+        }))
+
+    # Unusually wide bands in the near months, item level.
+    band = near.assign(width=near["upper_80"] - near["lower_80"])
+    band_item = band.groupby(["item", "family"], as_index=False).agg(
+        width=("width", "sum"), consensus=("consensus", "sum"), unit_price=("unit_price", "first")
+    )
+    band_item["ratio"] = band_item["width"] / band_item["consensus"].where(band_item["consensus"] > 0)
+    band_item["at_stake"] = band_item["width"] / 2 * band_item["unit_price"]
+    wide = band_item[band_item["ratio"] > band_ratio_threshold].sort_values("at_stake", ascending=False)
+    if not wide.empty:
+        ranked_parts.append(pd.DataFrame({
+            "kind": "band", "scope": wide["item"] + " (" + wide["family"].astype(str) + ")",
+            "detail": "80% band spans " + wide["ratio"].map(format_share) + f" of the plan, next {band_months} months",
+            "question": "Hold buffer stock, or firm up " + wide["item"] + "'s plan?",
+            "at_stake": wide["at_stake"],
+        }))
+
+    ranked = (
+        pd.concat(ranked_parts, ignore_index=True).sort_values("at_stake", ascending=False, kind="stable")
+        if ranked_parts else pd.DataFrame(columns=["kind", "scope", "detail", "question", "at_stake"])
+    )
+    ranked["kind_label"] = ranked["kind"].map(_EXCEPTION_KINDS)
+    counts = ranked.groupby("kind")["at_stake"].agg(["size", "sum"]) if not ranked.empty else None
+    summary = [
+        {
+            "kind": kind, "label": label,
+            "count": int(counts.loc[kind, "size"]) if counts is not None and kind in counts.index else 0,
+            "at_stake": float(counts.loc[kind, "sum"]) if counts is not None and kind in counts.index else 0.0,
+        }
+        for kind, label in _EXCEPTION_KINDS.items()
+    ]
+    return {
+        "summary": summary,
+        "ranked": _records(ranked.head(30)),
+        "disagreement_cells": _records(dis_cells),
+        "disagreement_total": int(len(dis)),
+        "disagreement_families": _records(dis_family.head(exception_rows)),
+        "disagreement_families_total": int(len(dis_family)),
+        "biased": _records(biased.head(exception_rows)),
+        "biased_total": int(len(biased)),
+        "missing": _records(missing),
+        "late": _records(late),
+        "changes": _records(changes_flagged.head(exception_rows)),
+        "changes_total": int(len(changes_flagged)),
+        "wide_bands": _records(wide.head(exception_rows)),
+        "wide_bands_total": int(len(wide)),
+        "ts_limit": ts_limit,
+        "band_ratio_threshold": band_ratio_threshold,
+        "band_months": band_months,
+    }
+
+
+# --------------------------------------------------------------------------- per-family pages
+
+
+def _family_pages(
+    inputs, fam_plan, fam_act, sources, cons, family_order, source_names, plan_months, *,
+    history_months_shown, with_charts,
+) -> list[dict]:
+    """One page per family, all built from family × month frames grouped once."""
+    last_actual = month_index(inputs.last_actual_month)
+    first_shown = month_names([last_actual - history_months_shown + 1])[0]
+    hist_months = month_range(first_shown, inputs.last_actual_month)
+
+    fam_src = sources.groupby(["family", "period", "source"], as_index=False)["quantity"].sum()
+    src_wide = fam_src.pivot_table(index=["family", "period"], columns="source", values="quantity", aggfunc="sum")
+    src_wide = src_wide.reindex(columns=source_names).add_prefix("src_").reset_index()
+
+    # Share of the family's item × location cells each source covers (a missing DC leaves a gap).
+    cells = cons[["family", "item", "location"]].drop_duplicates()
+    n_cells = cells.groupby("family").size()
+    covered = (
+        sources[["family", "source", "item", "location"]].drop_duplicates().groupby(["family", "source"]).size()
+        .unstack("source").reindex(columns=source_names)
+        if not sources.empty else pd.DataFrame(columns=source_names)
+    )
+    coverage = covered.div(n_cells, axis=0).reindex(family_order)
+
+    plan = fam_plan.merge(src_wide, on=["family", "period"], how="left")
+    for key in ("80", "95"):
+        plan[f"lower_{key}"] = (plan["consensus"] - np.sqrt(plan[f"dev_lo{key}"])).clip(lower=0)
+        plan[f"upper_{key}"] = plan["consensus"] + np.sqrt(plan[f"dev_hi{key}"])
+    plan = plan[plan["period"].isin(plan_months)]
+    hist = fam_act[fam_act["period"].isin(hist_months)]
+
+    weights = _as_numeric(inputs.weights, ["weight", "psi", "n_cycles"])
+    weights_wide = weights.pivot_table(index=["segment", "source"], columns="lag_bucket", values="weight",
+                                       aggfunc="first")
+    bucket_labels = [label for label, _, _ in DEFAULT_LAG_BUCKETS if label in weights_wide.columns]
+    bucket_labels += [b for b in weights_wide.columns if b not in bucket_labels]
+    weight_notes = weights.groupby(["segment", "source"]).agg(
+        psi=("psi", "first"), n_cycles=("n_cycles", "first"), basis=("basis", "first"),
+        note=("note", lambda s: "; ".join(dict.fromkeys(str(x) for x in s if isinstance(x, str) and x.strip()))),
+    )
+    segments = set(weights["segment"].astype(str))
+    fallback_segment = next((s for s in segments if s.lower() == "all"), None)
+
+    dis_counts = (
+        inputs.disagreement.groupby("family").size() if not inputs.disagreement.empty else pd.Series(dtype=int)
+    )
+    n_items = cons.groupby("family")["item"].nunique()
+    src_cols = [f"src_{s}" for s in source_names]
+    plan_cols = ["consensus", "lower_80", "upper_80", "lower_95", "upper_95", "previous", *src_cols]
+    # Family × month × measure cubes: one reindex for all families, then each page is a slice.
+    plan_cube = (
+        plan.set_index(["family", "period"])[plan_cols]
+        .reindex(pd.MultiIndex.from_product([family_order, plan_months]))
+        .to_numpy(dtype=float).reshape(len(family_order), len(plan_months), len(plan_cols))
+    )
+    hist_cube = (
+        hist.set_index(["family", "period"])["actual"]
+        .reindex(pd.MultiIndex.from_product([family_order, hist_months]))
+        .to_numpy(dtype=float).reshape(len(family_order), len(hist_months))
+    )
+    col = {name: i for i, name in enumerate(plan_cols)}
+    weight_lookup = {
+        key: {
+            "by_bucket": [None if pd.isna(v) else float(v) for v in weights_wide.loc[key, bucket_labels]],
+            "n_cycles": None if pd.isna(weight_notes.loc[key, "n_cycles"]) else int(weight_notes.loc[key, "n_cycles"]),
+            "psi": None if pd.isna(weight_notes.loc[key, "psi"]) else float(weight_notes.loc[key, "psi"]),
+            "basis": weight_notes.loc[key, "basis"], "note": weight_notes.loc[key, "note"],
+        }
+        for key in weights_wide.index
+    }
+    painter = (
+        charts.FamilyChartPainter(history_months=hist_months, plan_months=plan_months, source_names=source_names,
+                                  quantity_unit=inputs.quantity_unit)
+        if with_charts else None
+    )
+
+    pages = []
+    for number, family in enumerate(family_order, start=1):
+        p = plan_cube[number - 1]
+        actual = hist_cube[number - 1]
+        segment = family if family in segments else fallback_segment
+        weight_rows = [
+            {"source": source, **weight_lookup[(segment, source)]}
+            for source in source_names if (segment, source) in weight_lookup
+        ]
+        cover = coverage.loc[family] if family in coverage.index else pd.Series(dtype=float)
+        cells = np.where(np.isfinite(p), p, np.nan).tolist()
+        n_src = len(src_cols)
+        table_rows = [
+            {
+                "period": period, "consensus": row[0], "lower_80": row[1], "upper_80": row[2],
+                "lower_95": row[3], "upper_95": row[4],
+                "previous": None if row[5] != row[5] else row[5],  # NaN is the only value unequal to itself
+                "sources": [None if v != v else v for v in row[6:6 + n_src]],
+            }
+            for period, row in zip(plan_months, cells)
+        ]
+        chart = None
+        if painter is not None:
+            chart = Markup(painter.draw(
+                actual=actual, consensus=p[:, col["consensus"]],
+                lower_80=p[:, col["lower_80"]], upper_80=p[:, col["upper_80"]],
+                lower_95=p[:, col["lower_95"]], upper_95=p[:, col["upper_95"]],
+                sources={s: p[:, col[f"src_{s}"]] for s in source_names}, previous=p[:, col["previous"]],
+                salt=f"fam{number}",
+            ))
+        pages.append({
+            "number": number,
+            "anchor": f"family-{number}",
+            "name": family,
+            "n_items": int(n_items.get(family, 0)),
+            "n_disagreements": int(dis_counts.get(family, 0)),
+            "total_consensus": float(np.nansum(p[:, col["consensus"]])),
+            "chart": chart,
+            "rows": table_rows,
+            "source_names": source_names,
+            "coverage": [None if pd.isna(cover.get(s)) else float(cover.get(s)) for s in source_names],
+            "bucket_labels": bucket_labels,
+            "weights": weight_rows,
+            "weights_segment": segment,
+            "weights_are_own": segment == family,
+        })
+    return pages
+
+
+# --------------------------------------------------------------------------- scorecard, FVA, components
+
+
+def _scorecard(inputs, *, ts_limit, source_names, with_charts) -> dict[str, Any]:
+    """Accuracy by source and lag bucket at total level, its recent history, and weights earned."""
+    score = _as_numeric(inputs.scorecard, ["n", "mad", "mape", "wape", "bias", "bias_pct", "tracking_signal"])
+    order = {b: i for i, (b, _, _) in enumerate(DEFAULT_LAG_BUCKETS)}
+    names = _source_order(list(source_names) + list(score["source"].astype(str).unique()))
+    src_rank = {s: i for i, s in enumerate(names)}
+    total = score[score["level"] == "total"].copy()
+    total = total.assign(
+        _s=total["source"].map(src_rank), _b=total["lag_bucket"].map(order).fillna(99),
+        out_of_limits=total["tracking_signal"].abs() > ts_limit,
+    ).sort_values(["_s", "_b"])
+    weights = _as_numeric(inputs.weights, ["weight"])
+    overall = weights[weights["segment"].astype(str).str.lower() == "all"]
+    if overall.empty:
+        overall = weights
+    earned = overall.groupby(["source", "lag_bucket"], as_index=False)["weight"].mean()
+    total = total.merge(earned, on=["source", "lag_bucket"], how="left")
+
+    # Group-level against item-level WAPE, n-weighted over lag buckets.
+    levels = score.assign(wn=score["wape"] * score["n"]).groupby(["source", "level"]).agg(wn=("wn", "sum"),
+                                                                                          n=("n", "sum"))
+    levels = (levels["wn"] / levels["n"].where(levels["n"] > 0)).unstack("level")
+    level_cols = [c for c in ("item", "family", "total") if c in levels.columns]
+    level_rows = [
+        {"source": s, "values": [None if pd.isna(levels.loc[s, c]) else float(levels.loc[s, c]) for c in level_cols]}
+        for s in names if s in levels.index
+    ]
+
+    hist = _as_numeric(inputs.scorecard_history, ["wape", "bias_pct"])
+    cycles = sorted(hist["cycle"].astype(str).unique(), key=month_index) if not hist.empty else []
+    wide = hist.pivot_table(index="cycle", columns="source", values="wape", aggfunc="mean").reindex(cycles)
+    bias_wide = hist.pivot_table(index="cycle", columns="source", values="bias_pct", aggfunc="mean").reindex(cycles)
+    history_rows = []
+    for s in names:
+        if s not in wide.columns:
+            continue
+        series = wide[s].to_numpy(dtype=float)
+        latest = series[-1] if len(series) else np.nan
+        before = series[-4] if len(series) >= 4 else (series[0] if len(series) else np.nan)
+        history_rows.append({
+            "source": s, "latest": latest, "change_3": latest - before if len(series) >= 2 else None,
+            "mean": float(np.nanmean(series)) if np.isfinite(series).any() else None,
+            "bias_latest": float(bias_wide[s].iloc[-1]) if s in bias_wide.columns and len(cycles) else None,
+        })
+    chart = None
+    if with_charts and cycles:
+        chart = Markup(charts.draw_accuracy_history(
+            cycles=cycles, wape_by_source={s: wide[s].to_numpy(dtype=float) for s in names if s in wide.columns},
+            salt="scorecard",
+        ))
+    return {
+        "rows": _records(total.drop(columns=["_s", "_b"])),
+        "level_columns": level_cols,
+        "level_rows": level_rows,
+        "history_rows": history_rows,
+        "history_first": cycles[0] if cycles else None,
+        "history_last": cycles[-1] if cycles else None,
+        "chart": chart,
+        "ts_limit": ts_limit,
+    }
+
+
+def _value_added(fva: pd.DataFrame, *, with_charts: bool) -> dict[str, Any]:
+    """The forecast value added stairstep: WAPE after each step and the change it made (negative helps)."""
+    frame = _as_numeric(fva, ["wape", "n"]).reset_index(drop=True)
+    frame["change"] = frame["wape"].diff()
+    frame["vs_first"] = frame["wape"] - frame["wape"].iloc[0] if not frame.empty else []
+    chart = None
+    if with_charts and not frame.empty:
+        chart = Markup(charts.draw_value_added_steps(steps=list(frame["step"].astype(str)),
+                                                     wape=frame["wape"].to_numpy(dtype=float), salt="fva"))
+    return {"rows": _records(frame), "chart": chart}
+
+
+def _components(components: pd.DataFrame, plan_months: list[str], max_rows: int) -> dict[str, Any]:
+    """Dependent demand per component: the first six plan months, the rest of the horizon, and the total."""
+    frame = _as_numeric(components, ["quantity"])
+    frame = frame[frame["period"].isin(plan_months)]
+    head = plan_months[:6]
+    tail_label = f"{plan_months[6]} – {plan_months[-1]}" if len(plan_months) > 6 else None
+    if frame.empty:
+        return {"months": head, "tail_label": tail_label, "rows": [], "n_total": 0, "n_hidden": 0,
+                "total": None}
+    wide = frame.pivot_table(index="component", columns="period", values="quantity", aggfunc="sum").reindex(
+        columns=plan_months
+    )
+    table = pd.DataFrame(index=wide.index)
+    table["total"] = wide.sum(axis=1, min_count=1)
+    table = table.sort_values("total", ascending=False)
+    wide = wide.loc[table.index]
+    shown = wide.head(max_rows)
+    rows = [
+        {
+            "component": component,
+            "months": [None if pd.isna(v) else float(v) for v in shown.loc[component, head]],
+            "tail": float(shown.loc[component, plan_months[6:]].sum()) if tail_label else None,
+            "total": float(table.loc[component, "total"]),
+        }
+        for component in shown.index
+    ]
+    return {
+        "months": head, "tail_label": tail_label, "rows": rows, "n_total": int(len(table)),
+        "n_hidden": int(max(len(table) - max_rows, 0)), "total": float(table["total"].sum()),
+        "hidden_total": float(table["total"].iloc[max_rows:].sum()),
+    }
+
+
+def _band_coverage(frame: pd.DataFrame) -> list[dict]:
+    out = _as_numeric(frame, ["nominal", "coverage", "winkler"])
+    return _records(out)
