@@ -16,10 +16,13 @@ How each series is forecast
    too short to fit or hold out anything: the forecast is the family's
    seasonal profile scaled to the item's own demand so far (see
    :func:`forecast_new_items`); a series with no demand at all gets zero.
-4. **Candidates.**  Smooth and erratic series: naive, seasonal naive, moving
-   average (3 months), SES, damped Holt, plus Holt when a trend was found
-   and Holt–Winters (additive; multiplicative when the span is strictly
-   positive) when seasonality was found.  Intermittent and lumpy series:
+4. **Candidates.**  Smooth and erratic series: naive, moving average (3
+   months), SES, damped Holt, plus Holt when a trend was found, and, when
+   seasonality was found, Holt–Winters (damped or not; additive, and
+   multiplicative when the span is strictly positive).  Seasonal naive is a
+   candidate unless Holt–Winters can be fitted to a seasonal series (it is
+   Holt–Winters without smoothing, and choosing between them on a 12-month
+   holdout mostly adds selection noise).  Intermittent and lumpy series:
    Croston, SBA, SES, moving average.  ``methods=`` restricts the set; when
    the restriction leaves nothing that suits a series' profile, any
    requested method its data allow is used, and failing that the new-item
@@ -479,8 +482,12 @@ def _select_block(
             )
         point[sel] = fc[:, 0, :]
     params["phi"][chosen == CANDIDATE_METHODS.index("holt")] = 1.0  # undamped Holt: φ = 1
+    # a whole-span refit whose recursion broke down leaves the series to the fallback
+    usable = fitted_any & np.isfinite(point).all(axis=1)
+    chosen = np.where(usable, chosen, -1)
     with np.errstate(all="ignore"):
-        wape = np.where(fitted_any & (denominator > 0), scores[np.arange(n_series), np.maximum(chosen, 0)] / denominator, np.nan)
+        best = scores[np.arange(n_series), np.maximum(chosen, 0)]
+        wape = np.where(usable & (denominator > 0), best / denominator, np.nan)
     return _BlockResult(method=chosen, params=params, point=point, errors=errors, wape=wape)
 
 
@@ -510,9 +517,12 @@ def _allowed_candidates(
         "holt_winters_mul": (train_months >= smoothing.minimum_months("holt_winters_mul", season_length=season_length))
         & positive,
     }
+    # where Holt–Winters can be fitted to a seasonal series, seasonal naive
+    # (HW without smoothing) only adds selection noise on a 12-month holdout
+    seasonal_fit = has_seasonality & fittable["holt_winters_add"] & ("holt_winters_add" in requested)
     suited = {
         "naive": ~sparse,
-        "seasonal_naive": ~sparse,
+        "seasonal_naive": ~sparse & ~seasonal_fit,
         "moving_average": np.ones(n_series, bool),
         "ses": np.ones(n_series, bool),
         "croston": sparse,
@@ -618,7 +628,8 @@ def forecast_statistical(
         reason = np.where(
             span_months[rest] < NEW_ITEM_MONTHS,
             "new item: " + span_months[rest].astype(str) + " month(s) since first demand",
-            "no requested method fits " + span_months[rest].astype(str) + " month(s) of history",
+            "no requested method gives a usable forecast from " + span_months[rest].astype(str)
+            + " month(s) of history",
         )
         fallback[rest] = np.where(no_demand, "no demand in history: forecast zero", reason + "; " + how)
 
