@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import numpy as np
-import pandas as pd
 import pytest
 from scipy import stats
 from statsmodels.datasets import co2, elec_equip
