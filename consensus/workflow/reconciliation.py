@@ -71,9 +71,15 @@ RECONCILIATION_METHODS = ("bottom_up", "top_down_hist_avg", "top_down_prop_avg",
 DEFAULT_RECONCILIATION = "bottom_up"
 #: What the backtest of bench/bench_backtest.py measured, stated in every run's notes.
 DEFAULT_CHOICE_NOTE = (
-    "bottom_up is the default: in the backtest on the demo (bench/bench_backtest.py, 12 past cycles run in "
-    "order with each method) no method beat it by more than noise at item × location, and it keeps every "
-    "number an exact weighted sum of the sources."
+    "bottom_up is the default. Backtest on the demo (bench/bench_backtest.py: the 12 past cycles run in order "
+    "with each method, every lag scored against the orders that came in), consensus WAPE % at item × location / "
+    "family × region / family / total: bottom_up 21.10 / 8.23 / 7.66 / 4.67, mint_shrink 21.16 / 7.99 / 7.26 / "
+    "4.35, top_down_hist_avg 29.36 / 24.83 / 21.78 / 4.67, top_down_prop_avg 28.18 / 23.41 / 20.65 / 4.67. "
+    "MinT shrink is better on the totals (paired per cycle: −0.31 ± 0.16 points at family × region, "
+    "−0.60 ± 0.24 at total) but worse at item × location, the grain that is published and exploded "
+    "(+0.14 ± 0.06 points, worse in 7 of the 9 cycles where the two differ); top-down loses everywhere below the total. bottom_up "
+    "wins where the plan is used and keeps every number an exact weighted sum of the sources; choose "
+    "mint_shrink when family and total accuracy matter more."
 )
 CELL = ["item", "location", "period"]
 NODE_FRAME_COLUMNS = ["level", "family", "region", "item", "location", "period", "base", "reconciled"]
@@ -156,9 +162,10 @@ def reconcile_hierarchy(table: pd.DataFrame, current: pd.DataFrame, errors: pd.D
         else:
             history = _history_matrix(actuals, bottom_keys, cycle=cycle, months=history_months, method=method)
             full = hierarchy.reconcile(base, S, method=method, history=history, nonnegative=True)
+            split = ("average of monthly proportions" if method == "top_down_hist_avg"
+                     else "proportion of average demand")
             notes["text"] = (f"{method}: the total's own combination of the sources, split to cells by the "
-                             f"{'average of monthly proportions' if method == 'top_down_hist_avg' else 'proportion of average demand'}"
-                             f" over the last {history_months} months (Gross & Sohl, 1990).")
+                             f"{split} over the last {history_months} months (Gross & Sohl, 1990).")
         reconciled_bottom = full[-S.shape[1]:]
         notes["base_levels"] = sorted(level_bases)
         notes["base_rule"] = ("each upper node's base combines the sources summed to it, weighted by their "
@@ -301,7 +308,8 @@ def _node_positions(node_labels: pd.DataFrame) -> pd.DataFrame:
                          "location": node_location.astype(object), "_row": frame["_row"]})
 
 
-def _base_matrix(node_labels: pd.DataFrame, bottom_base: np.ndarray, months: list[str], level_bases: dict) -> np.ndarray:
+def _base_matrix(node_labels: pd.DataFrame, bottom_base: np.ndarray, months: list[str],
+                 level_bases: dict) -> np.ndarray:
     """Base forecasts nodes × months: each upper node its level's combination, the bottom the combined consensus."""
     n_bottom = bottom_base.shape[0]
     n_nodes = len(node_labels)
