@@ -71,15 +71,15 @@ RECONCILIATION_METHODS = ("bottom_up", "top_down_hist_avg", "top_down_prop_avg",
 DEFAULT_RECONCILIATION = "bottom_up"
 #: What the backtest of bench/bench_backtest.py measured, stated in every run's notes.
 DEFAULT_CHOICE_NOTE = (
-    "bottom_up is the default. Backtest on the demo (bench/bench_backtest.py: the 12 past cycles run in order "
-    "with each method, every lag scored against the orders that came in), consensus WAPE % at item × location / "
-    "family × region / family / total: bottom_up 21.10 / 8.23 / 7.66 / 4.67, mint_shrink 21.16 / 7.99 / 7.26 / "
-    "4.35, top_down_hist_avg 29.36 / 24.83 / 21.78 / 4.67, top_down_prop_avg 28.18 / 23.41 / 20.65 / 4.67. "
-    "MinT shrink is better on the totals (paired per cycle: −0.31 ± 0.16 points at family × region, "
-    "−0.60 ± 0.24 at total) but worse at item × location, the grain that is published and exploded "
-    "(+0.14 ± 0.06 points, worse in 7 of the 9 cycles where the two differ); top-down loses everywhere "
-    "below the total. bottom_up wins where the plan is used and keeps every number an exact weighted sum of the sources; choose "
-    "mint_shrink when family and total accuracy matter more."
+    "bottom_up is the default. Backtest on the demo (bench/bench_backtest.py: the 12 past cycles run in order"
+    " with each method, every lag scored against the orders that came in), consensus WAPE % at item × "
+    "location / family × region / family / total: bottom_up 21.10 / 8.23 / 7.66 / 4.67, mint_shrink 21.16 / "
+    "7.99 / 7.26 / 4.35, top_down_hist_avg 29.36 / 24.83 / 21.78 / 4.67, top_down_prop_avg 28.18 / 23.41 / "
+    "20.65 / 4.67. MinT shrink is better on the totals (paired per cycle: −0.31 ± 0.16 points at family × "
+    "region, −0.60 ± 0.24 at total) but worse at item × location, the grain that is published and exploded "
+    "(+0.14 ± 0.06 points, worse in 7 of the 9 cycles where the two differ); top-down loses everywhere below "
+    "the total. bottom_up wins where the plan is used and keeps every number an exact weighted sum of the "
+    "sources; choose mint_shrink when family and total accuracy matter more."
 )
 CELL = ["item", "location", "period"]
 NODE_FRAME_COLUMNS = ["level", "family", "region", "item", "location", "period", "base", "reconciled"]
