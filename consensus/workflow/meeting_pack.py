@@ -202,4 +202,4 @@ def write_pack(cycle: str, *, pdf_path: Path | str, html_path: Path | str | None
     """Gather and render the pack; returns the PDF path and its page count."""
     inputs = gather_pack_inputs(cycle, url=url)
     rendered = render_pack(inputs, pdf_path=Path(pdf_path), html_path=Path(html_path) if html_path else None)
-    return Path(pdf_path), int(getattr(rendered, "page_count", 0) or 0)
+    return Path(pdf_path), int(rendered.n_pages or 0)
