@@ -108,6 +108,8 @@ def _figure_to_svg(figure: Figure, salt: str) -> str:
         FigureCanvasSVG(figure).print_svg(buffer, metadata={"Date": None, "Creator": None})
     text = _METADATA.sub("", _PROLOGUE.sub("", buffer.getvalue(), count=1))
     text = _unwrap_plain_groups(text)
+    # Same family as the page's tables, so the PDF embeds one sans face, not two.
+    text = text.replace("'DejaVu Sans'", "'DejaVu Sans Condensed'")
     # Ids are salted per chart, and prefixed, so one HTML page can hold hundreds of charts.
     prefix = re.sub(r"[^A-Za-z0-9_-]", "-", salt)
     text = _ID_OR_REFERENCE.sub(lambda m: f"{m.group(1)}{prefix}-{m.group(2)}", text)

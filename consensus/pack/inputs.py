@@ -19,7 +19,6 @@ from consensus.periods import (
     horizon_months,
     lag_bucket_labels,
     month_index,
-    month_indexes,
     month_names,
     shift_month,
 )
@@ -241,7 +240,9 @@ def example_pack_inputs(
     w /= w.sum(axis=2, keepdims=True)
     blend = (stack * w).sum(axis=2)
     lag_arr = np.arange(1, horizon + 1)
-    sigma = blend * 0.12 * np.sqrt(lag_arr)[None, :]
+    # A few cells are much less predictable, so their bands are wide.
+    spread_factor = np.where(rng.random(n_cells) < 0.06, 0.45, 0.12)
+    sigma = blend * spread_factor[:, None] * np.sqrt(lag_arr)[None, :]
     consensus = long_frame(blend, plan_idx, "consensus")
     consensus.insert(3, "lag", np.tile(lag_arr, n_cells))
     for name, z in (("80", 1.2816), ("95", 1.96)):

@@ -13,6 +13,7 @@ from __future__ import annotations
 import base64
 import logging
 import math
+import re
 import time
 from dataclasses import dataclass, field
 from functools import lru_cache
@@ -35,6 +36,7 @@ from consensus.resources import reports_dir
 
 LOGGER = logging.getLogger(__name__)
 TEMPLATE_NAME = "pack.html.j2"
+_TABLE_GAP = re.compile(r">\s+<(/?(?:td|th|tr|thead|tbody|tfoot|table|colgroup|col)\b)")
 STYLESHEET_NAME = "pack.css"
 
 
@@ -125,9 +127,11 @@ def _render_context(context: dict[str, Any], *, inline_charts: bool) -> str:
     root = reports_dir()
     env = _environment(str(root / "templates"))
     stylesheet = (root / "styles" / STYLESHEET_NAME).read_text(encoding="utf-8")
-    return env.get_template(TEMPLATE_NAME).render(
+    html = env.get_template(TEMPLATE_NAME).render(
         **context, stylesheet=Markup(stylesheet), inline_charts=inline_charts
     )
+    # Whitespace between table tags becomes anonymous boxes in WeasyPrint; drop it.
+    return _TABLE_GAP.sub(r"><\1", html)
 
 
 # --------------------------------------------------------------------------- fetching
