@@ -193,7 +193,9 @@ def run(ctx: typer.Context, cycle: str = CycleOpt,
                                                       "shrunk_mse."),
         window: int = typer.Option(12, help="Trailing cycles of accuracy history used for the weights."),
         segment: str = typer.Option("family", help="Weights per family, item, region or all."),
-        bias_correction: bool = typer.Option(False, help="Subtract each source's measured bias (shrunk).")) -> None:
+        bias_correction: bool = typer.Option(False, help="Subtract each source's measured bias (shrunk)."),
+        reconciliation: Optional[str] = typer.Option(None, help="bottom_up (default), top_down_hist_avg, "
+                                                                 "top_down_prop_avg or mint_shrink.")) -> None:
     """Compute and store the cycle's consensus (statistical source, alignment, weights, bands, audit).
 
     Example: consensus run --cycle 2027-03 --scheme shrunk_mse
@@ -204,7 +206,8 @@ def run(ctx: typer.Context, cycle: str = CycleOpt,
     from consensus.workflow.run import RunSpec, run_cycle
     try:
         spec = RunSpec(weights=WeightSpec(scheme=scheme, window_cycles=window, segment=segment,
-                                          bias_correction=bias_correction))
+                                          bias_correction=bias_correction),
+                       **({"reconciliation": reconciliation} if reconciliation else {}))
         with Progress(SpinnerColumn(), TextColumn("{task.description}"), transient=True, console=err) as bar:
             task = bar.add_task("starting", total=None)
             summary = run_cycle(cycle, url=_url(ctx), spec=spec, progress=lambda m: bar.update(task, description=m))

@@ -172,6 +172,9 @@ class ConsensusLine(SQLModel, table=True):
     spread: float = 0.0
     spread_ratio: float = 0.0
     flagged: bool = False
+    before_reconciliation: float | None = None
+    reconciliation_adjustment: float = 0.0
+    reconciliation_note: str = ""
     before_override: float | None = None
 
 

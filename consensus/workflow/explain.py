@@ -13,6 +13,7 @@ from consensus.store import frames
 from consensus.store.db import session_scope
 from consensus.store.models import AlignmentTrace, CellSource, ConsensusLine, Decision, Item, WeightRecord
 from consensus.workflow.publish import latest_run
+from consensus.workflow.statistical_source import series_table
 
 
 @dataclass(frozen=True)
@@ -63,8 +64,25 @@ def explain_cell(cycle: str, *, item: str, location: str, period: str, url=None)
                                       .where((d.c.item == item) | (d.c.family == family)),
                                       ["author", "kind", "amount", "reason", "item", "family", "location", "region"])
         spec = run.spec
+        series = series_table(session, cycle)
+    method = series[(series["item"] == item) & (series["location"] == location)]
     text = _write(cycle, run.id, run.status, spec, line, family, sources, traces, weights, decisions)
+    if not method.empty:
+        text += "\n" + describe_method(method.iloc[0])
     return CellExplanation(line, sources, traces, weights, decisions, text)
+
+
+def describe_method(row: pd.Series) -> str:
+    """The statistical source's method for one series in words, with its fitted parameters."""
+    params = ", ".join(f"{name} {row[key]:.2f}" for name, key in (("α", "alpha"), ("β", "beta"), ("γ", "gamma"),
+                                                                  ("φ", "phi")) if key in row and pd.notna(row[key]))
+    text = f"Statistical source: {row['method']}" + (f" ({params})" if params else "")
+    text += f", demand pattern {row['pattern']}"
+    if "holdout_wape" in row and pd.notna(row["holdout_wape"]):
+        text += f", holdout WAPE {row['holdout_wape']:.0%}"
+    if isinstance(row.get("fallback"), str) and row["fallback"]:
+        text += f"; {row['fallback']}"
+    return text + "."
 
 
 def _write(cycle, run_id, status, spec, line, family, sources, traces, weights, decisions) -> str:
@@ -107,6 +125,9 @@ def _write(cycle, run_id, status, spec, line, family, sources, traces, weights, 
             where = f"row {int(t.row)}" if pd.notna(t.row) else ""
             out.append(f"  {t.source}: {t.submitted} ({where}) × share {t.share:.2%} = {_fmt(t.quantity)} units"
                        + (f"; {t.share_basis}" if t.share_basis else ""))
+    if line.get("reconciliation_adjustment"):
+        out.append(f"Reconciliation across the hierarchy moved the combined {_fmt(line['before_reconciliation'])} "
+                   f"units by {line['reconciliation_adjustment']:+,.1f}: {line['reconciliation_note']}")
     if pd.notna(line.get("before_override")):
         out.append(f"Changed in the meeting from {_fmt(line['before_override'])} units:")
         for d in decisions.itertuples(index=False):

@@ -183,8 +183,9 @@ def gather_pack_inputs(cycle: str, *, url=None) -> PackInputs:
                    f"{wspec.get('segment')} and lag bucket.",
         "bands": "Bands come from the empirical distribution of past errors at the same lag, scaled to the "
                  "forecast; with short history, from MAD with the normal approximation (σ ≈ 1.25 × MAD).",
-        "reconciliation": f"{run.spec.get('reconciliation', 'bottom_up')}: the plan is made at item × location × "
-                          "month and every total is the sum of its cells.",
+        "reconciliation": " ".join(filter(None, [run.notes.get("reconciliation", {}).get("text", ""),
+                                                 run.notes.get("reconciliation", {}).get("why_default", "")]))
+                          or "The plan is made at item × location × month and every total is the sum of its cells.",
     }
     return PackInputs(
         company=company, cycle=cycle, status="published" if run.status == "published" else "draft",

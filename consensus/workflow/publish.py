@@ -31,6 +31,7 @@ def latest_run(session, cycle: str) -> ConsensusRun:
 def run_lines(session, run_id: int) -> pd.DataFrame:
     cl = ConsensusLine.__table__
     columns = EXPORT_COLUMNS + ["n_sources", "missing_sources", "spread", "spread_ratio", "flagged",
+                                "before_reconciliation", "reconciliation_adjustment", "reconciliation_note",
                                 "before_override"]
     frame = frames.read_frame(session, select(*[cl.c[c] for c in columns]).where(cl.c.run_id == run_id), columns)
     return frame.sort_values(["item", "location", "period"], ignore_index=True)

@@ -280,6 +280,7 @@ def _store_run(session, cycle: Cycle, *, spec: RunSpec, table: pd.DataFrame, com
                                ["id", "source", "filename", "sha256"])
     run = ConsensusRun(cycle=cycle.name, spec=spec.to_dict(), inputs=inputs.to_dict("records"),
                        notes={"warnings": gathered["warnings"], "decisions_applied": applied,
+                              "reconciliation": gathered.get("reconciliation", {}),
                               "statistical": [m for m in gathered["made"] if m["made"]]})
     session.add(run)
     session.flush()
