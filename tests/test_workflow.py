@@ -39,7 +39,8 @@ def test_each_consensus_lies_within_its_sources_and_contributions_add_up(demo_ur
                                       weights=("weight", "sum")).reset_index()
     joined = lines.merge(summary, on=cell)
     assert len(joined) == len(lines)
-    computed = joined["before_override"].fillna(joined["consensus"])  # the number before the meeting's decisions
+    # the combined number, before reconciliation and the meeting's decisions
+    computed = joined["before_reconciliation"].fillna(joined["before_override"]).fillna(joined["consensus"])
     untouched = joined["before_override"].isna()
     np.testing.assert_allclose(joined["total"], computed, rtol=1e-9, atol=1e-9)
     np.testing.assert_allclose(joined["weights"], 1.0, atol=1e-9)
@@ -103,3 +104,23 @@ def test_explain_shows_the_meeting_decision(demo_url):
     text = explain_cell(CYCLE, item=touched["item"], location=touched["location"], period=touched["period"],
                         url=demo_url).text
     assert "Changed in the meeting" in text and "by " in text
+
+
+def test_mint_shrink_run_stays_coherent_and_explained(demo_dir, tmp_path):
+    from consensus.workflow.run import RunSpec, run_cycle
+
+    copy = tmp_path / "mint.db"
+    shutil.copy(demo_dir / "consensus.db", copy)
+    url = f"sqlite:///{copy}"
+    get_engine.cache_clear()
+    summary = run_cycle(CYCLE, url=url, spec=RunSpec(reconciliation="mint_shrink"))
+    with session_scope(url) as s:
+        lines = run_lines(s, summary.run_id)
+        notes = s.get(ConsensusRun, summary.run_id).notes
+    assert notes["reconciliation"]["method"] == "mint_shrink" and notes["reconciliation"]["coherent"]
+    plain = lines["before_override"].isna()
+    np.testing.assert_allclose(lines.loc[plain, "consensus"],
+                               lines.loc[plain, "before_reconciliation"] + lines.loc[plain, "reconciliation_adjustment"],
+                               atol=1e-6)
+    assert (lines["consensus"] >= 0).all() and (lines["reconciliation_adjustment"] != 0).any()
+    assert ((lines["lower_80"] <= lines["consensus"] + 1e-9) & (lines["consensus"] <= lines["upper_80"] + 1e-9)).all()
