@@ -130,3 +130,58 @@ def test_folder_of_templates_submits_without_flags(master_store, tmp_path):
     outcome = submit_file(path, url=master_store)
     assert outcome.status == "accepted" and outcome.source == "sales" and outcome.scope == "region NORTH"
     assert outcome.rows == rows
+
+
+def _all_counts(url) -> dict:
+    from consensus.store.models import Actual, BomLine, EventLine, Item, Location
+
+    with session_scope(url) as s:
+        return {m.__name__: s.execute(select(func.count()).select_from(m)).scalar_one()
+                for m in (ForecastLine, EventLine, Actual, Item, Location, BomLine, Submission)}
+
+
+def _submit_any(path, url):
+    """Feed a file through the store path its name says it belongs to."""
+    from consensus.intake.submission import load_actuals_file, load_master_file
+
+    kind = path.name.split("_", 1)[0]
+    if kind == "actuals":
+        return load_actuals_file(path, url=url)
+    if kind in ("items", "locations", "bom"):
+        return load_master_file(path, kind=kind, url=url)
+    return submit_file(path, url=url, source="marketing" if kind == "events" else "sales",
+                       cycle=None if "cycle" in path.name else "2026-11")
+
+
+OTHER_BAD = sorted(p.name for p in (DATA / "bad").iterdir() if not p.name.startswith("forecast_"))
+
+
+@pytest.mark.parametrize("name", OTHER_BAD)
+def test_every_broken_file_is_refused_by_the_store_and_changes_nothing(master_store, name):
+    before = _all_counts(master_store)
+    with pytest.raises(InputRejected) as caught:
+        _submit_any(DATA / "bad" / name, master_store)
+    assert name in str(caught.value) and caught.value.submission_id
+    after = _all_counts(master_store)
+    assert after["Submission"] == before["Submission"] + 1  # only the rejected file itself is kept
+    assert {k: v for k, v in after.items() if k != "Submission"} == \
+        {k: v for k, v in before.items() if k != "Submission"}
+
+
+def test_small_cycle_end_to_end_on_this_store(master_store, tmp_path):
+    """Actuals, a forecast, a run, publish and export on the store under test (SQLite or PostgreSQL)."""
+    import pandas as pd
+
+    from consensus.intake.submission import load_actuals_file
+    from consensus.workflow.publish import export_consensus, publish_cycle
+    from consensus.workflow.run import run_cycle
+
+    load_actuals_file(DATA / "good" / "actuals_monthly.csv", url=master_store)
+    submit_file(DATA / "good" / "forecast.csv", url=master_store, source="dc", cycle="2026-11")
+    summary = run_cycle("2026-11", url=master_store)
+    assert summary.cells > 0
+    publish_cycle("2026-11", url=master_store)
+    path, state, rows = export_consensus("2026-11", tmp_path / "c.csv", url=master_store)
+    frame = pd.read_csv(path)
+    assert state == "published" and rows == len(frame) == summary.cells
+    assert abs(frame["consensus"].sum() - summary.total) <= 0.0005 * rows  # the export rounds to 3 decimals
