@@ -313,16 +313,25 @@ def draw_accuracy_history(
         figure = Figure(figsize=(7.0, 2.1))
         ax = figure.add_axes((0.085, 0.2, 0.72, 0.74))
         x = np.arange(len(cycles))
+        ends = []
         for position, (name, values) in enumerate(wape_by_source.items()):
             colour, dashes = source_style(name, position)
             ax.plot(x, values, color=colour, linewidth=1.4, linestyle=dashes, marker="o", markersize=2.5,
                     label=name)
             if len(values) and np.isfinite(values[-1]):
-                ax.annotate(f"{name} {values[-1]:.1f}%", (x[-1], values[-1]), xytext=(6, 0),
-                            textcoords="offset points", va="center", fontsize=6.8, color=colour,
-                            annotation_clip=False)
+                ends.append((float(values[-1]), name, colour))
+        finite = np.concatenate([np.asarray(v, dtype=float) for v in wape_by_source.values()] or [np.zeros(1)])
+        top = float(np.nanmax(finite)) if np.isfinite(finite).any() else 1.0
+        ax.set_ylim(0, top * 1.1)
+        # Direct labels at the right end, pushed apart so close lines stay readable.
+        gap = top * 1.1 * 0.075
+        placed: list[float] = []
+        for value, name, colour in sorted(ends):
+            y = max(value, placed[-1] + gap) if placed else value
+            placed.append(y)
+            ax.annotate(f"{name} {value:.1f}%", (x[-1], value), xytext=(x[-1] + 0.35, y), textcoords="data",
+                        va="center", fontsize=6.8, color=colour, annotation_clip=False)
         _style_axes(ax, y_label="WAPE, %")
-        ax.set_ylim(bottom=0)
         ax.set_xticks(x, list(cycles))
         ax.tick_params(axis="x", labelsize=6.3)
         ax.set_xlabel("cycle", labelpad=1)
