@@ -9,6 +9,8 @@ with its reasons in a transaction of its own, and nothing else changes.
 from __future__ import annotations
 
 import hashlib
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -91,6 +93,32 @@ def _keep_rejected(engine_or_session_url, *, path: Path, content: bytes, kind: s
         return int(sub.id)
 
 
+@dataclass
+class _Intake:
+    """What is known of a file being taken in, so a rejection can be kept with it."""
+
+    path: Path
+    content: bytes
+    kind: str
+    source: str | None = None
+    cycle: str | None = None
+    file_format: dict = field(default_factory=dict)
+
+
+@contextmanager
+def _kept_if_rejected(path: Path, *, url, kind: str, submitted_by: str, source: str | None = None,
+                      cycle: str | None = None) -> Iterator[_Intake]:
+    """Run an import; if it raises InputRejected, store the file as rejected (own transaction) and re-raise."""
+    intake = _Intake(path=path, content=path.read_bytes(), kind=kind, source=source, cycle=cycle)
+    try:
+        yield intake
+    except InputRejected as error:
+        error.submission_id = _keep_rejected(url, path=path, content=intake.content, kind=intake.kind,
+                                             source=intake.source, cycle=intake.cycle, submitted_by=submitted_by,
+                                             error=error, file_format=intake.file_format)
+        raise
+
+
 def _horizons(session: Session, extra_cycles: list[str]) -> dict[str, list[str]]:
     known = {c.name: c.horizon for c in session.exec(select(Cycle)).scalars()}
     for name in extra_cycles:
@@ -130,36 +158,36 @@ def _check_meta_agrees(raw: reader.RawTable, given: dict[str, str | None], filen
     return merged
 
 
+def _refuse(path: Path, value, expected: str, column: str | None = None) -> InputRejected:
+    """A file-level refusal (no row to point at)."""
+    return InputRejected(file=path.name, problems=[Problem(path.name, None, column, value, expected)])
+
+
 def submit_file(path: Path | str, *, url=None, source: str | None = None, cycle: str | None = None,
                 scope: str | None = None, submitted_by: str = "") -> SubmissionOutcome:
     """Check a forecast or events file and store it as one transaction; raise InputRejected if it fails."""
     path = Path(path)
-    content = path.read_bytes()
-    sha = file_sha256(content)
-    kind, file_format = "forecast", {}
-    try:
+    with _kept_if_rejected(path, url=url, kind="forecast", submitted_by=submitted_by, source=source,
+                           cycle=cycle) as intake:
         raw = reader.read_table(path)
-        file_format = dict(raw.file_format)
-        kind = "events" if "event" in raw.frame.columns else "forecast"
+        intake.file_format = dict(raw.file_format)
+        intake.kind = "events" if "event" in raw.frame.columns else "forecast"
         if "date" in raw.frame.columns or {"family", "unit_price"} <= set(raw.frame.columns):
-            kind = checks.detect_file_kind(raw)
-        if kind not in ("forecast", "events"):
-            raise InputRejected(file=path.name, problems=[Problem(
-                path.name, None, None, kind,
-                "a forecast or events file here; load actuals with 'consensus actuals' and master data with "
-                "'consensus master'")])
+            intake.kind = checks.detect_file_kind(raw)
+        if intake.kind not in ("forecast", "events"):
+            raise _refuse(path, intake.kind, "a forecast or events file here; load actuals with 'consensus actuals' "
+                                             "and master data with 'consensus master'")
         given = _check_meta_agrees(raw, {"source": source, "cycle": cycle, "scope": scope}, path.name)
         source, cycle, scope = given["source"], given["cycle"], given["scope"]
+        intake.source, intake.cycle = source, cycle
         if source not in SUBMITTED_SOURCES:
-            raise InputRejected(file=path.name, problems=[Problem(
-                path.name, None, None, source, f"--source to be one of {', '.join(SUBMITTED_SOURCES)}")])
-        if kind == "events" and source != "marketing":
-            raise InputRejected(file=path.name, problems=[Problem(
-                path.name, None, None, source, "events files to come from the marketing source")])
+            raise _refuse(path, source, f"--source to be one of {', '.join(SUBMITTED_SOURCES)}")
+        if intake.kind == "events" and source != "marketing":
+            raise _refuse(path, source, "events files to come from the marketing source")
         bulk = _bulk_cycles(raw)
         if cycle is None and not bulk:
-            raise InputRejected(file=path.name, problems=[Problem(
-                path.name, None, "cycle", None, "--cycle YYYY-MM, or a 'cycle' column for bulk loading")])
+            raise _refuse(path, None, "--cycle YYYY-MM, or a 'cycle' column for bulk loading", column="cycle")
+        sha = file_sha256(intake.content)
         with session_scope(url) as session:
             duplicate = session.exec(
                 select(Submission).where(Submission.sha256 == sha).where(Submission.status.in_(["accepted", "superseded"]))
@@ -169,24 +197,17 @@ def submit_file(path: Path | str, *, url=None, source: str | None = None, cycle:
                                          source=duplicate.source)
             items, locations = frames.load_items(session), frames.load_locations(session)
             if items.empty or locations.empty:
-                raise InputRejected(file=path.name, problems=[Problem(
-                    path.name, None, None, None, "items and locations master data loaded first ('consensus master')")])
+                raise _refuse(path, None, "items and locations master data loaded first ('consensus master')")
             horizons = _horizons(session, bulk)
-            check = checks.check_event_rows if kind == "events" else checks.check_forecast_rows
+            check = checks.check_event_rows if intake.kind == "events" else checks.check_forecast_rows
             result = check(raw, filename=path.name, items=items, locations=locations, horizons=horizons,
                            default_cycle=cycle)
-            if result.problems:
-                raise InputRejected(file=path.name, problems=list(result.problems),
-                                    total_problems=result.total_problems)
+            result.raise_if_problems(path.name)
             clean = result.clean
-            return _store_accepted(session, path=path, content=content, sha=sha, kind=kind, source=source,
-                                   scope=scope or _scope_of(clean, source), clean=clean, submitted_by=submitted_by,
-                                   file_format=file_format, horizons=horizons, default_cycle=cycle)
-    except InputRejected as error:
-        error.submission_id = _keep_rejected(url, path=path, content=content, kind=kind, source=source,
-                                             cycle=cycle, submitted_by=submitted_by, error=error,
-                                             file_format=file_format)
-        raise
+            return _store_accepted(session, path=path, content=intake.content, sha=sha, kind=intake.kind,
+                                   source=source, scope=scope or _scope_of(clean, source), clean=clean,
+                                   submitted_by=submitted_by, file_format=intake.file_format, horizons=horizons,
+                                   default_cycle=cycle)
 
 
 def _store_accepted(session: Session, *, path: Path, content: bytes, sha: str, kind: str, source: str, scope: str,
@@ -246,14 +267,11 @@ def load_master_file(path: Path | str, *, kind: str, url=None, submitted_by: str
     if kind not in MASTER_KINDS:
         raise ConsensusError(f"--kind must be one of {', '.join(MASTER_KINDS)}, not {kind!r}")
     path = Path(path)
-    content = path.read_bytes()
-    file_format: dict = {}
-    try:
+    with _kept_if_rejected(path, url=url, kind=kind, submitted_by=submitted_by) as intake:
         raw = reader.read_table(path)
-        file_format = dict(raw.file_format)
+        intake.file_format = dict(raw.file_format)
         result = checks.check_master_rows(raw, filename=path.name, kind=kind)
-        if result.problems:
-            raise InputRejected(file=path.name, problems=list(result.problems), total_problems=result.total_problems)
+        result.raise_if_problems(path.name)
         clean = result.clean
         with session_scope(url) as session:
             model, keys = {"items": (Item, ["item"]), "locations": (Location, ["location"]),
@@ -264,43 +282,31 @@ def load_master_file(path: Path | str, *, kind: str, url=None, submitted_by: str
             else:
                 session.execute(table.delete().where(table.c[keys[0]].in_(clean[keys[0]].tolist())))
             frames.write_frame(session, model, clean)
-            sub = Submission(kind=kind, filename=path.name, sha256=file_sha256(content), submitted_by=submitted_by,
-                             row_count=len(clean), file_format=file_format, content=content)
+            sub = Submission(kind=kind, filename=path.name, sha256=file_sha256(intake.content),
+                             submitted_by=submitted_by, row_count=len(clean), file_format=intake.file_format,
+                             content=intake.content)
             session.add(sub)
             session.flush()
             return SubmissionOutcome(path.name, "accepted", sub.id, kind=kind, rows=len(clean))
-    except InputRejected as error:
-        error.submission_id = _keep_rejected(url, path=path, content=content, kind=kind, source=None, cycle=None,
-                                             submitted_by=submitted_by, error=error, file_format=file_format)
-        raise
 
 
 def load_actuals_file(path: Path | str, *, url=None, submitted_by: str = "") -> SubmissionOutcome:
     """Load customer-order history into monthly buckets, replacing the months and keys it covers."""
     path = Path(path)
-    content = path.read_bytes()
-    file_format: dict = {}
-    try:
+    with _kept_if_rejected(path, url=url, kind="actuals", submitted_by=submitted_by) as intake:
         raw = reader.read_table(path)
-        file_format = dict(raw.file_format)
+        intake.file_format = dict(raw.file_format)
         with session_scope(url) as session:
             items, locations = frames.load_items(session), frames.load_locations(session)
             result = checks.check_actual_rows(raw, filename=path.name, items=items, locations=locations)
-            if result.problems:
-                raise InputRejected(file=path.name, problems=list(result.problems),
-                                    total_problems=result.total_problems)
-            sub = Submission(kind="actuals", filename=path.name, sha256=file_sha256(content),
-                             submitted_by=submitted_by, row_count=len(raw.frame), file_format=file_format,
-                             content=content)
+            result.raise_if_problems(path.name)
+            sub = Submission(kind="actuals", filename=path.name, sha256=file_sha256(intake.content),
+                             submitted_by=submitted_by, row_count=len(raw.frame), file_format=intake.file_format,
+                             content=intake.content)
             session.add(sub)
             session.flush()
             monthly = result.clean
             frames.replace_actuals(session, monthly, sub.id)
             months = sorted(monthly["period"].unique())
             return SubmissionOutcome(path.name, "accepted", sub.id, kind="actuals", rows=len(raw.frame),
-                                     cycles=[], message=f"{len(monthly):,} monthly buckets {months[0]} … {months[-1]}")
-    except InputRejected as error:
-        error.submission_id = _keep_rejected(url, path=path, content=content, kind="actuals", source=None,
-                                             cycle=None, submitted_by=submitted_by, error=error,
-                                             file_format=file_format)
-        raise
+                                     message=f"{len(monthly):,} monthly buckets {months[0]} … {months[-1]}")

@@ -100,45 +100,34 @@ def replace_actuals(session: Session, monthly: pd.DataFrame, submission_id: int 
     return write_frame(session, Actual, frame)
 
 
-def active_forecast_lines(
-    session: Session, *, cycles: list[str] | None = None, sources: list[str] | None = None
-) -> pd.DataFrame:
-    """Forecast lines of the submissions still in force for their (source, cycle, scope)."""
-    fl, sc = ForecastLine.__table__, SubmissionCycle.__table__
-    statement = (
-        select(
-            fl.c.submission_id, fl.c.cycle, fl.c.source, fl.c.row, fl.c.item, fl.c.family, fl.c.location,
-            fl.c.region, fl.c.period, fl.c.week, fl.c.quantity, fl.c.value, fl.c.note,
-        )
-        .join(sc, (sc.c.submission_id == fl.c.submission_id) & (sc.c.cycle == fl.c.cycle))
-        .where(sc.c.status == "accepted")
-    )
+def _lines_in_force(session: Session, model: type[SQLModel], columns: list[str], numeric: tuple[str, ...], *,
+                    cycles: list[str] | None, sources: list[str] | None = None) -> pd.DataFrame:
+    """Rows of ``model`` whose submission is still in force for their cycle (joined through SubmissionCycle)."""
+    lines, sc = model.__table__, SubmissionCycle.__table__
+    statement = (select(*[lines.c[c] for c in columns])
+                 .join(sc, (sc.c.submission_id == lines.c.submission_id) & (sc.c.cycle == lines.c.cycle))
+                 .where(sc.c.status == "accepted"))
     if cycles is not None:
-        statement = statement.where(fl.c.cycle.in_(cycles))
+        statement = statement.where(lines.c.cycle.in_(cycles))
     if sources is not None:
-        statement = statement.where(fl.c.source.in_(sources))
+        statement = statement.where(lines.c.source.in_(sources))
+    frame = read_frame(session, statement, columns)
+    for col in numeric:
+        frame[col] = pd.to_numeric(frame[col], errors="coerce").astype(float)
+    return frame.sort_values(["cycle", *(["source"] if "source" in columns else []), "submission_id", "row"],
+                             ignore_index=True)
+
+
+def active_forecast_lines(session: Session, *, cycles: list[str] | None = None,
+                          sources: list[str] | None = None) -> pd.DataFrame:
+    """Forecast lines of the submissions still in force for their (source, cycle, scope)."""
     columns = ["submission_id", "cycle", "source", "row", "item", "family", "location", "region",
                "period", "week", "quantity", "value", "note"]
-    frame = read_frame(session, statement, columns)
-    for col in ("quantity", "value"):
-        frame[col] = pd.to_numeric(frame[col], errors="coerce").astype(float)
-    return frame.sort_values(["cycle", "source", "submission_id", "row"], ignore_index=True)
+    return _lines_in_force(session, ForecastLine, columns, ("quantity", "value"), cycles=cycles, sources=sources)
 
 
 def active_event_lines(session: Session, *, cycles: list[str] | None = None) -> pd.DataFrame:
     """Marketing event rows of the submissions still in force."""
-    el, sc = EventLine.__table__, SubmissionCycle.__table__
-    statement = (
-        select(*[el.c[c] for c in ("submission_id", "cycle", "row", "event", "item", "family", "location",
-                                   "region", "start", "end", "uplift_pct", "units", "note")])
-        .join(sc, (sc.c.submission_id == el.c.submission_id) & (sc.c.cycle == el.c.cycle))
-        .where(sc.c.status == "accepted")
-    )
-    if cycles is not None:
-        statement = statement.where(el.c.cycle.in_(cycles))
     columns = ["submission_id", "cycle", "row", "event", "item", "family", "location", "region",
                "start", "end", "uplift_pct", "units", "note"]
-    frame = read_frame(session, statement, columns)
-    for col in ("uplift_pct", "units"):
-        frame[col] = pd.to_numeric(frame[col], errors="coerce").astype(float)
-    return frame.sort_values(["cycle", "submission_id", "row"], ignore_index=True)
+    return _lines_in_force(session, EventLine, columns, ("uplift_pct", "units"), cycles=cycles)
