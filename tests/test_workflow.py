@@ -124,3 +124,16 @@ def test_mint_shrink_run_stays_coherent_and_explained(demo_dir, tmp_path):
                                atol=1e-6)
     assert (lines["consensus"] >= 0).all() and (lines["reconciliation_adjustment"] != 0).any()
     assert ((lines["lower_80"] <= lines["consensus"] + 1e-9) & (lines["consensus"] <= lines["upper_80"] + 1e-9)).all()
+
+
+def test_family_decision_spreads_to_items_by_the_consensus_mix(demo_url):
+    """The demo's +8% on SPRINKLERS × NORTH in 2027-04: every cell in scope moves by the same factor."""
+    _, lines, _ = _current(demo_url)
+    with session_scope(demo_url) as s:
+        items, locations = frames.load_items(s), frames.load_locations(s)
+    cells = lines.merge(items[["item", "family"]], on="item").merge(locations[["location", "region"]], on="location")
+    scope = (cells["family"] == "SPRINKLERS") & (cells["region"] == "NORTH") & (cells["period"] == "2027-04")
+    touched = cells[scope & (cells["before_override"] > 0)]
+    assert len(touched) > 1
+    np.testing.assert_allclose(touched["consensus"] / touched["before_override"], 1.08, rtol=1e-9)
+    assert cells.loc[~scope & (cells["item"] != "TM-HUB-4"), "before_override"].isna().all()
