@@ -382,3 +382,36 @@ def seasonal_naive_scale(
         index_frame = totals.index.to_frame(index=False)
         out = pd.concat([index_frame.reset_index(drop=True), out], axis=1)
     return out[keys + ["scale", "n_scale"]]
+
+
+#: Levels of :func:`pooled_accuracy` and the keys each sums to.
+POOLED_LEVELS = {"item": ["item", "location"], "family_region": ["family", "region"], "family": ["family"],
+                 "total": []}
+
+
+def pooled_accuracy(errors: pd.DataFrame, *, level: str, items: pd.DataFrame,
+                    locations: pd.DataFrame) -> pd.DataFrame:
+    """One row per source and lag bucket at a level: cells summed to the level's groups, then measured together.
+
+    Item level pools every item × location cell; family × region (the grain
+    sales submit at) and family first sum each group; total sums everything.
+    Reading them side by side shows how much better groups are forecast than
+    single items, and judges each source at the grain it forecast.
+    """
+    if level not in POOLED_LEVELS:
+        raise InvalidSpec(f"level must be one of {list(POOLED_LEVELS)}, got {level!r}")
+    keys = POOLED_LEVELS[level]
+    e = errors.merge(items[["item", "family"]], on="item").merge(locations[["location", "region"]], on="location")
+    summed = (e.groupby(["source", "lag_bucket", "cycle", "period", *keys], as_index=False)[["forecast", "actual"]]
+              .sum().sort_values(["period", "cycle"]))
+    rows = []
+    for (source, bucket), g in summed.groupby(["source", "lag_bucket"], sort=True):
+        a, f = g["actual"].to_numpy(float), g["forecast"].to_numpy(float)
+        row = {"source": source, "lag_bucket": bucket, "n": len(g),
+               "n_zero_actual": int(zero_actual_count(a, f))}
+        row.update({name: measure(a, f) for name, measure in MEASURES.items()})
+        row["tracking_signal"] = tracking_signal(a, f)
+        row["ts_flag"] = bool(abs(row["tracking_signal"]) > 4)
+        row["mase"] = np.nan
+        rows.append(row)
+    return pd.DataFrame(rows)

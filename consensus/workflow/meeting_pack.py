@@ -103,36 +103,12 @@ def _fva(errors: pd.DataFrame) -> pd.DataFrame:
     return pd.DataFrame(rows, columns=["step", "wape", "n"])
 
 
-def pooled_accuracy(errors: pd.DataFrame, *, level: str, items: pd.DataFrame) -> pd.DataFrame:
-    """One row per source and lag bucket at a level: cells summed to the level's groups, then measured together.
-
-    Item level pools every item × location cell; family level first sums each
-    family; total sums everything.  Reading the three side by side shows how
-    much better groups are forecast than single items.
-    """
-    keys = {"item": ["item", "location"], "family": ["family"], "total": []}[level]
-    e = errors.merge(items[["item", "family"]], on="item")
-    summed = (e.groupby(["source", "lag_bucket", "cycle", "period", *keys], as_index=False)[["forecast", "actual"]]
-              .sum().sort_values(["period", "cycle"]))
-    rows = []
-    for (source, bucket), g in summed.groupby(["source", "lag_bucket"], sort=True):
-        a, f = g["actual"].to_numpy(float), g["forecast"].to_numpy(float)
-        row = {"source": source, "lag_bucket": bucket, "n": len(g),
-               "n_zero_actual": int(accuracy.zero_actual_count(a, f))}
-        row.update({name: measure(a, f) for name, measure in accuracy.MEASURES.items()})
-        row["tracking_signal"] = accuracy.tracking_signal(a, f)
-        row["ts_flag"] = bool(abs(row["tracking_signal"]) > 4)
-        row["mase"] = np.nan
-        rows.append(row)
-    return pd.DataFrame(rows)
-
-
-def _scorecards(errors, *, items) -> tuple[pd.DataFrame, pd.DataFrame]:
+def _scorecards(errors, *, items, locations) -> tuple[pd.DataFrame, pd.DataFrame]:
     shown = errors[errors["source"].isin(["sales", "dc", "marketing", "statistical", "consensus", "naive"])]
     if shown.empty:
         return empty_frame("scorecard"), empty_frame("scorecard_history")
-    card = pd.concat([pooled_accuracy(shown, level=level, items=items).assign(level=level)
-                      for level in ("item", "family", "total")], ignore_index=True)
+    card = pd.concat([accuracy.pooled_accuracy(shown, level=level, items=items, locations=locations).assign(level=level)
+                      for level in ("item", "family_region", "family", "total")], ignore_index=True)
     history = (shown.assign(abs_error=shown["error"].abs())
                .groupby(["source", "cycle"], as_index=False)
                .agg(abs_error=("abs_error", "sum"), signed=("error", "sum"), actual=("actual", "sum")))
@@ -169,7 +145,7 @@ def gather_pack_inputs(cycle: str, *, url=None) -> PackInputs:
     status = submission_status(cycle, url=url)
     missing = status.loc[status["state"] == "missing", ["source", "scope"]].reset_index(drop=True)
     known = actuals[actuals["period"] <= cycle]
-    card, history = _scorecards(errors, items=items)
+    card, history = _scorecards(errors, items=items, locations=locations)
     flagged = consensus[consensus["flagged"].astype(bool)].merge(items[["item", "family"]], on="item")
     if not decisions.empty:
         decisions = decisions.assign(scope=decision_scope(decisions),
@@ -179,8 +155,16 @@ def gather_pack_inputs(cycle: str, *, url=None) -> PackInputs:
         ["item", "period", "quantity"]], bom))
     wspec = run.spec.get("weights", {})
     notes = {
-        "weights": f"Scheme {wspec.get('scheme')} over the last {wspec.get('window_cycles')} cycles, per "
-                   f"{wspec.get('segment')} and lag bucket.",
+        "weights": (f"Scheme {wspec.get('scheme')}, per {wspec.get('segment')} and lag bucket, from the last "
+                    f"{wspec.get('window_cycles')} cycles of each source's errors. The default weighs each source by "
+                    "the inverse of its mean squared error (Bates & Granger, 1969) and shrinks those weights toward "
+                    "equal ones, w = ψ·ŵ + (1 − ψ)/N, with ψ = n/(n + κ) growing with the cycles of history n: "
+                    "estimated weights are noisy, and the forecast-combination literature finds equal weights hard "
+                    "to beat (the 'forecast combination puzzle'; Stock & Watson, 2004). Where a family has too "
+                    "little history the weights of all families pooled are used, and failing that equal weights; "
+                    "a source missing from a cell has its weight shared among those present."),
+        "errors": ("Error e = actual − forecast, so a negative bias or tracking signal means a source forecast too "
+                   "high. MAPE leaves out months with zero actual demand (counted in the scorecard as n_zero_actual)."),
         "bands": "Bands come from the empirical distribution of past errors at the same lag, scaled to the "
                  "forecast; with short history, from MAD with the normal approximation (σ ≈ 1.25 × MAD).",
         "reconciliation": " ".join(filter(None, [run.notes.get("reconciliation", {}).get("text", ""),
