@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from dataclasses import replace
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -101,10 +103,22 @@ def test_zero_consensus_spread_ratio_and_threshold_keyword():
         ("B", "L1", "2026-02", 1): {"sales": 0.0, "stat": 0.0},
         ("C", "L2", "2026-02", 1): {"sales": 10.0, "stat": 13.0},
     })
-    cons = combine_sources(aligned, weights, items=ITEMS, spec=SPEC, threshold=0.2).consensus.set_index("item")
+    spec = replace(SPEC, disagreement_min_units=0.0)  # no materiality floor: the ratio alone decides here
+    cons = combine_sources(aligned, weights, items=ITEMS, spec=spec, threshold=0.2).consensus.set_index("item")
     assert np.isinf(cons.loc["A", "spread_ratio"]) and cons.loc["A", "flagged"]
     assert cons.loc["B", "spread_ratio"] == 0.0 and not cons.loc["B", "flagged"]
     assert cons.loc["C", "spread_ratio"] == pytest.approx(0.3) and cons.loc["C", "flagged"]
+
+
+def test_small_spreads_are_not_flagged_however_large_the_ratio():
+    weights = weight_table({"sales": 0.5, "stat": 0.5})
+    aligned = aligned_frame({
+        ("A", "L1", "2026-02", 1): {"sales": 2.0, "stat": 9.0},  # ratio 1.27 but 7 units apart
+        ("C", "L2", "2026-02", 1): {"sales": 20.0, "stat": 45.0},  # ratio 0.77 and 25 units apart
+    })
+    cons = combine_sources(aligned, weights, items=ITEMS, spec=SPEC).consensus.set_index("item")
+    assert cons.loc["A", "spread_ratio"] > 0.5 and not cons.loc["A", "flagged"]
+    assert cons.loc["C", "flagged"]
 
 
 def test_unweighted_source_and_duplicates_are_rejected():

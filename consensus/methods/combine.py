@@ -91,6 +91,7 @@ def combine_sources(
     Disagreement: spread = max − min of the submitted values of a cell,
     spread_ratio = spread / consensus (0 when both are 0, +inf for a zero
     consensus with a spread), flagged when spread_ratio > threshold
+    and the spread is at least spec.disagreement_min_units (default 10 units)
     (``threshold`` or spec.disagreement_threshold, default 0.5: sources half
     a plan apart disagree about the level of demand, not about detail — a
     judgement default worth a look in the meeting, common practice rather
@@ -159,7 +160,8 @@ def combine_sources(
     cells["renormalised"] = cells["present_weight"] < 1.0 - 1e-9
     cells["spread"] = cells["source_max"] - cells["source_min"]
     cells["spread_ratio"] = _spread_ratio(cells["spread"], cells["consensus"])
-    cells["flagged"] = cells["spread_ratio"] > limit
+    # materiality: a few units' spread on a slow mover is noise, not a question for the meeting
+    cells["flagged"] = (cells["spread_ratio"] > limit) & (cells["spread"] >= float(spec.disagreement_min_units))
 
     rows = rows.merge(cells[CELL + ["missing_sources", "renormalised"]], on=CELL, how="left")
     note = rows["note"].astype(str)

@@ -68,7 +68,8 @@ class WeightSpec:
     discount: δ of ``discounted_mse`` (0 < δ ≤ 1); min_cycles: fewer past
     cycles than this for any source and the segment falls back (segment →
     all → equal); bias_correction: add each source's shrunk mean error in
-    the combination; shrinkage_cycles: κ of ψ = n/(n + κ); disagreement_threshold:
+    the combination; shrinkage_cycles: κ of ψ = n/(n + κ); disagreement_min_units:
+    a cell's spread must also reach this many units to be flagged; disagreement_threshold:
     spread/consensus above which a cell is flagged in the combination.
     """
 
@@ -80,6 +81,7 @@ class WeightSpec:
     bias_correction: bool = False
     shrinkage_cycles: float = 1.0
     disagreement_threshold: float = 0.5
+    disagreement_min_units: float = 10.0
 
     def __post_init__(self) -> None:
         if self.scheme not in SCHEMES:
@@ -96,6 +98,8 @@ class WeightSpec:
             raise InvalidSpec(f"shrinkage_cycles must be ≥ 0, got {self.shrinkage_cycles!r}")
         if not float(self.disagreement_threshold) >= 0:
             raise InvalidSpec(f"disagreement_threshold must be ≥ 0, got {self.disagreement_threshold!r}")
+        if not float(self.disagreement_min_units) >= 0:
+            raise InvalidSpec(f"disagreement_min_units must be ≥ 0, got {self.disagreement_min_units!r}")
         if not isinstance(self.bias_correction, (bool, np.bool_)):
             raise InvalidSpec(f"bias_correction must be True or False, got {self.bias_correction!r}")
 
