@@ -16,8 +16,10 @@ import pandas as pd
 from markupsafe import Markup
 
 from consensus.errors import InvalidSpec
+from consensus.methods.demand_pattern import ADI_CUTOFF, CV2_CUTOFF
 from consensus.pack import charts
 from consensus.pack.inputs import PackInputs
+from consensus.pack.textgrid import GridColumn, lay_out_text_grid
 from consensus.periods import (
     DEFAULT_LAG_BUCKETS,
     horizon_months,
@@ -38,6 +40,24 @@ TS_LIMIT_DEFAULT = 4.0
 _MINUS = "\u2212"
 _UP, _DOWN = "▲", "▼"
 _SOURCE_ORDER = ("statistical", "sales", "marketing", "dc")
+#: How the pack names the statistical forecast's demand patterns and methods (unknown names print as given).
+PATTERN_LABELS = {
+    "smooth": "smooth", "erratic": "erratic", "intermittent": "intermittent", "lumpy": "lumpy",
+    "no_demand": "no demand",
+}
+METHOD_LABELS = {
+    "naive": "naive", "seasonal_naive": "seasonal naive", "moving_average": "moving average", "ses": "SES",
+    "croston": "Croston", "sba": "SBA", "holt_damped": "damped Holt", "holt": "Holt",
+    "holt_winters_add": "Holt–Winters add", "holt_winters_mul": "Holt–Winters mul",
+    "new_item_profile": "new-item profile", "zero_demand": "zero demand",
+}
+FALLBACK_MARK = "†"
+#: Advance of every glyph of DejaVu Sans Mono in em (1233 of 2048 font units), and the text width of an
+#: A4 page with the pack's 14 mm side margins (182 mm) in points.
+MONO_ADVANCE_EM = 1233 / 2048
+TEXT_WIDTH_PT = 182 / 25.4 * 72
+#: Months of actuals that weight each location's holdout WAPE in an item's figure (the holdout's length).
+HOLDOUT_WEIGHT_MONTHS = 12
 _EXCEPTION_KINDS = {
     "disagreement": "Sources disagree",
     "tracking": "Biased source",
@@ -220,6 +240,8 @@ def build_pack_context(
     families = _family_pages(
         inputs, fam_plan, fam_act, sources, cons, family_order, source_names, plan_months,
         history_months_shown=history_months_shown, with_charts=with_charts,
+        series_by_item=summarise_series(inputs.series, items, actuals, inputs.last_actual_month),
+        series_fallbacks=_fallback_series(inputs.series, items),
     )
     scorecard = _scorecard(inputs, ts_limit=ts_limit, source_names=source_names, with_charts=with_charts)
     fva = _value_added(inputs.fva, with_charts=with_charts)
@@ -274,6 +296,9 @@ def build_pack_context(
         "components": _components(inputs.components, plan_months, component_rows),
         "method_notes": [{"title": k, "text": v} for k, v in inputs.method_notes.items()],
         "band_coverage": _band_coverage(inputs.band_coverage),
+        "by_family_grid": _by_family_grid(summary, family_order),
+        "pattern_note": {"adi": ADI_CUTOFF, "cv2": CV2_CUTOFF, "shown": not inputs.series.empty,
+                         "weight_months": HOLDOUT_WEIGHT_MONTHS},
     }
 
 
@@ -608,7 +633,7 @@ def _exceptions(
 
 def _family_pages(
     inputs, fam_plan, fam_act, sources, cons, family_order, source_names, plan_months, *,
-    history_months_shown, with_charts,
+    history_months_shown, with_charts, series_by_item, series_fallbacks,
 ) -> list[dict]:
     """One page per family, all built from family × month frames grouped once."""
     last_actual = month_index(inputs.last_actual_month)
@@ -675,6 +700,10 @@ def _family_pages(
         }
         for key in weights_wide.index
     }
+    month_grid = _month_grid(plan_cube, plan_cols, plan_months, source_names)
+    lines_per_family = len(plan_months)
+    series_lines, series_columns, series_items = _series_grid(series_by_item)
+    fallback_notes = _fallback_notes(series_fallbacks)
     painter = (
         charts.FamilyChartPainter(history_months=hist_months, plan_months=plan_months, source_names=source_names,
                                   quantity_unit=inputs.quantity_unit)
@@ -691,6 +720,7 @@ def _family_pages(
             for source in source_names if (segment, source) in weight_lookup
         ]
         cover = coverage.loc[family] if family in coverage.index else pd.Series(dtype=float)
+        partly_covered = {s for s in source_names if pd.notna(cover.get(s)) and float(cover.get(s)) < 0.999}
         cells = np.where(np.isfinite(p), p, np.nan).tolist()
         n_src = len(src_cols)
         table_rows = [
@@ -726,8 +756,216 @@ def _family_pages(
             "weights": weight_rows,
             "weights_segment": segment,
             "weights_are_own": segment == family,
+            "grid": {
+                "columns": [
+                    {**c, "label": c["label"] + "*"} if c.get("source") in partly_covered else c
+                    for c in month_grid.columns
+                ],
+                "lines": month_grid.lines[(number - 1) * lines_per_family: number * lines_per_family],
+                "font_pt": grid_font_pt(month_grid.width),
+            },
+            "series_grid": {
+                "columns": series_columns, "lines": series_lines.get(family, []),
+                "font_pt": grid_font_pt(sum(c["width"] for c in series_columns), preferred_pt=6.9),
+            },
+            "series_items": series_items.get(family, []),
+            "fallback_notes": fallback_notes.get(family, {"lines": [], "n_hidden": 0}),
         })
     return pages
+
+
+def _quantity_text(values) -> pd.Series:
+    return pd.Series(values).map(format_quantity)
+
+
+def _month_grid(plan_cube: np.ndarray, plan_cols: list[str], plan_months: list[str], source_names: list[str]):
+    """The family pages' month tables as fixed-width lines, one column width for every family.
+
+    Same columns as the screen table: month, consensus, 80% and 95% bands
+    (low – high), last cycle, the change against it, and each source.
+    """
+    n_families = plan_cube.shape[0]
+    flat = pd.DataFrame(plan_cube.reshape(-1, plan_cube.shape[2]), columns=plan_cols)
+
+    def band(low: str, high: str) -> pd.Series:
+        lo, hi = _quantity_text(flat[low]), _quantity_text(flat[high])
+        return lo.str.rjust(int(lo.str.len().max() or 0)) + " – " + hi.str.rjust(int(hi.str.len().max() or 0))
+
+    values = pd.DataFrame({
+        "month": np.tile(np.asarray(plan_months, dtype=object), n_families),
+        "consensus": _quantity_text(flat["consensus"]),
+        "band80": band("lower_80", "upper_80"),
+        "band95": band("lower_95", "upper_95"),
+        "previous": _quantity_text(flat["previous"]),
+        "change": (flat["consensus"] - flat["previous"]).map(format_change),
+        **{f"src_{s}": _quantity_text(flat[f"src_{s}"]) for s in source_names},
+    })
+    columns = [
+        GridColumn("Month", "left"), GridColumn("Consensus", css_class="strong", min_width=9),
+        GridColumn("80% band", min_width=8), GridColumn("95% band", min_width=8),
+        GridColumn("Last cycle", min_width=8), GridColumn("Δ vs last", min_width=8),
+        *(GridColumn(s, css_class="src", min_width=max(len(s), 6)) for s in source_names),
+    ]
+    grid = lay_out_text_grid(values, columns)
+    # Remember which header cells are sources, so each page can star a source that covers part of it.
+    named = [dict(c) for c in grid.columns]
+    labelled = [c for c in named if c["label"] is not None]
+    for column, spec in zip(labelled, columns):
+        column["source"] = spec.label if spec.css_class == "src" else None
+    return type(grid)(columns=tuple(named), lines=grid.lines, width=grid.width)
+
+
+def summarise_series(
+    series: pd.DataFrame, items: pd.DataFrame, actuals: pd.DataFrame, last_actual_month: str
+) -> pd.DataFrame:
+    """One row per item of the statistical forecast: its usual pattern and method, holdout WAPE, fallbacks.
+
+    The pattern and the method are the most common across the item's
+    locations (ties go to the name first in alphabetical order), with how many
+    locations share them.  The item's holdout WAPE is the locations' WAPEs
+    weighted by their actual demand over the last ``HOLDOUT_WEIGHT_MONTHS``
+    months, Σ_l A_l·WAPE_l / Σ_l A_l: since WAPE_l = Σ|e| / A_l over the
+    holdout, this is the WAPE of the item's summed absolute errors when the
+    recent actuals stand in for the holdout's (a plain mean where no location
+    has recent demand).  Returns [item, family, n_locations, pattern,
+    pattern_count, method, method_count, holdout_wape, n_fallback].
+    """
+    out_columns = ["item", "family", "n_locations", "pattern", "pattern_count", "method", "method_count",
+                   "holdout_wape", "n_fallback"]
+    if series.empty:
+        return pd.DataFrame(columns=out_columns)
+    frame = series[["item", "location", "pattern", "method", "holdout_wape", "fallback"]].copy()
+    frame["item"] = frame["item"].astype(str)
+    frame["holdout_wape"] = pd.to_numeric(frame["holdout_wape"], errors="coerce")
+    frame["pattern"] = frame["pattern"].fillna("").astype(str)
+    frame["method"] = frame["method"].fillna("").astype(str)
+    frame["has_fallback"] = frame["fallback"].fillna("").astype(str).str.strip().ne("")
+
+    first_weighted = month_index(last_actual_month) - HOLDOUT_WEIGHT_MONTHS + 1
+    recent = actuals[month_indexes(actuals["period"]) >= first_weighted] if not actuals.empty else actuals
+    volume = recent.groupby(["item", "location"], as_index=False)["quantity"].sum() if not recent.empty else (
+        pd.DataFrame(columns=["item", "location", "quantity"]))
+    frame = frame.merge(volume.astype({"item": str}), on=["item", "location"], how="left")
+    scored = frame["holdout_wape"].notna()
+    weight = frame["quantity"].fillna(0.0).clip(lower=0.0).where(scored, 0.0)
+    frame = frame.assign(weighted=weight * frame["holdout_wape"].fillna(0.0), weight=weight)
+
+    def most_common(column: str) -> pd.DataFrame:
+        counts = frame.groupby(["item", column]).size().rename(f"{column}_count").reset_index()
+        counts = counts.sort_values(["item", f"{column}_count", column], ascending=[True, False, True])
+        return counts.drop_duplicates("item").set_index("item")
+
+    by_item = frame.groupby("item").agg(
+        n_locations=("location", "size"), weighted=("weighted", "sum"), weight=("weight", "sum"),
+        plain=("holdout_wape", "mean"), n_fallback=("has_fallback", "sum"),
+    )
+    by_item["holdout_wape"] = (by_item["weighted"] / by_item["weight"].where(by_item["weight"] > 0)).fillna(
+        by_item["plain"])
+    out = by_item.join(most_common("pattern")).join(most_common("method")).reset_index()
+    out = out.merge(items[["item", "family"]].astype({"item": str}), on="item", how="left")
+    out["family"] = out["family"].fillna("(unassigned)")
+    return out[out_columns].sort_values(["family", "item"], kind="stable").reset_index(drop=True)
+
+
+def _fallback_series(series: pd.DataFrame, items: pd.DataFrame) -> pd.DataFrame:
+    """The series on a fallback, with their family: [family, item, location, fallback]."""
+    if series.empty:
+        return pd.DataFrame(columns=["family", "item", "location", "fallback"])
+    text = series["fallback"].fillna("").astype(str).str.strip()
+    rows = series.loc[text.ne(""), ["item", "location"]].astype(str).assign(fallback=text[text.ne("")])
+    rows = rows.merge(items[["item", "family"]].astype({"item": str}), on="item", how="left")
+    rows["family"] = rows["family"].fillna("(unassigned)")
+    return rows[["family", "item", "location", "fallback"]].sort_values(["family", "item", "location"])
+
+
+def _counted(label: pd.Series, count: pd.Series, total: pd.Series) -> pd.Series:
+    """A label, with "k/n" added when only k of the item's n locations share it."""
+    suffix = " " + count.astype(int).astype(str) + "/" + total.astype(int).astype(str)
+    return label + suffix.where(count < total, "")
+
+
+def _series_grid(by_item: pd.DataFrame, *, max_notes: int = 4):
+    """Per family, the items' pattern/method table as fixed-width lines, two items side by side.
+
+    Items run down the left half first, then the right half, so the table reads
+    in item order like two newspaper columns.
+    """
+    if by_item.empty:
+        return {}, [], {}
+    pattern = _counted(by_item["pattern"].map(lambda p: PATTERN_LABELS.get(p, p)), by_item["pattern_count"],
+                       by_item["n_locations"])
+    method = _counted(by_item["method"].map(lambda m: METHOD_LABELS.get(m, m)), by_item["method_count"],
+                      by_item["n_locations"])
+    method = method + np.where(by_item["n_fallback"] > 0, FALLBACK_MARK, "")
+    wape = (100 * by_item["holdout_wape"]).map(format_percent)
+    values = pd.DataFrame({"item": by_item["item"], "pattern": pattern, "method": method, "wape": wape})
+    half = lay_out_text_grid(values, [
+        GridColumn("Item", "left"), GridColumn("Pattern", "left", min_width=7),
+        GridColumn("Method (locations)", "left", min_width=18), GridColumn("Holdout WAPE", min_width=7),
+    ])
+    half_lines = pd.Series(half.lines, index=by_item.index).str.ljust(half.width)
+    position = by_item.groupby("family").cumcount()
+    size = by_item.groupby("family")["item"].transform("size")
+    rows_left = (size + 1) // 2
+    is_right = position >= rows_left
+    frame = pd.DataFrame({
+        "family": by_item["family"], "line": np.where(is_right, position - rows_left, position),
+        "side": np.where(is_right, "right", "left"), "text": half_lines,
+    })
+    wide = frame.pivot_table(index=["family", "line"], columns="side", values="text", aggfunc="first")
+    wide = wide.reindex(columns=["left", "right"]).fillna("")
+    spacer = " " * 4
+    joined = (wide["left"] + np.where(wide["right"].str.len() > 0, spacer, "") + wide["right"]).str.rstrip()
+    lines = {family: list(group) for family, group in joined.groupby(level="family")}
+    columns = [*half.columns, {"label": None, "width": len(spacer), "align": "left", "css_class": ""}, *half.columns]
+    records = by_item.assign(pattern_text=pattern, method_text=method, wape_text=wape)
+    items_by_family = {
+        family: group[["item", "pattern_text", "method_text", "wape_text", "n_fallback"]].to_dict("records")
+        for family, group in records.groupby("family")
+    }
+    return lines, columns, items_by_family
+
+
+def _fallback_notes(fallbacks: pd.DataFrame, *, max_notes: int = 3) -> dict[str, dict]:
+    """Per family, the first few series on a fallback with the reason, and how many more there are."""
+    if fallbacks.empty:
+        return {}
+    text = fallbacks["item"] + " at " + fallbacks["location"] + ": " + fallbacks["fallback"]
+    notes = {}
+    for family, group in text.groupby(fallbacks["family"], sort=False):
+        notes[family] = {"lines": list(group.iloc[:max_notes]), "n_hidden": max(len(group) - max_notes, 0)}
+    return notes
+
+
+def _by_family_grid(summary: dict[str, Any], family_order: list[str]):
+    """The "Consensus by family" table as fixed-width lines (page numbers are added by the template)."""
+    rows = summary["rows_all"]
+    if not rows:
+        return None
+    data = {"family": [r["family"] for r in rows]}
+    columns = [GridColumn("Family", "left", min_width=6)]
+    for position, window in enumerate(summary["windows"]):
+        cells = [r["windows"][position] for r in rows]
+        data[f"c{position}"] = [format_quantity(c["consensus"]) for c in cells]
+        data[f"p{position}"] = [format_percent(c["vs_prev_pct"], signed=True) for c in cells]
+        data[f"y{position}"] = [format_percent(c["vs_ly_pct"], signed=True) for c in cells]
+        columns += [GridColumn("Consensus", min_width=9, css_class="group-start"),
+                    GridColumn("vs last cycle", min_width=9), GridColumn("vs last year", min_width=9)]
+    grid = lay_out_text_grid(pd.DataFrame(data), columns)
+    groups = [("", 1), *((w["label"], 3) for w in summary["windows"]), ("", 1)]  # last: the page column
+    return {"columns": list(grid.columns), "lines": list(grid.lines), "width": grid.width,
+            "font_pt": grid_font_pt(grid.width + 6), "groups": groups}
+
+
+def grid_font_pt(width_chars: int, *, preferred_pt: float = 7.1, line_pt: float = TEXT_WIDTH_PT) -> float:
+    """Largest font size up to ``preferred_pt`` at which a line of ``width_chars`` monospaced characters fits.
+
+    A character of DejaVu Sans Mono advances 1233/2048 em (its hmtx table), so
+    a line is ``width_chars × 0.602 × size`` points wide.
+    """
+    if width_chars <= 0:
+        return preferred_pt
+    return round(min(preferred_pt, line_pt / (width_chars * MONO_ADVANCE_EM)) - 0.05, 1)
 
 
 # --------------------------------------------------------------------------- scorecard, FVA, components

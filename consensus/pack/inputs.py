@@ -46,6 +46,9 @@ FRAME_COLUMNS: dict[str, tuple[str, ...]] = {
     "decisions": ("at", "author", "scope", "period", "change", "reason"),
     "components": ("component", "period", "quantity"),
     "band_coverage": ("level", "nominal", "coverage", "winkler"),
+    # One row per item × location of the statistical forecast; holdout_wape is a fraction (0.12 = 12%),
+    # fallback is "" when a fitted method was used.
+    "series": ("item", "location", "pattern", "method", "holdout_wape", "fallback"),
 }
 
 
@@ -76,6 +79,7 @@ class PackInputs:
     components: pd.DataFrame
     method_notes: dict[str, str] = field(default_factory=dict)
     band_coverage: pd.DataFrame = field(default_factory=lambda: empty_frame("band_coverage"))
+    series: pd.DataFrame = field(default_factory=lambda: empty_frame("series"))
     # Labels only: the pack never converts units or currencies.
     quantity_unit: str = "units"
     currency: str = "EUR"
@@ -331,6 +335,7 @@ def example_pack_inputs(
         {"level": ["item", "item", "family", "family"], "nominal": [0.8, 0.95, 0.8, 0.95],
          "coverage": [0.77, 0.93, 0.82, 0.96], "winkler": [41.2, 63.5, 388.0, 602.1]}
     )
+    series = _example_series(rng, item_codes[cell_item], loc_codes[cell_loc], hist_qty, items, cycle_idx)
     return PackInputs(
         company="Demo Kitchenware Co. (invented example)", cycle=cycle, status=status,
         generated_at=generated_at, horizon=horizon, last_actual_month=cycle,
@@ -338,6 +343,7 @@ def example_pack_inputs(
         sources=sources, consensus=consensus, previous=previous, weights=weights, scorecard=scorecard,
         scorecard_history=scorecard_history, disagreement=disagreement.reset_index(drop=True), fva=fva,
         decisions=decisions, components=components, method_notes=method_notes, band_coverage=band_coverage,
+        series=series,
     )
 
 
@@ -385,3 +391,58 @@ def _example_components(
     exploded = demand.merge(usage, on="family_code")
     exploded["quantity"] = exploded["consensus"] * exploded["qty_per"]
     return exploded.groupby(["component", "period"], as_index=False)["quantity"].sum().round({"quantity": 0})
+
+
+# Methods the invented scenario picks per pattern, with how often (seasonal scenario: mostly Holt–Winters).
+_EXAMPLE_METHODS = {
+    "smooth": (("holt_winters_add", 0.55), ("holt_winters_mul", 0.2), ("holt_damped", 0.15), ("ses", 0.1)),
+    "erratic": (("ses", 0.5), ("holt_damped", 0.3), ("moving_average", 0.2)),
+    "intermittent": (("sba", 0.6), ("croston", 0.4)),
+    "lumpy": (("sba", 0.5), ("moving_average", 0.5)),
+}
+
+
+def _example_series(
+    rng: np.random.Generator, cell_items: np.ndarray, cell_locations: np.ndarray, hist_qty: np.ndarray,
+    items: pd.DataFrame, cycle_idx: int,
+) -> pd.DataFrame:
+    """The statistical forecast's per-series table of the invented scenario.
+
+    The pattern is the real Syntetos–Boylan–Croston class of each history with a
+    share of months zeroed out (so all four classes occur); methods are drawn
+    per class, a few cells are new items on the family-profile fallback.
+    """
+    from consensus.methods.demand_pattern import classify_demand
+
+    n_cells, n_months = hist_qty.shape
+    # Sparse demand for about a quarter of the cells: each month kept with probability 0.35.
+    sparse = rng.random(n_cells) < 0.25
+    kept = np.where(sparse[:, None], rng.random(hist_qty.shape) < 0.35, True)
+    # Erratic sizes for some cells: a heavy multiplicative shock.
+    shocked = hist_qty * np.where((rng.random(n_cells) < 0.2)[:, None], rng.lognormal(0, 1.2, hist_qty.shape), 1.0)
+    history = np.where(kept, shocked, 0.0)
+    pattern = np.asarray(classify_demand(history, np.zeros(n_cells, dtype=int)), dtype=object)
+    method = np.empty(n_cells, dtype=object)
+    for name, choices in _EXAMPLE_METHODS.items():
+        rows = np.flatnonzero(pattern == name)
+        labels = [m for m, _ in choices]
+        method[rows] = rng.choice(labels, size=len(rows), p=[p for _, p in choices])
+    no_demand = pattern == "no_demand"
+    method[no_demand] = "zero_demand"
+    wape = np.round(np.where(np.isin(pattern, ("intermittent", "lumpy")), rng.uniform(0.45, 0.95, n_cells),
+                             rng.uniform(0.08, 0.35, n_cells)), 4)
+    fallback = np.full(n_cells, "", dtype=object)
+    new_item = rng.random(n_cells) < 0.03
+    months_known = rng.integers(1, 6, size=n_cells)
+    family_of = pd.Series(cell_items).map(items.set_index("item")["family"]).to_numpy(dtype=object)
+    method[new_item] = "new_item_profile"
+    wape[new_item | no_demand] = np.nan
+    fallback[no_demand] = "no demand in history: forecast zero"
+    fallback[new_item] = (
+        "new item: " + months_known[new_item].astype(str) + " month(s) since first demand; family "
+        + family_of[new_item].astype(str) + " seasonal profile × item mean"
+    )
+    return pd.DataFrame(
+        {"item": cell_items, "location": cell_locations, "pattern": pattern, "method": method,
+         "holdout_wape": wape, "fallback": fallback}
+    )

@@ -31,6 +31,7 @@ from consensus.pack.context import (
     format_quantity,
     format_share,
 )
+from consensus.errors import InvalidSpec
 from consensus.pack.inputs import PackInputs
 from consensus.resources import reports_dir
 
@@ -38,6 +39,8 @@ LOGGER = logging.getLogger(__name__)
 TEMPLATE_NAME = "pack.html.j2"
 _TABLE_GAP = re.compile(r">\s+<(/?(?:td|th|tr|thead|tbody|tfoot|table|colgroup|col)\b)")
 STYLESHEET_NAME = "pack.css"
+#: The pieces a pack can be laid out in: all of it, or front matter, family pages and back matter apart.
+PARTS = ("all", "front", "families", "back")
 
 
 @dataclass(frozen=True)
@@ -122,13 +125,31 @@ def build_html(inputs: PackInputs, **context_options: Any) -> str:
     return _render_context(context, inline_charts=True)
 
 
-def _render_context(context: dict[str, Any], *, inline_charts: bool) -> str:
-    """Fill the templates; ``inline_charts`` puts SVG in the markup (screen) or in data: images (print)."""
+def _render_context(
+    context: dict[str, Any],
+    *,
+    inline_charts: bool,
+    part: str = "all",
+    families: list[dict] | None = None,
+    page_setup: dict[str, int] | None = None,
+    page_numbers: dict[str, int] | None = None,
+) -> str:
+    """Fill the templates; ``inline_charts`` puts SVG in the markup (screen) or in data: images (print).
+
+    ``part`` picks the front matter, a run of family pages (``families``) or
+    the back matter, for a pack laid out in parts; ``page_setup`` then gives the
+    part's first page number and the pack's page count, and ``page_numbers``
+    the page of every anchor the part refers to.
+    """
+    if part not in PARTS:
+        raise InvalidSpec(f"part must be one of {PARTS}, got {part!r}")
     root = reports_dir()
     env = _environment(str(root / "templates"))
     stylesheet = (root / "styles" / STYLESHEET_NAME).read_text(encoding="utf-8")
     html = env.get_template(TEMPLATE_NAME).render(
-        **context, stylesheet=Markup(stylesheet), inline_charts=inline_charts
+        **context, stylesheet=Markup(stylesheet), inline_charts=inline_charts, part=part,
+        part_families=context["families"] if families is None else families,
+        page_setup=page_setup, page_numbers=page_numbers,
     )
     # Whitespace between table tags becomes anonymous boxes in WeasyPrint; drop it.
     return _TABLE_GAP.sub(r"><\1", html)
