@@ -30,6 +30,7 @@ from consensus.workflow.cycles import get_cycle, submission_status
 from consensus.workflow.decisions import decision_scope, load_decisions
 from consensus.workflow.publish import latest_run, run_lines
 from consensus.workflow.run import RunSpec, measure_history
+from consensus.workflow.statistical_source import series_table
 
 FVA_ORDER = ["naive", "statistical_base", "statistical", "dc", "sales", "marketing", "consensus"]
 FVA_LABELS = {"naive": "seasonal naive", "statistical_base": "statistical (before events)",
@@ -142,6 +143,7 @@ def gather_pack_inputs(cycle: str, *, url=None) -> PackInputs:
         coverage = _band_coverage(session, cycle, actuals)
         company = company_name(session)
         bom = frames.load_bom(session)
+        series = series_table(session, cycle)
     status = submission_status(cycle, url=url)
     missing = status.loc[status["state"] == "missing", ["source", "scope"]].reset_index(drop=True)
     known = actuals[actuals["period"] <= cycle]
@@ -180,6 +182,8 @@ def gather_pack_inputs(cycle: str, *, url=None) -> PackInputs:
         disagreement=flagged[["item", "location", "period", "family", "spread", "spread_ratio", "flagged"]],
         fva=_fva(errors), decisions=decisions if not decisions.empty else empty_frame("decisions"),
         components=components, method_notes=notes, band_coverage=coverage,
+        series=series.reindex(columns=list(empty_frame("series").columns)) if not series.empty
+        else empty_frame("series"),
     )
 
 
