@@ -185,7 +185,7 @@ class FamilyChartPainter:
         self.source_names = list(source_names)
         nan_plan = np.full(len(self.plan_x), np.nan)
         with rc_context(_RC):
-            figure = Figure(figsize=(7.0, 2.75 if with_legend else 2.15))
+            figure = Figure(figsize=(7.0, 2.7 if with_legend else 2.05))
             ax = figure.add_axes((0.085, 0.3, 0.9, 0.64))
             self.band_95 = ax.fill_between(self.plan_x, nan_plan, nan_plan, color=CONSENSUS_COLOUR, alpha=0.12,
                                            linewidth=0, label="95% band")
@@ -236,7 +236,7 @@ class FamilyChartPainter:
                               ncol=min(len(order), 5), frameon=False, fontsize=6.8, handlelength=2.8,
                               columnspacing=1.6, bbox_to_anchor=(0.5, 0.0))
             else:
-                ax.set_position((0.085, 0.22, 0.9, 0.72))
+                ax.set_position((0.085, 0.23, 0.9, 0.71))
         self.figure, self.ax = figure, ax
 
     def draw(

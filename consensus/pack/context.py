@@ -926,11 +926,16 @@ def _series_grid(by_item: pd.DataFrame, *, max_notes: int = 4):
     return lines, columns, items_by_family
 
 
-def _fallback_notes(fallbacks: pd.DataFrame, *, max_notes: int = 3) -> dict[str, dict]:
-    """Per family, the first few series on a fallback with the reason, and how many more there are."""
+def _fallback_notes(fallbacks: pd.DataFrame, *, max_notes: int = 2) -> dict[str, dict]:
+    """Per family, the first few series on a fallback with the reason, and how many more there are.
+
+    The reason is the fallback text up to its first ";" (what made the series
+    fall back; the rest says how it was forecast), so a family page keeps room.
+    """
     if fallbacks.empty:
         return {}
-    text = fallbacks["item"] + " at " + fallbacks["location"] + ": " + fallbacks["fallback"]
+    reason = fallbacks["fallback"].str.split(";", n=1).str[0].str.strip()
+    text = fallbacks["item"] + " at " + fallbacks["location"] + " (" + reason + ")"
     notes = {}
     for family, group in text.groupby(fallbacks["family"], sort=False):
         notes[family] = {"lines": list(group.iloc[:max_notes]), "n_hidden": max(len(group) - max_notes, 0)}

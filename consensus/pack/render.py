@@ -13,6 +13,7 @@ from __future__ import annotations
 import base64
 import logging
 import math
+import os
 import re
 import time
 from dataclasses import dataclass, field
@@ -33,6 +34,8 @@ from consensus.pack.context import (
 )
 from consensus.errors import InvalidSpec
 from consensus.pack.inputs import PackInputs
+from consensus.pack.paginate import LaidOutPart, describe_part, join_parts, lay_out, lay_out_part, warm_up
+from consensus.pack.paginate import restricted_fetcher  # noqa: F401 - part of this module's interface
 from consensus.resources import reports_dir
 
 LOGGER = logging.getLogger(__name__)
@@ -155,49 +158,6 @@ def _render_context(
     return _TABLE_GAP.sub(r"><\1", html)
 
 
-# --------------------------------------------------------------------------- fetching
-
-
-def _restricted_fetcher_class():
-    from weasyprint.urls import URLFetcher
-
-    class RestrictedFetcher(URLFetcher):
-        """Serve only ``data:`` URIs and files under one folder; record and refuse everything else."""
-
-        def __init__(self, allowed_root: Path, **kwargs: Any) -> None:
-            super().__init__(allowed_protocols=("file", "data"), allow_redirects=False, timeout=1, **kwargs)
-            self.allowed_root = allowed_root.resolve()
-            self.fetched: list[str] = []
-            self.refused: list[str] = []
-
-        def fetch(self, url, headers=None):  # noqa: D102 - signature fixed by WeasyPrint
-            if not self._is_allowed(url):
-                self.refused.append(url)
-                LOGGER.warning("pack: refused to fetch %s", url)
-                raise ValueError(f"the pack loads only its own files; refused {url}")
-            # data: URIs are the pack's own charts; keep the log short.
-            self.fetched.append(url if not url.startswith("data:") else url[:40] + "…")
-            return super().fetch(url, headers)
-
-        def _is_allowed(self, url: str) -> bool:
-            from urllib.parse import unquote, urlsplit
-
-            scheme = url.split(":", 1)[0].lower() if ":" in url else ""
-            if scheme == "data":
-                return True
-            if scheme != "file":
-                return False
-            path = Path(unquote(urlsplit(url).path)).resolve()
-            return path == self.allowed_root or self.allowed_root in path.parents
-
-    return RestrictedFetcher
-
-
-def restricted_fetcher(allowed_root: Path | None = None):
-    """A WeasyPrint URL fetcher limited to ``allowed_root`` (default ``reports_dir()``), recording refusals."""
-    return _restricted_fetcher_class()(allowed_root or reports_dir())
-
-
 # --------------------------------------------------------------------------- rendering
 
 
@@ -206,10 +166,44 @@ def render_pack(
     *,
     pdf_path: str | Path | None = None,
     html_path: str | Path | None = None,
+    workers: int | None = None,
     **context_options: Any,
 ) -> RenderedPack:
-    """Build the pack's HTML and write it to ``html_path`` and/or render it to PDF at ``pdf_path``."""
+    """Build the pack's HTML and write it to ``html_path`` and/or render it to PDF at ``pdf_path``.
+
+    ``workers`` processes lay the PDF out in parts (see :mod:`consensus.pack.paginate`);
+    ``None`` uses every core the process may run on once the pack has at least
+    :data:`PARALLEL_MIN_FAMILIES` families, where starting the processes costs
+    less than it saves, and one process below that.  Workers are started with
+    ``spawn``, which imports the calling script again: a script that renders a
+    large pack needs the usual ``if __name__ == "__main__":`` guard.  Should the
+    workers fail to start, the pack is laid out in this process instead.
+    """
+    if workers is not None and int(workers) < 1:
+        raise InvalidSpec(f"workers must be at least 1, got {workers!r}")
     seconds: dict[str, float] = {}
+    n_workers = _worker_count(workers, int(inputs.items["family"].nunique())) if pdf_path is not None else 1
+    # Workers start (and import WeasyPrint) while this process builds the context.
+    pool = _start_pool(n_workers) if n_workers > 1 else None
+    try:
+        return _render(inputs, pool, pdf_path=pdf_path, html_path=html_path, seconds=seconds,
+                       context_options=context_options)
+    finally:
+        if pool is not None:
+            pool.shutdown(wait=True, cancel_futures=True)
+
+
+def _start_pool(n_workers: int):
+    import multiprocessing
+    from concurrent.futures import ProcessPoolExecutor
+
+    pool = ProcessPoolExecutor(max_workers=n_workers, mp_context=multiprocessing.get_context("spawn"))
+    for _ in range(n_workers):
+        pool.submit(warm_up)
+    return pool
+
+
+def _render(inputs, pool, *, pdf_path, html_path, seconds, context_options) -> RenderedPack:
     started = time.perf_counter()
     context = build_pack_context(inputs, **context_options)
     seconds["context"] = time.perf_counter() - started
@@ -225,22 +219,179 @@ def render_pack(
 
     pdf_out, n_pages, fetched, refused = None, None, (), ()
     if pdf_path is not None:
-        import weasyprint
-
-        started = time.perf_counter()
-        print_html = _render_context(context, inline_charts=False)
-        fetcher = restricted_fetcher()
-        document = weasyprint.HTML(
-            string=print_html, base_url=str(reports_dir() / "templates") + "/", url_fetcher=fetcher
-        ).render()
-        seconds["layout"] = time.perf_counter() - started
-        started = time.perf_counter()
         pdf_out = Path(pdf_path)
-        document.write_pdf(pdf_out)
-        seconds["pdf"] = time.perf_counter() - started
-        n_pages = len(document.pages)
-        fetched, refused = tuple(fetcher.fetched), tuple(fetcher.refused)
+        laid_out = False
+        if pool is not None:
+            from concurrent.futures.process import BrokenProcessPool
+
+            try:
+                n_pages, fetched, refused = _render_pdf_in_parts(context, pdf_out, pool=pool, seconds=seconds)
+                laid_out = True
+            except BrokenProcessPool:
+                LOGGER.warning("pack: worker processes failed to start; laying the pack out in one process")
+        if not laid_out:
+            started = time.perf_counter()
+            fetcher = restricted_fetcher()
+            document = lay_out(_render_context(context, inline_charts=False), fetcher=fetcher)
+            seconds["layout"] = time.perf_counter() - started
+            started = time.perf_counter()
+            document.write_pdf(pdf_out)
+            seconds["pdf"] = time.perf_counter() - started
+            n_pages = len(document.pages)
+            fetched, refused = tuple(fetcher.fetched), tuple(fetcher.refused)
     return RenderedPack(
         html=html, pdf_path=pdf_out, html_path=html_out, n_pages=n_pages,
         fetched=fetched, refused=refused, seconds=seconds,
     )
+
+
+# --------------------------------------------------------------------------- laying out in parts
+
+#: Packs with fewer families are laid out in one process: starting workers would cost more than it saves.
+PARALLEL_MIN_FAMILIES = 40
+#: Family-page parts per worker, so a worker that finishes early takes another part.
+PARTS_PER_WORKER = 3
+_MAX_ROUNDS = 4
+
+
+def _worker_count(requested: int | None, n_families: int) -> int:
+    if requested is not None:
+        return int(requested)
+    try:
+        cores = len(os.sched_getaffinity(0))
+    except AttributeError:  # not on Linux
+        cores = os.cpu_count() or 1
+    return cores if n_families >= PARALLEL_MIN_FAMILIES and cores > 1 else 1
+
+
+def _family_runs(n_families: int, workers: int) -> list[tuple[int, int]]:
+    """Consecutive runs of family pages, about ``PARTS_PER_WORKER`` per worker."""
+    if n_families == 0:
+        return []
+    size = max(1, math.ceil(n_families / (workers * PARTS_PER_WORKER)))
+    return [(start, min(start + size, n_families)) for start in range(0, n_families, size)]
+
+
+@dataclass
+class _Part:
+    """One piece of the pack, what it was last laid out with, and what that gave."""
+
+    part: str
+    families: list[dict]
+    path: str
+    laid_out_with: tuple | None = None
+    result: LaidOutPart | None = None
+
+
+def _render_pdf_in_parts(
+    context: dict[str, Any], pdf_out: Path, *, pool, seconds: dict[str, float]
+) -> tuple[int, tuple[str, ...], tuple[str, ...]]:
+    """Lay the PDF out in parts on ``workers`` processes and join them.
+
+    Page numbers are fixed point of the parts' page counts: the front matter and
+    back matter are first laid out only to count their pages and find their
+    anchors (the back in a worker while this process does the front); family
+    parts are assumed one page per family.  Every part is then laid out with the
+    numbering that follows, and any part whose numbering changed after the
+    counts came in (a family that ran onto a second page, front matter whose
+    length moved with its page numbers) is laid out again, until none changes.
+    """
+    import tempfile
+
+    families = context["families"]
+    workers = pool._max_workers
+    started_all = time.perf_counter()
+    with tempfile.TemporaryDirectory(prefix="consensus-pack-") as folder:
+        parts = [_Part("front", [], f"{folder}/front.pdf")]
+        parts += [_Part("families", families[a:b], f"{folder}/families-{a:05d}.pdf")
+                  for a, b in _family_runs(len(families), workers)]
+        parts.append(_Part("back", [], f"{folder}/back.pdf"))
+
+        # Counting pass: the back in a worker, the front here, with placeholder numbers of the widest kind.
+        started = time.perf_counter()
+        placeholder = {"first": 1, "total": 999}
+        widest = _NumberedAnchors(999)
+        back_count = pool.submit(lay_out_part, _part_html(context, parts[-1], placeholder, widest), None)
+        front_doc = lay_out(_part_html(context, parts[0], placeholder, widest), in_parts=True)
+        front_anchors, front_links = describe_part(front_doc)
+        parts[0].result = LaidOutPart(n_pages=len(front_doc.pages), anchors=front_anchors, outside_links=front_links)
+        del front_doc
+        parts[-1].result = back_count.result()
+        for part in parts[1:-1]:
+            part.result = LaidOutPart(
+                n_pages=len(part.families),
+                anchors={f["anchor"]: i for i, f in enumerate(part.families)}, outside_links=(),
+            )
+        seconds["count"] = time.perf_counter() - started
+
+        started = time.perf_counter()
+        for _ in range(_MAX_ROUNDS):
+            firsts, total, numbers = _numbering(parts)
+            stale = []
+            for k, part in enumerate(parts):
+                setup = {"first": firsts[k] + 1, "total": total}
+                wanted = (setup["first"], total, numbers.for_part(part) if part.part == "front" else None)
+                if part.laid_out_with != wanted:
+                    stale.append((part, setup, wanted))
+            if not stale:
+                break
+            # Family parts and the back go to the workers; the front is laid out here meanwhile.
+            futures = [
+                (part, wanted, pool.submit(lay_out_part, _part_html(context, part, setup, numbers), part.path))
+                for part, setup, wanted in stale if part.part != "front"
+            ]
+            for part, setup, wanted in stale:
+                if part.part == "front":
+                    part.result, part.laid_out_with = lay_out_part(_part_html(context, part, setup, numbers),
+                                                                   part.path), wanted
+            for part, wanted, future in futures:
+                part.result, part.laid_out_with = future.result(), wanted
+        else:
+            raise RuntimeError("pack page numbers did not settle; a part keeps changing length")
+        seconds["parts"] = time.perf_counter() - started
+
+        started = time.perf_counter()
+        firsts, total, _ = _numbering(parts)
+        n_pages = join_parts([p.path for p in parts], firsts, [p.result for p in parts], pdf_out)
+        seconds["join"] = time.perf_counter() - started
+    seconds["layout+pdf"] = time.perf_counter() - started_all
+    fetched = tuple(url for p in parts for url in p.result.fetched)
+    refused = tuple(url for p in parts for url in p.result.refused)
+    return n_pages, fetched, refused
+
+
+class _NumberedAnchors(dict):
+    """Page number of every anchor; ``for_part`` is the hashable view a part was laid out with."""
+
+    def __init__(self, default: int | None = None, pages: dict[str, int] | None = None) -> None:
+        super().__init__(pages or {})
+        self.default = default
+
+    def __missing__(self, anchor: str) -> int:
+        if self.default is None:
+            raise KeyError(anchor)
+        return self.default
+
+    def __bool__(self) -> bool:  # the templates test "are page numbers given", not "are there any yet"
+        return True
+
+    def for_part(self, part: _Part) -> tuple:
+        return tuple(sorted(self.items()))
+
+
+def _numbering(parts: list[_Part]) -> tuple[list[int], int, _NumberedAnchors]:
+    """Where each part starts (0-based), the page count, and the 1-based page of every anchor."""
+    firsts, at = [], 0
+    for part in parts:
+        firsts.append(at)
+        at += part.result.n_pages
+    pages = {}
+    for first, part in zip(firsts, parts):
+        for name, page in part.result.anchors.items():
+            pages.setdefault(name, first + page + 1)
+    return firsts, at, _NumberedAnchors(pages=pages)
+
+
+def _part_html(context: dict[str, Any], part: _Part, page_setup: dict[str, int], numbers: dict[str, int]) -> str:
+    return _render_context(context, inline_charts=False, part=part.part, families=part.families,
+                           page_setup=page_setup, page_numbers=numbers)
