@@ -13,9 +13,17 @@ from hypothesis import strategies as st
 
 from consensus.errors import InvalidSpec
 from consensus.pack.charts import SOURCE_STYLES, legend_entries
-from consensus.pack.context import build_pack_context, format_change, format_percent, format_quantity
+from consensus.pack.context import (
+    MONO_ADVANCE_EM,
+    build_pack_context,
+    format_change,
+    format_percent,
+    format_quantity,
+    summarise_series,
+)
 from consensus.pack.inputs import FRAME_COLUMNS, PackInputs, empty_frame, example_pack_inputs
 from consensus.pack.render import build_html, render_pack, restricted_fetcher
+from consensus.pack.textgrid import GridColumn, lay_out_text_grid
 from consensus.periods import horizon_months
 from consensus.resources import reports_dir
 
@@ -309,7 +317,7 @@ def test_exceptions_are_ranked_by_money_at_stake(draft_inputs):
 def test_pack_renders_with_empty_optional_frames(draft_inputs, tmp_path):
     empties = {name: empty_frame(name) for name in
                ("previous", "disagreement", "decisions", "components", "band_coverage", "scorecard_history",
-                "fva", "missing", "submissions", "scorecard", "weights")}
+                "fva", "missing", "submissions", "scorecard", "weights", "series")}
     bare = dataclasses.replace(draft_inputs, method_notes={}, **empties)
     pack = render_pack(bare, pdf_path=tmp_path / "bare.pdf")
     text = " ".join(pdf_pages_text(pack.pdf_path))
@@ -326,3 +334,219 @@ def test_invalid_inputs_raise_typed_errors(draft_inputs):
     with pytest.raises(InvalidSpec):
         build_pack_context(draft_inputs, ts_limit=0)
     assert list(empty_frame("consensus").columns) == list(FRAME_COLUMNS["consensus"])
+
+
+# --------------------------------------------------------------------------- the statistical method per item
+
+
+def test_series_frame_is_optional_for_existing_callers(draft_inputs):
+    fields = {f.name: getattr(draft_inputs, f.name) for f in dataclasses.fields(PackInputs) if f.name != "series"}
+    bare = PackInputs(**fields)
+    assert list(bare.series.columns) == list(FRAME_COLUMNS["series"])
+    assert bare.series.empty
+    assert "Statistical forecast per item" not in build_html(bare)
+
+
+def test_item_method_is_the_most_common_and_wape_is_demand_weighted():
+    # Hand example: three locations of one item; oracle is numpy on the same rows.
+    import pandas as pd
+
+    series = pd.DataFrame({
+        "item": ["A", "A", "A"], "location": ["L1", "L2", "L3"],
+        "pattern": ["smooth", "smooth", "erratic"], "method": ["ses", "croston", "ses"],
+        "holdout_wape": [0.10, 0.40, 0.20], "fallback": ["", "", ""],
+    })
+    items = pd.DataFrame({"item": ["A"], "family": ["F"], "unit_price": [1.0]})
+    months = [f"2026-{m:02d}" for m in range(1, 13)]
+    demand = {"L1": 10.0, "L2": 30.0, "L3": 60.0}
+    actuals = pd.DataFrame([{"item": "A", "location": loc, "period": m, "quantity": q}
+                            for loc, q in demand.items() for m in months])
+    # An older month outside the 12-month weight window must not count.
+    actuals.loc[len(actuals)] = {"item": "A", "location": "L1", "period": "2025-12", "quantity": 10_000.0}
+    out = summarise_series(series, items, actuals, "2026-12").iloc[0]
+    assert (out["method"], out["method_count"], out["n_locations"]) == ("ses", 2, 3)
+    assert (out["pattern"], out["pattern_count"]) == ("smooth", 2)
+    weights = np.array([10, 30, 60]) * 12.0
+    assert out["holdout_wape"] == pytest.approx(np.average([0.10, 0.40, 0.20], weights=weights))
+
+
+@settings(deadline=None, max_examples=25)
+@given(st.lists(st.tuples(st.floats(0.0, 2.0), st.floats(0.0, 500.0), st.sampled_from(["ses", "sba", "holt"])),
+                min_size=1, max_size=6),
+       st.randoms(use_true_random=False))
+def test_item_wape_lies_between_its_locations_and_ignores_row_order(rows, rng):
+    import pandas as pd
+
+    locations = [f"L{i}" for i in range(len(rows))]
+    series = pd.DataFrame({"item": "A", "location": locations, "pattern": "smooth",
+                           "method": [m for _, _, m in rows], "holdout_wape": [w for w, _, _ in rows],
+                           "fallback": ""})
+    actuals = pd.DataFrame({"item": "A", "location": locations, "period": "2026-12",
+                            "quantity": [q for _, q, _ in rows]})
+    items = pd.DataFrame({"item": ["A"], "family": ["F"], "unit_price": [1.0]})
+    out = summarise_series(series, items, actuals, "2026-12").iloc[0]
+    wapes = [w for w, _, _ in rows]
+    assert min(wapes) - 1e-12 <= out["holdout_wape"] <= max(wapes) + 1e-12  # a weighted mean
+    order = list(range(len(rows)))
+    rng.shuffle(order)
+    shuffled = summarise_series(series.iloc[order], items, actuals.iloc[order], "2026-12").iloc[0]
+    assert shuffled["holdout_wape"] == pytest.approx(out["holdout_wape"])
+    assert (shuffled["method"], shuffled["method_count"]) == (out["method"], out["method_count"])
+
+
+def test_family_pages_show_each_items_pattern_method_and_fallback(draft_inputs, draft_pack):
+    pages = pdf_pages_text(draft_pack.pdf_path)
+    series = draft_inputs.series.merge(draft_inputs.items, on="item")
+    fallback = series[series["fallback"] != ""].iloc[0]
+    page = next(t for t in pages if re.search(rf"^Family\s+{re.escape(fallback['family'])}\s*$", t, re.M))
+    assert "Statistical forecast per item" in page
+    for item in series.loc[series["family"] == fallback["family"], "item"].unique():
+        assert item in page
+    assert "†" in page and squash(f"{fallback['item']}at{fallback['location']}") in squash(page)
+    start = max(i for i, t in enumerate(pages) if "How these numbers are made" in t and "Terms" in " ".join(pages[i:]))
+    methods = " ".join(pages[start:])
+    # The class cut-offs of Syntetos, Boylan & Croston (2005), as in consensus.methods.demand_pattern.
+    assert "1.32" in methods and "0.49" in methods and "Syntetos" in methods
+
+
+def test_a_family_of_25_items_with_fallbacks_stays_on_one_page(tmp_path):
+    # The bench's family size (5,000 items over 200 families); every family heading is one page apart.
+    inputs = example_pack_inputs(n_families=2, n_items=50, seed=11)
+    assert (inputs.series["fallback"] != "").sum() >= 2
+    pack = render_pack(inputs, pdf_path=tmp_path / "pack.pdf", workers=1)
+    pages = pdf_pages_text(pack.pdf_path)
+    families = list(inputs.items["family"].unique())
+    at = [i for i, t in enumerate(pages) for f in families if re.search(rf"^Family\s+{re.escape(f)}\s*$", t, re.M)]
+    assert len(at) == 2 and at[1] - at[0] == 1
+    assert inputs.series.groupby(inputs.series["item"].map(inputs.items.set_index("item")["family"]))[
+        "item"].nunique().min() == 25
+    assert all("Statistical forecast per item" in pages[i] for i in at)
+
+
+# --------------------------------------------------------------------------- fixed-width text tables
+
+
+@settings(deadline=None, max_examples=50)
+@given(st.lists(st.tuples(st.text("abcXYZ-1", min_size=1, max_size=9), st.integers(-10**7, 10**7),
+                          st.text("pqr", min_size=1, max_size=5)), min_size=1, max_size=12))
+def test_text_grid_lines_read_back_into_their_columns(rows):
+    import pandas as pd
+
+    values = pd.DataFrame({"a": [r[0] for r in rows], "b": [format_quantity(r[1]) for r in rows],
+                           "c": [r[2] for r in rows]})
+    grid = lay_out_text_grid(values, [GridColumn("A", "left"), GridColumn("B"), GridColumn("C", "left")])
+    assert sum(c["width"] for c in grid.columns) == grid.width
+    # Every field starts and ends where its header cell does, so splitting on blanks gives the values back.
+    edges = np.cumsum([0] + [c["width"] for c in grid.columns])
+    for line, row in zip(grid.lines, values.itertuples(index=False)):
+        padded = line.ljust(grid.width)
+        cells = [padded[edges[k]:edges[k + 1]] for k in range(len(grid.columns))]
+        labelled = [cell for cell, c in zip(cells, grid.columns) if c["label"] is not None]
+        assert [cell.strip() for cell in labelled] == list(row)
+        assert labelled[1].endswith(row[1])  # right-aligned: flush with its column's right edge
+
+
+def test_monospaced_advance_matches_the_font_file():
+    # Source: the hmtx table of the installed DejaVu Sans Mono, read with fontTools.
+    from pathlib import Path
+
+    ttlib = pytest.importorskip("fontTools.ttLib")
+    path = Path("/usr/share/fonts/truetype/dejavu/DejaVuSansMono.ttf")
+    if not path.exists():
+        pytest.skip("DejaVu Sans Mono not installed")
+    font = ttlib.TTFont(str(path))
+    cmap, metrics, units = font.getBestCmap(), font["hmtx"], font["head"].unitsPerEm
+    advances = {metrics[cmap[ord(ch)]][0] for ch in "0123456789,– −+▲▼%†ITM-abc"}
+    assert advances == {round(MONO_ADVANCE_EM * units)}
+
+
+# --------------------------------------------------------------------------- a pack laid out in parts
+
+
+@pytest.fixture(scope="module")
+def parts_inputs() -> PackInputs:
+    return example_pack_inputs(n_families=5, n_items=60, seed=3)
+
+
+@pytest.fixture(scope="module")
+def parts_pack(parts_inputs, tmp_path_factory):
+    out = tmp_path_factory.mktemp("parts")
+    return render_pack(parts_inputs, pdf_path=out / "pack.pdf", workers=2)
+
+
+@pytest.fixture(scope="module")
+def whole_pack(parts_inputs, tmp_path_factory):
+    out = tmp_path_factory.mktemp("whole")
+    return render_pack(parts_inputs, pdf_path=out / "pack.pdf", workers=1)
+
+
+def test_parts_took_the_parallel_path_and_kept_every_page(parts_pack, whole_pack):
+    assert "join" in parts_pack.seconds and "layout" in whole_pack.seconds
+    assert parts_pack.n_pages == whole_pack.n_pages == len(pdf_pages_text(parts_pack.pdf_path))
+    assert parts_pack.refused == ()
+
+
+def test_joined_pages_read_like_the_pack_laid_out_whole(parts_pack, whole_pack):
+    # Oracle: the same inputs laid out in one WeasyPrint document (its own counters and target-counter()).
+    joined, whole = pdf_pages_text(parts_pack.pdf_path), pdf_pages_text(whole_pack.pdf_path)
+    for number, (a, b) in enumerate(zip(joined, whole), start=1):
+        if "Every family, largest plan value first" in b:
+            continue  # that table is printed as text lines in parts; its figures are checked below
+        assert squash(a) == squash(b), f"page {number} differs"
+
+
+def test_joined_page_labels_run_on_without_a_gap(parts_pack):
+    pages = pdf_pages_text(parts_pack.pdf_path)
+    n = len(pages)
+    for number, text in enumerate(pages, start=1):
+        if number == 1:
+            continue  # the cover has no running footer text beyond the page label
+        assert f"Page {number} of {n}" in text, number
+    assert f"Page 1 of {n}" in pages[0]
+
+
+def test_joined_contents_point_at_the_real_family_pages(parts_inputs, parts_pack):
+    pages = pdf_pages_text(parts_pack.pdf_path)
+    contents = next(t for t in pages if re.search(r"^Contents$", t, re.M))
+    for family in parts_inputs.items["family"].unique():
+        listed = re.search(rf"{re.escape(family)}[ .]*?(\d+)\s*$", contents, re.M)
+        assert listed, family
+        page = pages[int(listed.group(1)) - 1]
+        assert re.search(rf"^Family\s+{re.escape(family)}\s*$", page, re.M), family
+    by_family = next(t for t in pages if "Every family, largest plan value first" in t)
+    for family in parts_inputs.items["family"].unique():
+        row = re.search(rf"^{re.escape(family)}\s.*?(\d+)\s*$", by_family, re.M)
+        assert row and re.search(rf"^Family\s+{re.escape(family)}\s*$", pages[int(row.group(1)) - 1], re.M)
+
+
+def test_joined_links_and_bookmarks_resolve(parts_inputs, parts_pack):
+    reader = pypdf.PdfReader(str(parts_pack.pdf_path))
+    named = reader.named_destinations
+    targets = []
+    for page in reader.pages:
+        for ref in page.get("/Annots", []) or []:
+            annotation = ref.get_object()
+            if annotation.get("/Subtype") != "/Link" or "/Dest" not in annotation:
+                continue
+            dest = annotation["/Dest"]
+            if isinstance(dest, str):
+                assert dest in named, dest
+                targets.append(reader.get_destination_page_number(named[dest]))
+            else:
+                targets.append(reader.get_page_number(dest[0].get_object()))
+    texts = pdf_pages_text(parts_pack.pdf_path)
+    family_pages = {
+        i for i, t in enumerate(texts) for family in parts_inputs.items["family"].unique()
+        if re.search(rf"^Family\s+{re.escape(family)}\s*$", t, re.M)
+    }
+    assert family_pages <= set(targets)  # every family page is reachable from the contents
+    outline = reader.outline
+    titles = []
+
+    def walk(items):
+        for item in items:
+            walk(item) if isinstance(item, list) else titles.append(item["/Title"])
+
+    walk(outline)
+    for family in parts_inputs.items["family"].unique():
+        assert f"Family {family}" in titles
