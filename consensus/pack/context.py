@@ -756,6 +756,8 @@ def _family_pages(
             "weights": weight_rows,
             "weights_segment": segment,
             "weights_are_own": segment == family,
+            # Stores often give every source of a segment the same reason; print it once under the table.
+            "weights_why_shared": _shared_reason(weight_rows),
             "grid": {
                 "columns": [
                     {**c, "label": c["label"] + "*"} if c.get("source") in partly_covered else c
@@ -774,6 +776,12 @@ def _family_pages(
     return pages
 
 
+def _shared_reason(weight_rows: list[dict]) -> str | None:
+    """The weights' "why" text when every source has the same one (and there is more than one source)."""
+    reasons = {f"{w['basis']}: {w['note']}" if w.get("note") else str(w["basis"]) for w in weight_rows}
+    return reasons.pop() if len(weight_rows) > 1 and len(reasons) == 1 else None
+
+
 def _quantity_text(values) -> pd.Series:
     return pd.Series(values).map(format_quantity)
 
@@ -789,7 +797,7 @@ def _month_grid(plan_cube: np.ndarray, plan_cols: list[str], plan_months: list[s
 
     def band(low: str, high: str) -> pd.Series:
         lo, hi = _quantity_text(flat[low]), _quantity_text(flat[high])
-        return lo.str.rjust(int(lo.str.len().max() or 0)) + " – " + hi.str.rjust(int(hi.str.len().max() or 0))
+        return lo.str.rjust(int(lo.str.len().max() or 0)) + "–" + hi.str.rjust(int(hi.str.len().max() or 0))
 
     values = pd.DataFrame({
         "month": np.tile(np.asarray(plan_months, dtype=object), n_families),
