@@ -1,8 +1,12 @@
 """Render the meeting pack to HTML and PDF from the bundled jinja2 templates.
 
-The HTML string is built once and is the very document WeasyPrint lays out, so
-screen and print always agree.  Its stylesheet is inlined, so the HTML file
-stands alone.  WeasyPrint gets a fetcher that serves only files inside
+Screen HTML and print come from the same templates and context, so they show
+the same numbers; print differs only in form: charts ride in data: images, and
+the tables repeated on every family page (and the long by-family table of a
+pack laid out in parts) are fixed-width text lines, which WeasyPrint lays out
+far faster than cells (see :mod:`consensus.pack.textgrid`).  The stylesheet is
+inlined, so the HTML file stands alone.  Long packs are laid out in parts on
+several processes (see :mod:`consensus.pack.paginate`).  WeasyPrint gets a fetcher that serves only files inside
 ``reports_dir()`` (and ``data:`` URIs) and records everything it refused: input
 text is escaped, so nothing a user typed can make the renderer read a file or
 reach the network.
