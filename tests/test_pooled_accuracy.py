@@ -59,3 +59,18 @@ def test_wape_never_rises_from_item_to_family_to_total(seed):
 def test_unknown_level_is_refused():
     with pytest.raises(InvalidSpec):
         pooled_accuracy(_errors(1), level="galaxy", items=ITEMS, locations=LOCATIONS)
+
+
+def test_tracking_signal_is_the_mean_of_each_groups_own_signal():
+    # reference: tracking_signal_series applied to each item × location series by hand (operations-management
+    # definition, common practice), then averaged
+    from consensus.methods.accuracy import tracking_signal_series
+
+    e = _errors(11)
+    by_hand = [tracking_signal_series(g.sort_values("period")["error"].to_numpy())[-1]
+               for _, g in e.groupby(["item", "location"])]
+    row = pooled_accuracy(e, level="item", items=ITEMS, locations=LOCATIONS).iloc[0]
+    assert row["tracking_signal"] == pytest.approx(np.mean(by_hand))
+    total = pooled_accuracy(e, level="total", items=ITEMS, locations=LOCATIONS).iloc[0]
+    summed = e.groupby("period")["error"].sum().sort_index().to_numpy()
+    assert total["tracking_signal"] == pytest.approx(tracking_signal_series(summed)[-1])

@@ -395,6 +395,8 @@ def pooled_accuracy(errors: pd.DataFrame, *, level: str, items: pd.DataFrame,
 
     Item level pools every item × location cell; family × region (the grain
     sales submit at) and family first sum each group; total sums everything.
+    The tracking signal is each group's own (see :func:`tracking_signal_series`),
+    averaged over the level's groups.
     Reading them side by side shows how much better groups are forecast than
     single items, and judges each source at the grain it forecast.
     """
@@ -404,14 +406,33 @@ def pooled_accuracy(errors: pd.DataFrame, *, level: str, items: pd.DataFrame,
     e = errors.merge(items[["item", "family"]], on="item").merge(locations[["location", "region"]], on="location")
     summed = (e.groupby(["source", "lag_bucket", "cycle", "period", *keys], as_index=False)[["forecast", "actual"]]
               .sum().sort_values(["period", "cycle"]))
+    signals = _group_tracking_signals(summed, ["source", "lag_bucket", *keys])
+    mean_signal = signals.groupby(["source", "lag_bucket"])["tracking_signal"].mean()
     rows = []
     for (source, bucket), g in summed.groupby(["source", "lag_bucket"], sort=True):
         a, f = g["actual"].to_numpy(float), g["forecast"].to_numpy(float)
         row = {"source": source, "lag_bucket": bucket, "n": len(g),
                "n_zero_actual": int(zero_actual_count(a, f))}
         row.update({name: measure(a, f) for name, measure in MEASURES.items()})
-        row["tracking_signal"] = tracking_signal(a, f)
+        row["tracking_signal"] = float(mean_signal.loc[(source, bucket)])
         row["ts_flag"] = bool(abs(row["tracking_signal"]) > 4)
         row["mase"] = np.nan
         rows.append(row)
     return pd.DataFrame(rows)
+
+
+def _group_tracking_signals(summed: pd.DataFrame, keys: list[str]) -> pd.DataFrame:
+    """Each group's latest tracking signal, Σe / MAD over its own errors in period order (vectorised).
+
+    A pooled row reports the mean of its groups' signals: one running sum over
+    thousands of item series would grow with their number and mean nothing.
+    """
+    ordered = summed.sort_values([*keys, "period", "cycle"], kind="mergesort")
+    error = ordered["actual"] - ordered["forecast"]
+    grouped = pd.DataFrame({"e": error, "abs": error.abs()}).groupby([ordered[k] for k in keys], sort=False)
+    running = pd.DataFrame({"sum": grouped["e"].cumsum(), "abs": grouped["abs"].cumsum(),
+                            "n": grouped.cumcount() + 1})
+    last = running.groupby([ordered[k] for k in keys], sort=False).tail(1)
+    mad_so_far = last["abs"] / last["n"]
+    signal = np.where(mad_so_far > 0, last["sum"] / mad_so_far.where(mad_so_far > 0, 1.0), 0.0)
+    return ordered.loc[last.index, keys].assign(tracking_signal=signal)
