@@ -243,25 +243,17 @@ def run_cycle(cycle_name: str, *, url=None, spec: RunSpec | None = None,
             progress("error bands")
         band_errors = _band_errors(errors)
         if band_errors.empty:  # a store's very first cycle: say so rather than invent a band
-            table = table.assign(**{c: np.nan for c in _band_columns(spec.band_levels)},
+            table = table.assign(**{c: np.nan for c in intervals.band_columns(spec.band_levels)},
                                  band_method="no error history yet (run 'consensus backcast')")
         else:
             banded = intervals.empirical_bands(table, band_errors, levels=spec.band_levels)
-            table = table.merge(banded[["item", "location", "period", *_band_columns(spec.band_levels),
+            table = table.merge(banded[["item", "location", "period", *intervals.band_columns(spec.band_levels),
                                         "band_method"]], on=["item", "location", "period"], how="left")
         table, applied = decisions.apply_decisions(session, cycle.name, table, items=items, locations=locations)
         run = _store_run(session, cycle, spec=spec, table=table, combined=combined, gathered=gathered,
                          applied=applied)
         return RunSummary(run.id, cycle.name, len(table), sources, float(table["consensus"].sum()),
                           int(table["flagged"].sum()), gathered["warnings"])
-
-
-def _band_columns(levels) -> list[str]:
-    cols = []
-    for level in levels:
-        pct = int(round(level * 100))
-        cols += [f"lower_{pct}", f"upper_{pct}"]
-    return cols
 
 
 def _band_errors(errors: pd.DataFrame) -> pd.DataFrame:

@@ -47,7 +47,7 @@ def template_frame(session, cycle: Cycle, *, product: str = "item", place: str =
         lines = lines.merge(items[["item", "family"]], on="item").merge(locations[["location", "region"]],
                                                                          on="location")
         ref = lines.groupby([product, place, "period"], as_index=False)["consensus"].sum()
-        frame = frame.merge(ref.rename(columns={"consensus": f"last_consensus"}), on=[product, place, "period"],
+        frame = frame.merge(ref.rename(columns={"consensus": "last_consensus"}), on=[product, place, "period"],
                             how="left")
         frame["last_consensus"] = frame["last_consensus"].round(0)
     else:
