@@ -257,17 +257,15 @@ def scorecard(ctx: typer.Context, cycle: str = CycleOpt,
 
     Example: consensus scorecard --cycle 2027-03 --level family --format csv
     """
-    from consensus.workflow.scorecard import marketing_value_added
-    from consensus.workflow.scorecard import scorecard as compute
+    from consensus.workflow.scorecard import scorecard_report
     if format not in ("table", "csv"):
         _fail(ConsensusError("--format must be table or csv"))
     try:
-        table = compute(cycle, level=level, url=_url(ctx))
-        uplift = marketing_value_added(cycle, url=_url(ctx)) if format == "table" else None
+        table, uplift = scorecard_report(cycle, level=level, url=_url(ctx))
     except ConsensusError as e:
         _fail(e)
     _print_frame(table, f"Accuracy known at cycle {cycle}, by {level} (MAPE, WAPE, bias_pct in %)", fmt=format)
-    if uplift is not None and not uplift.empty:
+    if format == "table" and not uplift.empty:
         _print_frame(uplift, "Marketing events: statistical forecast with and without the uplifts")
 
 

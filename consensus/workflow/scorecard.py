@@ -34,9 +34,10 @@ def load_error_history(cycle: str, *, url=None) -> ErrorHistory:
     return ErrorHistory(errors, items, locations, actuals)
 
 
-def scorecard(cycle: str, *, level: str = "family", window: int | None = None, url=None) -> pd.DataFrame:
+def scorecard(cycle: str, *, level: str = "family", window: int | None = None, url=None,
+              history: ErrorHistory | None = None) -> pd.DataFrame:
     """Accuracy of each source (and the consensus and naive references) known at ``cycle``, by lag bucket."""
-    history = load_error_history(cycle, url=url)
+    history = history or load_error_history(cycle, url=url)
     errors = history.errors
     if window is not None:
         errors = errors[errors["cycle"] >= periods.shift_month(cycle, -window)]
@@ -46,10 +47,17 @@ def scorecard(cycle: str, *, level: str = "family", window: int | None = None, u
                                    seasonal_scale=scale)
 
 
-def marketing_value_added(cycle: str, *, url=None) -> pd.DataFrame:
+def marketing_value_added(cycle: str, *, url=None, history: ErrorHistory | None = None) -> pd.DataFrame:
     """Did marketing's event uplifts make the statistical forecast better?  By lag bucket, on the cells they touched."""
-    errors = load_error_history(cycle, url=url).errors
+    errors = (history or load_error_history(cycle, url=url)).errors
     without = errors[errors["source"] == "statistical_base"]
     if without.empty:
         return pd.DataFrame()
     return events.uplift_value_added(errors[errors["source"] == "statistical"], without)
+
+
+def scorecard_report(cycle: str, *, level: str = "family", url=None) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """The scorecard and marketing's value added, from one pass over the cycle's error history."""
+    history = load_error_history(cycle, url=url)
+    return (scorecard(cycle, level=level, history=history),
+            marketing_value_added(cycle, history=history))
