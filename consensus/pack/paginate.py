@@ -180,6 +180,20 @@ def _anchor_pages(firsts: list[int], parts: list[LaidOutPart]) -> dict[str, int]
     return where
 
 
+def _cross_part_links(firsts, parts, where: dict[str, int]) -> list[tuple[int, int, tuple]]:
+    """Links from one part to an anchor in another, as (page, target page, rect) in the joined PDF."""
+    links, unresolved = [], []
+    for first, part in zip(firsts, parts):
+        for page, target, rect in part.outside_links:
+            if target in where:
+                links.append((first + page, where[target], rect))
+            else:
+                unresolved.append(target)
+    if unresolved:
+        LOGGER.error("pack: %d link(s) to missing anchors, e.g. #%s", len(unresolved), unresolved[0])
+    return links
+
+
 def _join_with_pikepdf(paths, firsts, parts, out_path) -> int:
     import pikepdf
     from pikepdf import Array, Dictionary, Name, NameTree
@@ -206,22 +220,15 @@ def _join_with_pikepdf(paths, firsts, parts, out_path) -> int:
     for name, (page, rest) in names.items():
         tree[name] = Array([out.pages[page].obj, *rest])
     out.Root.Names = Dictionary(Dests=tree.obj)
-    unresolved = []
-    for first, part in zip(firsts, parts):
-        for page, target, rect in part.outside_links:
-            if target not in where:
-                unresolved.append(target)
-                continue
-            annotation = out.make_indirect(Dictionary(
-                Type=Name.Annot, Subtype=Name.Link, Rect=Array(list(rect)), Border=Array([0, 0, 0]),
-                Dest=Array([out.pages[where[target]].obj, Name.Fit]),
-            ))
-            page_obj = out.pages[first + page].obj
-            if "/Annots" not in page_obj:
-                page_obj.Annots = Array()
-            page_obj.Annots.append(annotation)
-    if unresolved:
-        LOGGER.error("pack: %d link(s) to missing anchors, e.g. #%s", len(unresolved), unresolved[0])
+    for page, target_page, rect in _cross_part_links(firsts, parts, where):
+        annotation = out.make_indirect(Dictionary(
+            Type=Name.Annot, Subtype=Name.Link, Rect=Array(list(rect)), Border=Array([0, 0, 0]),
+            Dest=Array([out.pages[target_page].obj, Name.Fit]),
+        ))
+        page_obj = out.pages[page].obj
+        if "/Annots" not in page_obj:
+            page_obj.Annots = Array()
+        page_obj.Annots.append(annotation)
     with out.open_outline() as outline:
         first_items = outline_parts[0] if outline_parts else []
         later = [item for items in outline_parts[1:] for item in items]
@@ -264,16 +271,8 @@ def _join_with_pypdf(paths, firsts, parts, out_path) -> int:
     metadata = PdfReader(paths[0]).metadata if paths else None
     if metadata:
         writer.add_metadata({key: str(value) for key, value in metadata.items()})
-    unresolved = []
-    for first, part in zip(firsts, parts):
-        for page, target, rect in part.outside_links:
-            if target not in where:
-                unresolved.append(target)
-                continue
-            writer.add_annotation(page_number=first + page,
-                                  annotation=Link(rect=rect, target_page_index=where[target]))
-    if unresolved:
-        LOGGER.error("pack: %d link(s) to missing anchors, e.g. #%s", len(unresolved), unresolved[0])
+    for page, target_page, rect in _cross_part_links(firsts, parts, where):
+        writer.add_annotation(page_number=page, annotation=Link(rect=rect, target_page_index=target_page))
     with open(out_path, "wb") as handle:
         writer.write(handle)
     return len(writer.pages)
