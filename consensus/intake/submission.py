@@ -171,6 +171,8 @@ def submit_file(path: Path | str, *, url=None, source: str | None = None, cycle:
                            cycle=cycle) as intake:
         raw = reader.read_table(path)
         intake.file_format = dict(raw.file_format)
+        # submit expects a forecast or events file, so its own checks name a missing column precisely;
+        # only files that look like order lines or master data are sent to the general kind detection
         intake.kind = "events" if "event" in raw.frame.columns else "forecast"
         if "date" in raw.frame.columns or {"family", "unit_price"} <= set(raw.frame.columns):
             intake.kind = checks.detect_file_kind(raw)
