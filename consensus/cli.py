@@ -40,12 +40,12 @@ def _url(ctx: typer.Context) -> str | None:
 
 def _fail(error: Exception) -> None:
     if isinstance(error, InputRejected):
-        err.print(error.summary(limit=50), markup=False, highlight=False)
+        err.print(error.summary(limit=50), markup=False, highlight=False, soft_wrap=True)
         if error.submission_id:
             err.print(f"The file is kept as rejected submission #{error.submission_id}; nothing else changed.",
                       markup=False)
         raise typer.Exit(2)
-    err.print(f"error: {error}", markup=False, highlight=False)
+    err.print(f"error: {error}", markup=False, highlight=False, soft_wrap=True)
     raise typer.Exit(1)
 
 
@@ -140,7 +140,7 @@ def submit(ctx: typer.Context,
             failed += 1
             if len(files) == 1:
                 _fail(e)
-            err.print(e.summary(limit=5), markup=False, highlight=False)
+            err.print(e.summary(limit=5), markup=False, highlight=False, soft_wrap=True)
         except ConsensusError as e:
             _fail(e)
     if failed:
