@@ -21,6 +21,14 @@ class CycleStateError(ConsensusError):
     """The cycle is not in a state that allows the step (e.g. publishing twice)."""
 
 
+class StoreError(ConsensusError):
+    """The store cannot be opened or used: a bad URL, an unreachable server, a schema from another release."""
+
+
+class VerifyFailed(ConsensusError):
+    """A published plan no longer matches what its stored inputs give, or a stored record was changed."""
+
+
 @dataclass(frozen=True)
 class Problem:
     """One thing wrong with one cell of an input file, as the user sees it."""

@@ -1,42 +1,59 @@
-"""Bulk movement between tables and DataFrames: many rows in one statement, never row by row."""
+"""Reading the store as DataFrames: master data, order history and submissions, as in force at a journal position.
+
+Master data and order history are not kept as rows that files overwrite: each
+accepted file keeps its checked lines (a packed frame), and what is in force
+is worked out from them by the one rule in :mod:`consensus.methods.in_force`
+— so the store can say what was in force when any run was made, and a run
+made later from the same files gives the same numbers.
+"""
 
 from __future__ import annotations
 
-from collections.abc import Iterable
-
 import pandas as pd
-from sqlalchemy import delete, insert, select
+from sqlalchemy import insert, select
 from sqlmodel import Session, SQLModel
 
-from consensus.store.models import (
-    Actual,
-    BomLine,
-    EventLine,
-    ForecastLine,
-    Item,
-    Location,
-    SubmissionCycle,
-)
+from consensus.errors import StoreError
+from consensus.methods.in_force import in_force
+from consensus.store import blobs
+from consensus.store.models import Submission, SubmissionCycle
 
 _CHUNK = 20_000
 
+#: Columns of each master kind's checked lines, and the key a newer file replaces by.
+MASTER_COLUMNS = {
+    "items": (["item", "family", "unit_price", "description"], ["item"]),
+    "locations": (["location", "region", "description"], ["location"]),
+    "bom": (["parent", "component", "qty_per", "lead_time_months"], ["parent", "component"]),
+}
+ACTUAL_COLUMNS = ["item", "location", "period", "quantity"]
+SUBMISSION_COLUMNS = ["id", "seq", "kind", "source", "cycle", "revision", "scope", "scope_detail", "replace",
+                      "filename", "sha256", "lines_sha256", "submitted_by", "submitted_at", "status", "reinstates",
+                      "late", "row_count", "grain", "months"]
 
-def _records(frame: pd.DataFrame, columns: Iterable[str]) -> list[dict]:
+
+def _records(frame: pd.DataFrame, columns) -> list[dict]:
     """Plain-Python records with NaN/NA turned into None (drivers want None and Python scalars)."""
-    sub = frame.loc[:, list(columns)].astype(object)  # object arrays hold Python floats, ints and bools
+    sub = frame.loc[:, list(columns)].astype(object)
     sub = sub.where(pd.notna(sub), None)
     return sub.to_dict("records")
 
 
 def write_frame(session: Session, model: type[SQLModel], frame: pd.DataFrame) -> int:
-    """Insert every row of ``frame`` into ``model``'s table (columns the table lacks are ignored)."""
+    """Insert every row of ``frame`` into ``model``'s table, one executemany per chunk.
+
+    Every column of the frame must be a column of the table: a column that
+    would be silently dropped is an error, not a loss.
+    """
     if frame.empty:
         return 0
     table = model.__table__
-    columns = [c.name for c in table.columns if c.name in frame.columns]
-    records = _records(frame, columns)
+    unknown = [c for c in frame.columns if c not in table.columns]
+    if unknown:
+        raise StoreError(f"table {table.name} has no column(s) {unknown}; nothing was written")
+    records = _records(frame, frame.columns)
     for start in range(0, len(records), _CHUNK):
-        session.execute(insert(table), records[start : start + _CHUNK])
+        session.execute(insert(table), records[start: start + _CHUNK])
     return len(records)
 
 
@@ -55,79 +72,74 @@ def table_frame(session: Session, model: type[SQLModel], columns: list[str]) -> 
     return read_frame(session, select(*[table.c[c] for c in columns]), columns)
 
 
-def load_items(session: Session) -> pd.DataFrame:
-    """Items master as [item, family, unit_price, description]."""
-    frame = table_frame(session, Item, ["item", "family", "unit_price", "description"])
-    frame["unit_price"] = pd.to_numeric(frame["unit_price"], errors="coerce")
-    return frame.sort_values("item", ignore_index=True)
-
-
-def load_locations(session: Session) -> pd.DataFrame:
-    """Locations master as [location, region, description]."""
-    return table_frame(session, Location, ["location", "region", "description"]).sort_values(
-        "location", ignore_index=True
-    )
-
-
-def load_bom(session: Session) -> pd.DataFrame:
-    """Bill of material as [parent, component, qty_per, lead_time_months]."""
-    frame = table_frame(session, BomLine, ["parent", "component", "qty_per", "lead_time_months"])
-    return frame.sort_values(["parent", "component"], ignore_index=True)
-
-
-def load_actuals(session: Session, *, through: str | None = None) -> pd.DataFrame:
-    """Monthly actual demand [item, location, period, quantity], optionally only up to ``through``."""
-    table = Actual.__table__
-    statement = select(table.c.item, table.c.location, table.c.period, table.c.quantity)
-    if through is not None:
-        statement = statement.where(table.c.period <= through)
-    frame = read_frame(session, statement, ["item", "location", "period", "quantity"])
-    frame["quantity"] = pd.to_numeric(frame["quantity"]).astype(float)
-    return frame.sort_values(["item", "location", "period"], ignore_index=True)
-
-
-def replace_actuals(session: Session, monthly: pd.DataFrame, submission_id: int | None) -> int:
-    """Replace the stored actuals of every (item, location, period) present in ``monthly``."""
-    table = Actual.__table__
-    for (period, location), group in monthly.groupby(["period", "location"], sort=True):
-        session.execute(
-            delete(table)
-            .where(table.c.period == period)
-            .where(table.c.location == location)
-            .where(table.c.item.in_(group["item"].unique().tolist()))
-        )
-    frame = monthly.assign(submission_id=submission_id)
-    return write_frame(session, Actual, frame)
-
-
-def _lines_in_force(session: Session, model: type[SQLModel], columns: list[str], numeric: tuple[str, ...], *,
-                    cycles: list[str] | None, sources: list[str] | None = None) -> pd.DataFrame:
-    """Rows of ``model`` whose submission is still in force for their cycle (joined through SubmissionCycle)."""
-    lines, sc = model.__table__, SubmissionCycle.__table__
-    statement = (select(*[lines.c[c] for c in columns])
-                 .join(sc, (sc.c.submission_id == lines.c.submission_id) & (sc.c.cycle == lines.c.cycle))
-                 .where(sc.c.status == "accepted"))
+def submissions(session: Session, *, kinds, cycles=None, through: int | None = None,
+                accepted: bool = True) -> pd.DataFrame:
+    """Submission records (newest last), optionally only those written up to journal position ``through``."""
+    t = Submission.__table__
+    statement = select(*[t.c[c] for c in SUBMISSION_COLUMNS]).where(t.c.kind.in_(list(kinds)))
+    if accepted:
+        statement = statement.where(t.c.status == "accepted")
     if cycles is not None:
-        statement = statement.where(lines.c.cycle.in_(cycles))
-    if sources is not None:
-        statement = statement.where(lines.c.source.in_(sources))
-    frame = read_frame(session, statement, columns)
-    for col in numeric:
-        frame[col] = pd.to_numeric(frame[col], errors="coerce").astype(float)
-    return frame.sort_values(["cycle", *(["source"] if "source" in columns else []), "submission_id", "row"],
-                             ignore_index=True)
+        link = SubmissionCycle.__table__
+        statement = statement.where(t.c.id.in_(select(link.c.submission_id).where(link.c.cycle.in_(list(cycles)))))
+    if through is not None:
+        statement = statement.where(t.c.seq <= through)
+    frame = read_frame(session, statement.order_by(t.c.seq, t.c.id), SUBMISSION_COLUMNS)
+    return frame.reset_index(drop=True)
 
 
-def active_forecast_lines(session: Session, *, cycles: list[str] | None = None,
-                          sources: list[str] | None = None) -> pd.DataFrame:
-    """Forecast lines of the submissions still in force for their (source, cycle, scope)."""
-    columns = ["submission_id", "cycle", "source", "row", "item", "family", "location", "region",
-               "period", "week", "quantity", "value", "note"]
-    return _lines_in_force(session, ForecastLine, columns, ("quantity", "value"), cycles=cycles, sources=sources)
+def submission_lines(session: Session, subs: pd.DataFrame) -> pd.DataFrame:
+    """The checked lines of the given submissions, each row tagged with its submission's ``seq`` and id."""
+    shas = [s for s in subs["lines_sha256"].dropna().unique()]
+    found = blobs.get_frames(session, shas)
+    parts = [found[row.lines_sha256].assign(seq=int(row.seq), submission_id=int(row.id))
+             for row in subs.itertuples(index=False) if isinstance(row.lines_sha256, str)]
+    if not parts:
+        return pd.DataFrame({"seq": pd.Series(dtype=int), "submission_id": pd.Series(dtype=int)})
+    return pd.concat(parts, ignore_index=True)
 
 
-def active_event_lines(session: Session, *, cycles: list[str] | None = None) -> pd.DataFrame:
-    """Marketing event rows of the submissions still in force."""
-    columns = ["submission_id", "cycle", "row", "event", "item", "family", "location", "region",
-               "start", "end", "uplift_pct", "units", "note"]
-    return _lines_in_force(session, EventLine, columns, ("uplift_pct", "units"), cycles=cycles)
+def _master(session: Session, kind: str, through: int | None) -> pd.DataFrame:
+    columns, keys = MASTER_COLUMNS[kind]
+    subs = submissions(session, kinds=[kind], through=through)
+    lines = submission_lines(session, subs)
+    if lines.empty:
+        return pd.DataFrame({c: pd.Series(dtype=float if c in ("unit_price", "qty_per") else
+                                           int if c == "lead_time_months" else object) for c in columns})
+    whole = subs.loc[subs["replace"].astype(bool), "seq"]
+    kept = in_force(lines, keys=keys, whole=whole)
+    return kept[columns].sort_values(keys, kind="mergesort", ignore_index=True)
+
+
+def load_items(session: Session, *, through: int | None = None) -> pd.DataFrame:
+    """Items master in force as [item, family, unit_price, description]."""
+    frame = _master(session, "items", through)
+    frame["unit_price"] = pd.to_numeric(frame["unit_price"], errors="coerce")
+    return frame
+
+
+def load_locations(session: Session, *, through: int | None = None) -> pd.DataFrame:
+    """Locations master in force as [location, region, description]."""
+    return _master(session, "locations", through)
+
+
+def load_bom(session: Session, *, through: int | None = None) -> pd.DataFrame:
+    """Bill of material in force as [parent, component, qty_per, lead_time_months]."""
+    frame = _master(session, "bom", through)
+    frame["qty_per"] = pd.to_numeric(frame["qty_per"]).astype(float)
+    frame["lead_time_months"] = pd.to_numeric(frame["lead_time_months"]).astype(int)
+    return frame
+
+
+def load_actuals(session: Session, *, through: int | None = None, period_through: str | None = None) -> pd.DataFrame:
+    """Monthly customer orders in force [item, location, period, quantity] (newest file wins per key)."""
+    subs = submissions(session, kinds=["actuals"], through=through)
+    lines = submission_lines(session, subs)
+    if lines.empty:
+        return pd.DataFrame({"item": pd.Series(dtype=object), "location": pd.Series(dtype=object),
+                             "period": pd.Series(dtype=object), "quantity": pd.Series(dtype=float)})
+    kept = in_force(lines, keys=["item", "location", "period"])[ACTUAL_COLUMNS]
+    if period_through is not None:
+        kept = kept[kept["period"] <= period_through]
+    kept = kept.assign(quantity=pd.to_numeric(kept["quantity"]).astype(float))
+    return kept.sort_values(["item", "location", "period"], kind="mergesort", ignore_index=True)

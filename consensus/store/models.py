@@ -1,8 +1,23 @@
-"""The tables.  Singular nouns; one row means one thing a planner could point at."""
+"""The tables.  Singular nouns; one row means one thing a planner could point at.
+
+The store keeps what was received, what was decided and what was computed:
+
+* every file handed to the tool (:class:`Submission`), its bytes and its checked
+  lines as content-addressed :class:`Blob` rows, accepted or rejected;
+* the cycles (:class:`Cycle`) and each revision of a cycle (:class:`CycleRevision`);
+* the meeting's decisions (:class:`Decision`), withdrawals included;
+* the runs (:class:`ConsensusRun`) with their specification and their result as
+  packed frames in :class:`Blob` rows;
+* a :class:`JournalEntry` for each of those records, in the order they were
+  written, with a hash chain so an edit made outside the tool shows.
+
+Which submission is in force is never stored: it follows from the journal
+order (:mod:`consensus.methods.in_force`), so it cannot drift from the rule.
+"""
 
 from __future__ import annotations
 
-from datetime import datetime, timezone
+from datetime import date, datetime, timezone
 
 from sqlalchemy import JSON, Column, Index, LargeBinary, UniqueConstraint
 from sqlmodel import Field, SQLModel
@@ -12,233 +27,91 @@ def utcnow() -> datetime:
     return datetime.now(timezone.utc).replace(microsecond=0)
 
 
-# --- master data -------------------------------------------------------------------------
+class Blob(SQLModel, table=True):
+    """Bytes stored once by their sha256: a received file (deflated) or a packed frame."""
 
-class Item(SQLModel, table=True):
-    """A sellable item (independent demand), grouped into a family."""
+    sha256: str = Field(primary_key=True)
+    encoding: str  # "zlib" (a file's bytes, deflated) | "frame" (consensus.store.columnar)
+    size: int  # bytes before encoding
+    content: bytes = Field(sa_column=Column(LargeBinary, nullable=False))
 
-    item: str = Field(primary_key=True)
-    family: str = Field(index=True)
-    unit_price: float | None = None
-    description: str = ""
-
-
-class Location(SQLModel, table=True):
-    """A distribution center, grouped into a region."""
-
-    location: str = Field(primary_key=True)
-    region: str = Field(index=True)
-    description: str = ""
-
-
-class BomLine(SQLModel, table=True):
-    """One parent → component link of the bill of material."""
-
-    __table_args__ = (UniqueConstraint("parent", "component"),)
-    id: int | None = Field(default=None, primary_key=True)
-    parent: str = Field(index=True)
-    component: str
-    qty_per: float
-    lead_time_months: int = 0
-
-
-# --- cycles and submissions ----------------------------------------------------------------
 
 class Cycle(SQLModel, table=True):
     """A monthly planning cycle: order history known through ``name``; plans the next ``horizon`` months."""
 
     name: str = Field(primary_key=True)  # "YYYY-MM"
     horizon: int = 18
-    status: str = "open"  # open | published
+    due: date | None = None  # when submissions are due
+    revision: int = 1  # the revision now open or last published
+    status: str = "open"  # open | published (of the current revision)
     opened_at: datetime = Field(default_factory=utcnow)
+    opened_by: str = ""
+    opened_seq: int | None = None  # journal position of the opening
+    allow_missing_history: bool = False
+
+
+class CycleRevision(SQLModel, table=True):
+    """One revision of a cycle: opened (or reopened, with a reason), then perhaps published."""
+
+    cycle: str = Field(foreign_key="cycle.name", primary_key=True)
+    revision: int = Field(primary_key=True)
+    opened_at: datetime = Field(default_factory=utcnow)
+    opened_by: str = ""
+    reason: str = ""
     published_at: datetime | None = None
+    published_by: str | None = None
     published_run_id: int | None = None
+    published_seq: int | None = None  # journal position of the publication
 
 
 class Submission(SQLModel, table=True):
-    """Every file handed to the tool, accepted or not, kept with its bytes and its reasons."""
+    """Every file handed to the tool, accepted or not, kept with its bytes, its checked lines and its reasons.
+
+    ``id`` grows in the order submissions were accepted: the newest submission
+    whose scope covers a cell is the one in force there.  ``scope`` is the
+    scope in words; ``scope_detail`` its closed form: {"declared": bool,
+    "place": "all" | "region" | "location", "places": [...]} (a declared scope
+    covers every cell of its places; an undeclared one covers the cells its rows reach).
+    """
 
     id: int | None = Field(default=None, primary_key=True)
+    seq: int | None = Field(default=None, index=True)  # journal position: the order of acceptance
     kind: str  # forecast | events | actuals | items | locations | bom
-    source: str | None = Field(default=None, index=True)  # sales | marketing | dc | statistical
-    scope: str = "all"  # e.g. region NORTH, location DC-1, or all
-    cycle: str | None = Field(default=None, index=True)  # None for bulk files carrying a cycle column
+    source: str | None = Field(default=None, index=True)
+    cycle: str | None = Field(default=None, index=True)
+    revision: int | None = None
+    scope: str = "all"
+    scope_detail: dict = Field(default_factory=dict, sa_column=Column(JSON))
+    replace: bool = False  # master data: the file is the whole master (keys it leaves out are removed)
     filename: str
-    sha256: str = Field(index=True)
+    sha256: str = Field(index=True)  # of the bytes as received
+    lines_sha256: str | None = None  # the checked lines, a packed frame in Blob
     submitted_by: str = ""
     submitted_at: datetime = Field(default_factory=utcnow)
-    status: str = "accepted"  # accepted | rejected | superseded | duplicate
+    status: str = "accepted"  # accepted | rejected
+    reinstates: int | None = None  # an earlier submission with the same bytes that this makes current again
+    late: bool = False
     reasons: list = Field(default_factory=list, sa_column=Column(JSON))
     row_count: int = 0
-    grain: str = ""  # e.g. "family x region x month, value"
+    grain: str = ""
     file_format: dict = Field(default_factory=dict, sa_column=Column(JSON))
-    content: bytes = Field(default=b"", sa_column=Column(LargeBinary))
+    months: list = Field(default_factory=list, sa_column=Column(JSON))  # months the lines reach, sorted
 
 
 class SubmissionCycle(SQLModel, table=True):
-    """Which cycles a submission speaks for, and whether it is still the one in force there."""
+    """Which cycles a forecast or events file speaks for (a bulk file of past cycles speaks for several)."""
 
-    __table_args__ = (Index("ix_subcycle_key", "source", "cycle", "scope"),)
-    id: int | None = Field(default=None, primary_key=True)
-    submission_id: int = Field(foreign_key="submission.id", index=True)
-    source: str
-    cycle: str
-    scope: str
-    status: str = "accepted"  # accepted | superseded
-    superseded_by: int | None = None
-
-
-class ForecastLine(SQLModel, table=True):
-    """One row of a forecast file exactly as submitted (before alignment)."""
-
-    __table_args__ = (Index("ix_fline_cycle_source", "cycle", "source"),)
-    id: int | None = Field(default=None, primary_key=True)
-    submission_id: int = Field(foreign_key="submission.id", index=True)
-    cycle: str
-    source: str
-    row: int  # spreadsheet row in the file
-    item: str | None = None
-    family: str | None = None
-    location: str | None = None
-    region: str | None = None
-    period: str | None = None
-    week: str | None = None
-    quantity: float | None = None
-    value: float | None = None
-    note: str | None = None
-
-
-class EventLine(SQLModel, table=True):
-    """One marketing event row: an uplift over a span of months."""
-
-    id: int | None = Field(default=None, primary_key=True)
-    submission_id: int = Field(foreign_key="submission.id", index=True)
-    cycle: str = Field(index=True)
-    row: int
-    event: str
-    item: str | None = None
-    family: str | None = None
-    location: str | None = None
-    region: str | None = None
-    start: str
-    end: str
-    uplift_pct: float | None = None
-    units: float | None = None
-    note: str | None = None
-
-
-class Actual(SQLModel, table=True):
-    """Customer orders of one item at one location in one month."""
-
-    item: str = Field(primary_key=True)
-    location: str = Field(primary_key=True)
-    period: str = Field(primary_key=True)
-    quantity: float
-    submission_id: int | None = None
-
-
-# --- consensus runs and their audit ------------------------------------------------------------
-
-class ConsensusRun(SQLModel, table=True):
-    """One computation of a cycle's consensus, with the settings that made it."""
-
-    id: int | None = Field(default=None, primary_key=True)
-    cycle: str = Field(foreign_key="cycle.name", index=True)
-    created_at: datetime = Field(default_factory=utcnow)
-    status: str = "draft"  # draft | published | superseded
-    spec: dict = Field(default_factory=dict, sa_column=Column(JSON))
-    inputs: list = Field(default_factory=list, sa_column=Column(JSON))  # submission ids and hashes
-    notes: dict = Field(default_factory=dict, sa_column=Column(JSON))  # method notes, warnings
-
-
-class ConsensusLine(SQLModel, table=True):
-    """The consensus of one cell (item × location × month) in a run, with its error band."""
-
-    __table_args__ = (Index("ix_cline_run_cell", "run_id", "item", "location", "period"),)
-    id: int | None = Field(default=None, primary_key=True)
-    run_id: int = Field(foreign_key="consensusrun.id")
-    item: str
-    location: str
-    period: str
-    lag: int
-    consensus: float
-    lower_80: float | None = None
-    upper_80: float | None = None
-    lower_95: float | None = None
-    upper_95: float | None = None
-    band_method: str = ""
-    n_sources: int = 0
-    missing_sources: str = ""
-    spread: float = 0.0
-    spread_ratio: float = 0.0
-    flagged: bool = False
-    before_reconciliation: float | None = None
-    reconciliation_adjustment: float = 0.0
-    reconciliation_note: str = ""
-    before_override: float | None = None
-
-
-class CellSource(SQLModel, table=True):
-    """Audit: one source's part in one cell of a run (value, weight, contribution, why)."""
-
-    __table_args__ = (Index("ix_csource_run_cell", "run_id", "item", "location", "period"),)
-    id: int | None = Field(default=None, primary_key=True)
-    run_id: int = Field(foreign_key="consensusrun.id")
-    item: str
-    location: str
-    period: str
-    source: str
-    value: float
-    weight: float
-    contribution: float
-    bias_correction: float = 0.0
-    weight_basis: str = ""
-    note: str = ""
-
-
-class AlignmentTrace(SQLModel, table=True):
-    """Audit: how one submitted row reached one planning cell (share and where it came from)."""
-
-    __table_args__ = (Index("ix_trace_run_cell", "run_id", "item", "location", "period"),)
-    id: int | None = Field(default=None, primary_key=True)
-    run_id: int = Field(foreign_key="consensusrun.id")
-    source: str
-    submission_id: int | None = None
-    row: int | None = None
-    item: str
-    location: str
-    period: str
-    submitted: str = ""  # the original row in words, e.g. "family DRIP-KITS, region NORTH, 2027-01: 1,200 units"
-    share: float = 1.0
-    share_basis: str = ""
-    quantity: float = 0.0
-
-
-class WeightRecord(SQLModel, table=True):
-    """The weight a source earned in a segment and lag bucket, and the accuracy behind it."""
-
-    id: int | None = Field(default=None, primary_key=True)
-    run_id: int = Field(foreign_key="consensusrun.id", index=True)
-    segment: str
-    lag_bucket: str
-    source: str
-    weight: float
-    raw_weight: float | None = None
-    psi: float | None = None
-    n_cycles: int = 0
-    n_errors: int = 0
-    mad: float | None = None
-    mse: float | None = None
-    mean_error: float | None = None
-    basis: str = ""
-    note: str = ""
+    submission_id: int = Field(foreign_key="submission.id", primary_key=True)
+    cycle: str = Field(primary_key=True, index=True)
 
 
 class Decision(SQLModel, table=True):
-    """A change the review meeting made to the consensus, with its reason and author."""
+    """A change the review meeting made to the consensus, with its reason and author (and its withdrawal)."""
 
     id: int | None = Field(default=None, primary_key=True)
+    seq: int | None = None  # journal position of the decision
     cycle: str = Field(foreign_key="cycle.name", index=True)
+    revision: int = 1
     at: datetime = Field(default_factory=utcnow)
     author: str
     item: str | None = None
@@ -249,30 +122,66 @@ class Decision(SQLModel, table=True):
     kind: str = "set"  # set | delta | pct
     amount: float = 0.0
     reason: str
+    withdrawn_at: datetime | None = None
+    withdrawn_by: str | None = None
+    withdrawn_reason: str | None = None
+    withdrawn_seq: int | None = None
+
+
+class ConsensusRun(SQLModel, table=True):
+    """One computation of a cycle's consensus: the settings, the inputs it read and where its result is."""
+
+    id: int | None = Field(default=None, primary_key=True)
+    cycle: str = Field(foreign_key="cycle.name", index=True)
+    revision: int = 1
+    created_at: datetime = Field(default_factory=utcnow)
+    created_by: str = ""
+    status: str = "draft"  # draft | published | superseded
+    spec: dict = Field(default_factory=dict, sa_column=Column(JSON))
+    through_seq: int = 0  # the journal position the inputs were read at
+    inputs_digest: str = ""  # fingerprint of everything the result depends on
+    method_version: str = ""
+    inputs: list = Field(default_factory=list, sa_column=Column(JSON))  # submissions read: id, source, file, sha256
+    summary: dict = Field(default_factory=dict, sa_column=Column(JSON))  # cells, total, flagged, sources
+    parts: dict = Field(default_factory=dict, sa_column=Column(JSON))  # result frame name -> Blob sha256 (packed)
+    notes: dict = Field(default_factory=dict, sa_column=Column(JSON))  # warnings and method notes
+
+
+class CacheEntry(SQLModel, table=True):
+    """Derived, not input: a part of a computation kept under the digest of everything it read.
+
+    A different digest is a different entry, so a stale entry is never read;
+    entries can be deleted at any time without changing a number.
+    """
+
+    key: str = Field(primary_key=True)
+    kind: str = Field(index=True)
+    cycle: str = ""
+    created_at: datetime = Field(default_factory=utcnow)
+    content: bytes = Field(sa_column=Column(LargeBinary, nullable=False))
+
+
+class JournalEntry(SQLModel, table=True):
+    """The store's history in write order, each entry chained to the one before by sha256.
+
+    ``digest`` is the sha256 of the record as written (its canonical JSON);
+    ``chain`` = sha256(previous chain + digest).  Recomputing both shows any
+    record changed or removed outside the tool.
+    """
+
+    __table_args__ = (UniqueConstraint("kind", "ref_id", name="uq_journal_record"),
+                      Index("ix_journal_cycle", "cycle"))
+    seq: int | None = Field(default=None, primary_key=True)
+    at: datetime = Field(default_factory=utcnow)
+    kind: str  # submission | decision | withdrawal | cycle | reopen | publish | run
+    ref_id: str
+    cycle: str | None = None
+    digest: str
+    chain: str
 
 
 class Setting(SQLModel, table=True):
-    """A named setting of this store, such as the company name printed on the pack."""
+    """A named setting of this store: the company name on the pack, intake limits."""
 
     key: str = Field(primary_key=True)
     value: str
-
-
-class AlignedLine(SQLModel, table=True):
-    """Derived, not input: a past cycle's sources at planning grain, kept so runs need not re-align history.
-
-    ``key`` fingerprints everything the alignment read (the submissions in force,
-    the order history known at the cycle, the settings); a different key is a
-    stale row, never used.
-    """
-
-    __table_args__ = (Index("ix_aligned_cycle_key", "cycle", "key"),)
-    id: int | None = Field(default=None, primary_key=True)
-    cycle: str
-    key: str
-    source: str
-    item: str
-    location: str
-    period: str
-    lag: int
-    quantity: float

@@ -1,0 +1,75 @@
+"""A cache for the run kept in the store: parts of a computation filed under the digest of what they read.
+
+Reading happens while the run computes, each lookup in a read transaction of
+its own; new entries are held until the run writes its result and are written
+in that same transaction, so a run that fails leaves no half-written entry.
+Each (kind, cycle) keeps only its newest entry: the cache stays the size of
+one window of cycles.
+"""
+
+from __future__ import annotations
+
+import io
+import zipfile
+
+import pandas as pd
+from sqlalchemy import delete, select
+from sqlmodel import Session
+
+from consensus.store.columnar import pack_frame, unpack_frame
+from consensus.store.db import session_scope
+from consensus.store.models import CacheEntry, utcnow
+
+
+def _bundle(frames: dict[str, pd.DataFrame]) -> bytes:
+    buffer = io.BytesIO()
+    with zipfile.ZipFile(buffer, "w", compression=zipfile.ZIP_STORED) as archive:
+        for name, frame in frames.items():
+            archive.writestr(zipfile.ZipInfo(name, date_time=(1980, 1, 1, 0, 0, 0)), pack_frame(frame))
+    return buffer.getvalue()
+
+
+def _unbundle(content: bytes) -> dict[str, pd.DataFrame]:
+    with zipfile.ZipFile(io.BytesIO(content)) as archive:
+        return {name: unpack_frame(archive.read(name)) for name in archive.namelist()}
+
+
+class StoreCache:
+    """The store's :class:`consensus.store.models.CacheEntry` table as a :class:`consensus.methods.plan.Cache`."""
+
+    def __init__(self, url, *, enabled: bool = True):
+        self.url = url
+        self.enabled = enabled
+        self.pending: dict[str, tuple[str, str, bytes]] = {}
+        self.hits = 0
+        self.misses = 0
+
+    def get(self, key: str) -> dict[str, pd.DataFrame] | None:
+        if not self.enabled:
+            return None
+        if key in self.pending:
+            self.hits += 1
+            return _unbundle(self.pending[key][2])
+        with session_scope(self.url, write=False) as session:
+            table = CacheEntry.__table__
+            row = session.execute(select(table.c.content).where(table.c.key == key)).first()
+        if row is None:
+            self.misses += 1
+            return None
+        self.hits += 1
+        return _unbundle(bytes(row.content))
+
+    def put(self, key: str, *, kind: str, cycle: str, frames: dict[str, pd.DataFrame]) -> None:
+        if self.enabled:
+            self.pending[key] = (kind, cycle, _bundle(frames))
+
+    def write(self, session: Session) -> int:
+        """Write the new entries (in the caller's write transaction), each replacing its (kind, cycle)'s older one."""
+        table = CacheEntry.__table__
+        for key, (kind, cycle, content) in self.pending.items():
+            session.execute(delete(table).where(table.c.kind == kind).where(table.c.cycle == cycle))
+            session.execute(delete(table).where(table.c.key == key))
+            session.add(CacheEntry(key=key, kind=kind, cycle=cycle, content=content, created_at=utcnow()))
+        written = len(self.pending)
+        self.pending = {}
+        return written

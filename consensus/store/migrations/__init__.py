@@ -1,0 +1,52 @@
+"""Schema migrations of the store (Alembic), applied from code: no alembic.ini needed.
+
+``consensus store upgrade`` calls :func:`upgrade`; :func:`consensus.store.db.get_engine`
+creates a new store at the newest revision.  A new migration is a file in
+``versions/`` (``alembic revision`` with ``script_location`` set to this folder,
+then edit), and :data:`consensus.store.db.SCHEMA_REVISION` names the new head.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from sqlalchemy.engine import Engine
+
+HERE = Path(__file__).parent
+
+
+def config(connection=None):
+    from alembic.config import Config
+
+    cfg = Config()
+    cfg.set_main_option("script_location", str(HERE))
+    if connection is not None:
+        cfg.attributes["connection"] = connection
+    return cfg
+
+
+def known_revisions() -> set[str]:
+    from alembic.script import ScriptDirectory
+
+    return {script.revision for script in ScriptDirectory.from_config(config()).walk_revisions()}
+
+
+def head_revision() -> str:
+    from alembic.script import ScriptDirectory
+
+    return ScriptDirectory.from_config(config()).get_current_head()
+
+
+def upgrade(engine: Engine, revision: str = "head") -> None:
+    """Bring the store's schema to ``revision`` (the newest by default), in one transaction."""
+    from alembic import command
+
+    with engine.begin() as connection:
+        command.upgrade(config(connection), revision)
+
+
+def current_revision(engine: Engine) -> str | None:
+    from alembic.runtime.migration import MigrationContext
+
+    with engine.connect() as connection:
+        return MigrationContext.configure(connection).get_current_revision()
