@@ -84,50 +84,69 @@ def _group_quantiles(errors: pd.DataFrame, keys: list[str], probabilities: list[
     return out.reset_index() if keys else out
 
 
-def empirical_bands(forecast: pd.DataFrame, past_errors: pd.DataFrame, *, levels: Sequence[float] = (0.8, 0.95),
-                    by: Sequence[str] = ("lag_bucket",), min_errors: int = 30) -> pd.DataFrame:
-    """Prediction bands around each consensus number from past relative errors in its group.
+def band_table(past_errors: pd.DataFrame, *, levels: Sequence[float] = (0.8, 0.95),
+               by: Sequence[str] = ("lag_bucket",)) -> pd.DataFrame:
+    """Per group of ``by``: the count, the MAD and the quantiles of past relative errors e = (a − f) / f.
 
-    ``forecast`` has the key columns, ``consensus`` and the ``by`` columns
-    (``lag_bucket`` is derived from ``lag`` or ``cycle`` + ``period`` when
-    absent); ``past_errors`` has ``forecast``, ``actual`` and the ``by``
-    columns.  For each group with n ≥ ``min_errors`` usable errors:
-    band = F·(1 + quantile of e at (1 ∓ level)/2) (Williams & Goodman, 1971);
-    otherwise F·(1 ∓ z·1.25·MAD(e)) with z the normal quantile.  Returns
-    ``forecast`` with lower_/upper_ columns per level and ``band_method``
-    ("empirical, n errors" or "normal from MAD, n errors", with "pooled" when
-    the group had none and all errors were used).
+    One more row, with every ``by`` column empty (None), pools all errors.
+    Past errors whose forecast is not positive cannot be scaled and are left
+    out.  The table is what :func:`apply_bands` reads, so a run can keep it
+    instead of the errors themselves.
     """
+    levels = _check_levels(levels)
+    keys = list(by)
+    past_errors = _with_lag_bucket(past_errors)
+    missing = [k for k in keys if k not in past_errors.columns]
+    if missing:
+        raise InvalidSpec(f"cannot group bands by {missing}: not columns of past_errors")
+    missing = [c for c in ("forecast", "actual") if c not in past_errors.columns]
+    if missing:
+        raise ValueError(f"past_errors lacks columns {missing}")
+    f_past = past_errors["forecast"].astype(float)
+    a_past = past_errors["actual"].astype(float)
+    usable = (f_past > 0) & a_past.notna()
+    errors = past_errors.loc[usable, keys].assign(relative=((a_past - f_past) / f_past)[usable].to_numpy())
+    probabilities = _probabilities(levels)
+    by_group = _group_quantiles(errors, keys, probabilities) if keys else pd.DataFrame()
+    pooled = _group_quantiles(errors, [], probabilities).assign(**{k: None for k in keys})
+    table = pd.concat([by_group, pooled], ignore_index=True) if keys else pooled
+    table["n"] = table["n"].astype(int)
+    return table[[*keys, "n", "mad", *[f"_q{p!r}" for p in probabilities]]]
+
+
+def _probabilities(levels: Sequence[float]) -> list[float]:
+    return sorted({p for level in levels for p in ((1 - level) / 2, (1 + level) / 2)})
+
+
+def apply_bands(forecast: pd.DataFrame, table: pd.DataFrame, *, levels: Sequence[float] = (0.8, 0.95),
+                by: Sequence[str] = ("lag_bucket",), min_errors: int = 30) -> pd.DataFrame:
+    """Bands around each ``consensus`` number from a :func:`band_table`; see :func:`empirical_bands`."""
     levels = _check_levels(levels)
     if not isinstance(min_errors, (int, np.integer)) or min_errors < 1:
         raise InvalidSpec(f"min_errors must be a positive whole number, got {min_errors!r}")
     keys = list(by)
     forecast = _with_lag_bucket(forecast)
-    past_errors = _with_lag_bucket(past_errors)
     if "consensus" not in forecast.columns:
         raise ValueError("forecast needs a consensus column")
-    for frame, name in ((forecast, "forecast"), (past_errors, "past_errors")):
-        missing = [k for k in keys if k not in frame.columns]
-        if missing:
-            raise InvalidSpec(f"cannot group bands by {missing}: not columns of {name}")
-    missing = [c for c in ("forecast", "actual") if c not in past_errors.columns]
+    missing = [k for k in keys if k not in forecast.columns]
     if missing:
-        raise ValueError(f"past_errors lacks columns {missing}")
-
-    f_past = past_errors["forecast"].astype(float)
-    a_past = past_errors["actual"].astype(float)
-    usable = (f_past > 0) & a_past.notna()
-    errors = past_errors.loc[usable, keys].assign(relative=((a_past - f_past) / f_past)[usable].to_numpy())
-    probabilities = sorted({p for level in levels for p in ((1 - level) / 2, (1 + level) / 2)})
-
-    by_group = _group_quantiles(errors, keys, probabilities)
-    pooled = _group_quantiles(errors, [], probabilities).iloc[0]
-    out = forecast.merge(by_group, on=keys, how="left", sort=False) if keys else forecast.assign(
-        **{c: pooled[c] for c in pooled.index})
+        raise InvalidSpec(f"cannot group bands by {missing}: not columns of forecast")
+    probabilities = _probabilities(levels)
+    quantile_columns = [f"_q{p!r}" for p in probabilities]
+    if keys:
+        pooled_mask = table[keys].isna().all(axis=1)
+        pooled = table.loc[pooled_mask].iloc[0] if pooled_mask.any() else None
+        groups = table.loc[~pooled_mask, [*keys, "n", "mad", *quantile_columns]]
+        out = forecast.merge(groups, on=keys, how="left", sort=False)
+    else:
+        pooled = table.iloc[0]
+        out = forecast.assign(**{c: pooled[c] for c in ["n", "mad", *quantile_columns]})
+    total = int(pooled["n"]) if pooled is not None else 0
     out["n"] = out["n"].fillna(0)
     borrowed = (out["n"] == 0).to_numpy()
-    for column in pooled.index:
-        out[column] = np.where(borrowed, pooled[column], out[column].to_numpy(dtype=float))
+    for column in ["n", "mad", *quantile_columns]:
+        fill = pooled[column] if pooled is not None else np.nan
+        out[column] = np.where(borrowed, fill, out[column].to_numpy(dtype=float))
     n = out["n"].to_numpy(dtype=float)
     empirical = n >= min_errors
     level_point = out["consensus"].astype(float).to_numpy()
@@ -147,7 +166,6 @@ def empirical_bands(forecast: pd.DataFrame, past_errors: pd.DataFrame, *, levels
     method = np.where(empirical, "empirical, ", "normal from MAD, ")
     method = np.where(borrowed, np.char.add(method.astype(str), "pooled, "), method)
     out["band_method"] = pd.Series(method, index=out.index).astype(object) + count_text.astype(object)
-    total = int(pooled["n"])
     out.loc[borrowed, "band_method"] = np.where(total >= min_errors, "empirical, pooled, ",
                                                 "normal from MAD, pooled, ") + f"{total} errors"
     if total == 0:
@@ -155,6 +173,24 @@ def empirical_bands(forecast: pd.DataFrame, past_errors: pd.DataFrame, *, levels
         out["band_method"] = "no past errors"
     helper = ["n", "mad"] + [c for c in out.columns if c.startswith("_q")]
     return out.drop(columns=helper)
+
+
+def empirical_bands(forecast: pd.DataFrame, past_errors: pd.DataFrame, *, levels: Sequence[float] = (0.8, 0.95),
+                    by: Sequence[str] = ("lag_bucket",), min_errors: int = 30) -> pd.DataFrame:
+    """Prediction bands around each consensus number from past relative errors in its group.
+
+    ``forecast`` has the key columns, ``consensus`` and the ``by`` columns
+    (``lag_bucket`` is derived from ``lag`` or ``cycle`` + ``period`` when
+    absent); ``past_errors`` has ``forecast``, ``actual`` and the ``by``
+    columns.  For each group with n ≥ ``min_errors`` usable errors:
+    band = F·(1 + quantile of e at (1 ∓ level)/2) (Williams & Goodman, 1971);
+    otherwise F·(1 ∓ z·1.25·MAD(e)) with z the normal quantile.  Returns
+    ``forecast`` with lower_/upper_ columns per level and ``band_method``
+    ("empirical, n errors" or "normal from MAD, n errors", with "pooled" when
+    the group had none and all errors were used).
+    """
+    table = band_table(past_errors, levels=levels, by=by)
+    return apply_bands(forecast, table, levels=levels, by=by, min_errors=min_errors)
 
 
 def winkler_score(lower, upper, actual, *, level: float) -> np.ndarray:

@@ -159,26 +159,46 @@ def _segments_of_master(segment: str, items: pd.DataFrame, locations: pd.DataFra
     return sorted(set(labels) | set(seen))
 
 
+#: Columns of the per-cycle error sums weights are estimated from (see :func:`error_sums`).
+SUM_COLUMNS = ["segment", "lag_bucket", "source", "cycle", "n", "sum_abs", "sum_sq", "sum_err"]
+
+
+def error_sums(errors: pd.DataFrame, *, segment: str, items: pd.DataFrame | None,
+               locations: pd.DataFrame | None) -> pd.DataFrame:
+    """Per (segment, lag bucket, source, cycle): n, Σ|e|, Σe², Σe of a cell-level error table.
+
+    This is all a weight needs from the past, so a long history can be kept
+    as these sums instead of one row per error (``forecast_errors`` gives the
+    cell-level table).  Rows are summed in a fixed order, so the sums do not
+    depend on the order of ``errors``.
+    """
+    frame = errors.sort_values(["source", "cycle", "item", "location", "period"], kind="mergesort")
+    e = frame["error"].astype(float)
+    parts = pd.DataFrame({
+        "segment": assign_segments(frame, segment=segment, items=items, locations=locations),
+        "lag_bucket": frame["lag_bucket"].astype(object).to_numpy(), "source": frame["source"].astype(object).to_numpy(),
+        "cycle": frame["cycle"].astype(object).to_numpy(), "n": 1, "sum_abs": e.abs().to_numpy(),
+        "sum_sq": (e * e).to_numpy(), "sum_err": e.to_numpy()})
+    if parts.empty:
+        return pd.DataFrame({c: pd.Series(dtype=object if c in SUM_COLUMNS[:4] else float) for c in SUM_COLUMNS})
+    return parts.groupby(SUM_COLUMNS[:4], sort=True).sum().reset_index()[SUM_COLUMNS]
+
+
 def _error_statistics(window: pd.DataFrame, keys: list[str]) -> pd.DataFrame:
-    sq = window["error"] ** 2
-    parts = window[keys + ["cycle"]].assign(
-        abs_error=window["error"].abs(),
-        sq_error=sq,
-        error=window["error"],
-        discounted_sq=window["discount_weight"] * sq,
-        discount_weight=window["discount_weight"],
-    )
+    """Per key: cycles, errors, MAD, MSE, mean error and discounted MSE from per-cycle sums."""
+    parts = window.assign(discounted_sq=window["discount_weight"] * window["sum_sq"],
+                          discounted_n=window["discount_weight"] * window["n"],
+                          has=(window["n"] > 0).astype(int))
     grouped = parts.groupby(keys, sort=True)
-    stats = pd.DataFrame(
-        {
-            "n_cycles": grouped["cycle"].nunique(),
-            "n_errors": grouped["error"].size(),
-            "mad": grouped["abs_error"].mean(),
-            "mse": grouped["sq_error"].mean(),
-            "mean_error": grouped["error"].mean(),
-            "discounted_mse": grouped["discounted_sq"].sum() / grouped["discount_weight"].sum(),
-        }
-    )
+    totals = grouped[["n", "sum_abs", "sum_sq", "sum_err", "discounted_sq", "discounted_n", "has"]].sum()
+    stats = pd.DataFrame({
+        "n_cycles": totals["has"],
+        "n_errors": totals["n"],
+        "mad": totals["sum_abs"] / totals["n"],
+        "mse": totals["sum_sq"] / totals["n"],
+        "mean_error": totals["sum_err"] / totals["n"],
+        "discounted_mse": totals["discounted_sq"] / totals["discounted_n"],
+    })
     return stats.reset_index()
 
 
@@ -202,16 +222,41 @@ def estimate_weights(
     spec: WeightSpec,
     sources,
 ) -> pd.DataFrame:
-    """Weights of ``sources`` for cycle ``cycle`` per (segment, lag bucket).
+    """Weights of ``sources`` for cycle ``cycle`` per (segment, lag bucket), from a cell-level error table.
 
-    Uses only errors (from :func:`consensus.methods.accuracy.forecast_errors`)
-    of cycles C − window … C − 1 whose period is ≤ C, so every actual used was
-    known when cycle C was planned.  A (segment, lag bucket) where some source
-    has fewer than ``min_cycles`` cycles of errors falls back to the errors of
-    all segments pooled, and failing that to equal weights; ``basis`` says which
-    ("segment", "all", "equal") and ``note`` says why.  Weights are ≥ 0 and sum
-    to 1 per (segment, lag bucket); every segment of the master × every lag
-    bucket × every source gets a row.  Formulas and sources: module docstring.
+    ``errors`` is :func:`consensus.methods.accuracy.forecast_errors`' table;
+    see :func:`estimate_weights_from_sums` for the rule (this sums the errors
+    per cycle first, with :func:`error_sums`).
+    """
+    if not isinstance(spec, WeightSpec):
+        raise InvalidSpec("spec must be a WeightSpec")
+    known = month_indexes_factorized(errors["period"]) <= month_index(cycle)  # actuals known at the cycle
+    sums = error_sums(errors[known & errors["source"].isin([str(s) for s in sources]).to_numpy()],
+                      segment=spec.segment, items=items, locations=locations)
+    return estimate_weights_from_sums(sums, cycle=cycle, segments=_segments_of_master(spec.segment, items, locations,
+                                                                                      sums["segment"].unique()),
+                                      spec=spec, sources=sources)
+
+
+def estimate_weights_from_sums(
+    sums: pd.DataFrame,
+    *,
+    cycle: str,
+    segments,
+    spec: WeightSpec,
+    sources,
+) -> pd.DataFrame:
+    """Weights of ``sources`` for cycle ``cycle`` per (segment, lag bucket), from per-cycle error sums.
+
+    ``sums``: [segment, lag_bucket, source, cycle, n, sum_abs, sum_sq,
+    sum_err] (:func:`error_sums`).  Uses only cycles C − window … C − 1 (the
+    sums must hold only errors of periods ≤ C, so every actual used was known
+    when cycle C was planned).  A (segment, lag bucket) where some source has
+    fewer than ``min_cycles`` cycles of errors falls back to the errors of all
+    segments pooled, and failing that to equal weights; ``basis`` says which
+    ("segment", "all", "equal") and ``note`` says why.  Weights are ≥ 0 and
+    sum to 1 per (segment, lag bucket); every segment in ``segments`` × every
+    lag bucket × every source gets a row.  Formulas and sources: module docstring.
 
     Returns [segment, lag_bucket, source, weight, raw_weight, psi, n_cycles,
     n_errors, mad, mse, mean_error, basis, note]; mad/mse/mean_error/n_* are
@@ -223,23 +268,18 @@ def estimate_weights(
     if not sources:
         raise InvalidSpec("at least one source is needed to estimate weights")
     current = month_index(cycle)
-    frame = errors[errors["source"].isin(sources)]
+    frame = sums[sums["source"].isin(sources)]
     cycle_idx = month_indexes_factorized(frame["cycle"])
-    period_idx = month_indexes_factorized(frame["period"])
-    in_window = (cycle_idx >= current - spec.window_cycles) & (cycle_idx <= current - 1) & (period_idx <= current)
-    # A fixed row order makes the float sums, hence the weights, independent of input order.
-    window = frame[in_window].assign(_c=cycle_idx[in_window])
-    window = window.sort_values(["source", "_c", "item", "location", "period"], kind="mergesort")
-    window = window.assign(
-        segment=assign_segments(window, segment=spec.segment, items=items, locations=locations),
-        discount_weight=float(spec.discount) ** (current - 1 - window["_c"].to_numpy()).astype(float),
-    )
+    in_window = (cycle_idx >= current - spec.window_cycles) & (cycle_idx <= current - 1)
+    window = frame[in_window].assign(
+        discount_weight=float(spec.discount) ** (current - 1 - cycle_idx[in_window]).astype(float))
+    window = window.sort_values(["segment", "lag_bucket", "source", "cycle"], kind="mergesort")
     keys = ["segment", "lag_bucket", "source"]
     own = _error_statistics(window, keys)
     pooled = _error_statistics(window, ["lag_bucket", "source"])
 
     buckets = [label for label, _, _ in DEFAULT_LAG_BUCKETS]
-    segments = _segments_of_master(spec.segment, items, locations, window["segment"].unique())
+    segments = sorted(set(segments) | set(window["segment"].unique()))
     grid = pd.MultiIndex.from_product([segments, buckets, sources], names=keys).to_frame(index=False)
     stat_cols = ["n_cycles", "n_errors", "mad", "mse", "mean_error", "discounted_mse"]
     table = grid.merge(own, on=keys, how="left").merge(

@@ -1,0 +1,169 @@
+"""One cycle's sources at planning grain (item × location × month), from the submissions in force.
+
+Each submission is aligned on its own (weeks spread into months, value turned
+into units, family and region rows split by the historical mix known at the
+cycle: :mod:`consensus.methods.alignment`), then each source's value for each
+cell is taken from the newest submission covering that cell
+(:mod:`consensus.methods.in_force`).  Marketing's events are applied to the
+statistical forecast, whose value before them is kept as
+``statistical_base``.  The same functions give the trail of one cell for
+``explain``, so the audit is recomputed from the stored inputs, never
+reconstructed.
+"""
+
+from __future__ import annotations
+
+import warnings as warnings_module
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from consensus import periods
+from consensus.methods import alignment, events
+from consensus.methods.in_force import in_force
+
+ALIGNED_COLUMNS = ["source", "item", "location", "period", "quantity"]
+TRACE_COLUMNS = ["source", "seq", "submission_id", "row", "item", "location", "period", "submitted", "share",
+                 "share_basis", "quantity"]
+#: Quantities are carried to a millionth of a unit: far below any unit a plan is read in, and the
+#: same digits whether a number was just computed or read back from the store.
+QUANTITY_DECIMALS = 6
+STATISTICAL, BASE, NAIVE = "statistical", "statistical_base", "naive"
+
+
+def rounded(values) -> np.ndarray:
+    return np.round(np.asarray(values, dtype=float), QUANTITY_DECIMALS) + 0.0  # + 0.0 turns −0 into 0
+
+
+@dataclass(frozen=True)
+class AlignedSources:
+    """A cycle's human sources at planning grain, the cells each submission covers, and warnings."""
+
+    aligned: pd.DataFrame  # ALIGNED_COLUMNS, one row per source × cell (in force)
+    warnings: list[str]
+    traces: pd.DataFrame | None = None
+
+
+def describe_rows(lines: pd.DataFrame) -> pd.Series:
+    """Each submitted row in words, e.g. 'family DRIP-KITS × region NORTH, 2027-01: 1,200 units'."""
+    product = np.where(lines["item"].notna(), "item " + lines["item"].astype(str),
+                       "family " + lines["family"].astype(str))
+    place = np.where(lines["location"].notna(), " × location " + lines["location"].astype(str),
+                     np.where(lines["region"].notna(), " × region " + lines["region"].astype(str), " × all locations"))
+    when = np.where(lines["week"].notna(), lines["week"].astype(str), lines["period"].astype(str))
+    amount = np.where(lines["quantity"].notna(), lines["quantity"].map("{:,.0f} units".format),
+                      lines["value"].map("{:,.2f} in value".format))
+    return pd.Series(product + place + ", " + when + ": " + amount, index=lines.index)
+
+
+def _for_columns(lines: pd.DataFrame) -> pd.DataFrame:
+    out = lines.copy()
+    for column in ("item", "family", "location", "region", "period", "week", "note"):
+        if column not in out:
+            out[column] = None
+    for column in ("quantity", "value"):
+        out[column] = pd.to_numeric(out[column], errors="coerce").astype(float) if column in out else np.nan
+    return out
+
+
+def align_submissions(lines: pd.DataFrame, *, cycle: str, items: pd.DataFrame, locations: pd.DataFrame,
+                      mix: pd.DataFrame, with_traces: bool = False) -> tuple[pd.DataFrame, list[str], pd.DataFrame | None]:
+    """Every submission's rows at planning grain, kept apart by ``seq``: [seq, source, item, location, period, quantity].
+
+    ``lines``: the checked lines of the cycle's submissions with ``seq``,
+    ``submission_id`` and ``source``; rows outside the cycle's months (60
+    ahead) are left out.  A submission's rows that reach the same cell are
+    summed (a file may give a family row and an item row of it).
+    """
+    empty = pd.DataFrame({c: pd.Series(dtype=float if c == "quantity" else object)
+                          for c in ["seq", *ALIGNED_COLUMNS]})
+    if lines.empty:
+        return empty, [], None
+    rows = _for_columns(lines).reset_index(drop=True)
+    rows["row_id"] = np.arange(len(rows))
+    weekly = rows["week"].notna()
+    monthly = rows.loc[~weekly].assign(week_share=1.0)
+    if weekly.any():
+        spread = alignment.spread_weeks(rows.loc[weekly].drop(columns=["period"]))
+        monthly = pd.concat([monthly, spread], ignore_index=True)
+    in_value = monthly["quantity"].isna() & monthly["value"].notna()
+    if in_value.any():
+        converted = alignment.value_to_units(monthly.loc[in_value], items=items, mix=mix)
+        monthly = pd.concat([monthly.loc[~in_value], converted], ignore_index=True)
+    horizon = set(periods.horizon_months(cycle, 60))
+    monthly = monthly[monthly["period"].isin(horizon)]
+    split, warnings = alignment.split_to_grain(
+        monthly[["row_id", "item", "family", "location", "region", "period", "quantity", "week_share"]],
+        mix=mix, items=items, locations=locations)
+    origin = rows.set_index("row_id")[["seq", "source", "submission_id", "row"]]
+    traced = split.join(origin, on="row_id")
+    traced["share"] = traced["share"] * traced["week_share"].fillna(1.0)
+    aligned = traced.groupby(["seq", "source", "item", "location", "period"], as_index=False, sort=True)[
+        "quantity"].sum()
+    traces = None
+    if with_traces:
+        described = describe_rows(rows).rename("submitted")
+        traces = traced.join(described, on="row_id")[TRACE_COLUMNS].reset_index(drop=True)
+    return aligned[["seq", *ALIGNED_COLUMNS]], list(warnings), traces
+
+
+def declared_cells(submissions: pd.DataFrame, *, items: pd.DataFrame, locations: pd.DataFrame) -> pd.DataFrame:
+    """[seq, source, item, location, period]: every cell each declared scope covers in the months it carries."""
+    from consensus.intake.scope import scope_locations
+
+    parts = []
+    item_codes = items["item"].astype(object).to_numpy()
+    for sub in submissions.itertuples(index=False):  # one entry per declared file, each vectorised over its cells
+        detail = sub.scope_detail if isinstance(sub.scope_detail, dict) else {}
+        if not detail.get("declared") or detail.get("place") == "events":
+            continue
+        places = np.array(scope_locations(detail, locations), dtype=object)
+        months = np.array(list(sub.months or []), dtype=object)
+        if not len(places) or not len(months):
+            continue
+        n = len(item_codes) * len(places) * len(months)
+        parts.append(pd.DataFrame({
+            "seq": np.full(n, sub.seq), "source": np.full(n, sub.source, dtype=object),
+            "item": np.repeat(item_codes, len(places) * len(months)),
+            "location": np.tile(np.repeat(places, len(months)), len(item_codes)),
+            "period": np.tile(months, len(item_codes) * len(places))}))
+    if not parts:
+        return pd.DataFrame({c: pd.Series(dtype=object) for c in ["seq", "source", "item", "location", "period"]})
+    return pd.concat(parts, ignore_index=True)
+
+
+def sources_in_force(aligned: pd.DataFrame, covered: pd.DataFrame) -> pd.DataFrame:
+    """Each source's value per cell from the newest submission covering it: ALIGNED_COLUMNS."""
+    kept = in_force(aligned, keys=["source", "item", "location", "period"], covered=covered)
+    kept = kept.assign(quantity=rounded(kept["quantity"]))
+    return kept[ALIGNED_COLUMNS].sort_values(["source", "item", "location", "period"], kind="mergesort",
+                                             ignore_index=True)
+
+
+def events_in_force(event_lines: pd.DataFrame, submissions: pd.DataFrame) -> pd.DataFrame:
+    """Event rows in force: an event is replaced by name by a newer file; a file declared 'all' replaces all."""
+    if event_lines.empty:
+        return event_lines
+    whole = submissions.loc[submissions["scope_detail"].map(
+        lambda d: isinstance(d, dict) and d.get("declared") and d.get("place") == "all"), "seq"]
+    return in_force(event_lines, keys=["event"], whole=whole)
+
+
+def apply_events(stat: pd.DataFrame, cycle_events: pd.DataFrame, *, items: pd.DataFrame,
+                 locations: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame, list[str]]:
+    """[source, item, location, period, quantity] rows of statistical (events applied) and statistical_base.
+
+    Returns (frame, audit of each event's uplift per cell, warnings).
+    """
+    base = stat.assign(source=BASE)
+    if cycle_events.empty or stat.empty:
+        return pd.concat([stat.assign(source=STATISTICAL), base], ignore_index=True)[ALIGNED_COLUMNS], \
+            pd.DataFrame(columns=["event", "item", "location", "period", "base", "uplift_units", "note"]), []
+    with warnings_module.catch_warnings(record=True) as caught:
+        warnings_module.simplefilter("always")
+        adjusted, audit = events.apply_event_uplifts(stat.assign(lag=0), cycle_events, items=items,
+                                                     locations=locations)
+    adjusted = adjusted.assign(source=STATISTICAL, quantity=rounded(adjusted["quantity"]))
+    frame = pd.concat([adjusted[ALIGNED_COLUMNS], base[ALIGNED_COLUMNS]], ignore_index=True)
+    return frame, audit, [str(w.message) for w in caught]

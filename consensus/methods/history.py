@@ -1,0 +1,421 @@
+"""Every past error known at a cycle, reduced cycle by cycle into what the run needs.
+
+A run at cycle C scores each past cycle c of its window: every source's
+forecast of every cell whose month is ≤ C against the orders that came.  At
+100,000 series and a 12-cycle window that is tens of millions of errors, so
+they are never kept all at once: each past cycle's errors are reduced, as soon
+as they are made, to
+
+* per-cycle sums by (source, lag, segment) — all a source weight needs
+  (:func:`consensus.methods.weights.estimate_weights_from_sums`), and the
+  pooled item × location accuracy;
+* per-series running sums by (source, lag bucket), for each series' own
+  tracking signal and scaled error (MASE);
+* the same sums by demand pattern, so slow and lumpy items are judged apart;
+* errors of group totals (family × region, family, region, location, total),
+  which are few: the accuracy of every upper level, and the errors that
+  level weights and level bands are drawn from;
+* the relative errors of the band sources, by lag bucket, for the bands;
+* forecast value added and marketing's value added, as sums.
+
+Errors are e = actual − forecast.  A cell is scored the way
+:func:`consensus.methods.accuracy.forecast_errors` says: its month must have
+orders for some series, the series must have orders in some month (a month
+without a row is then zero demand), and unknown months (a cycle opened before
+its orders were in) are not scored at all.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from consensus import periods
+from consensus.methods.accuracy import TRACKING_SIGNAL_LIMIT, month_indexes_factorized
+from consensus.periods import DEFAULT_LAG_BUCKETS, lag_bucket_labels
+
+#: Upper levels scored as group totals, and the item-side and location-side key of each.
+UPPER_LEVELS: dict[str, tuple[str, str]] = {
+    "family_region": ("family", "region"),
+    "family": ("family", "all"),
+    "region": ("all", "region"),
+    "location": ("all", "location"),
+    "total": ("all", "all"),
+}
+BUCKETS = tuple(label for label, _, _ in DEFAULT_LAG_BUCKETS)
+BAND_SOURCES = ("consensus", "statistical")
+MIN_OWN_BAND_ERRORS = 30
+#: Steps of forecast value added, from the yardstick to the plan.
+FVA_STEPS = ("naive", "statistical_base", "statistical", "dc", "sales", "marketing", "consensus")
+NODE_COLUMNS = ["level", "source", "cycle", "node_item", "node_location", "period", "lag", "forecast", "actual"]
+SUM_FIELDS = ["n", "n_zero", "sum_abs", "sum_sq", "sum_err", "sum_actual", "sum_forecast", "sum_ape", "sum_scaled",
+              "n_scaled"]
+
+
+@dataclass(frozen=True)
+class SeriesBook:
+    """The series that have order history, with their place in the hierarchy, as integer codes.
+
+    ``actual[i, j]`` is series i's orders in month ``first_month + j`` (0 for a
+    month without a row inside the known months, NaN for an unknown month).
+    """
+
+    keys: pd.DataFrame  # [item, location, family, region] per series id
+    actual: np.ndarray
+    first_month: int
+    index: pd.MultiIndex
+    scale: np.ndarray  # in-sample seasonal naive MAE per series (the MASE scale), NaN when too short
+    pattern: np.ndarray  # demand pattern per series ("" when unknown)
+
+
+def build_series_book(actuals: pd.DataFrame, *, items: pd.DataFrame, locations: pd.DataFrame, cycle: str,
+                      unknown_months=(), patterns: pd.DataFrame | None = None, season: int = 12) -> SeriesBook:
+    """The dense order matrix of every series known at ``cycle`` (months after it are left out)."""
+    known = actuals[actuals["period"].astype(str) <= cycle]
+    keys = known[["item", "location"]].drop_duplicates().sort_values(["item", "location"], kind="mergesort")
+    keys = keys.reset_index(drop=True)
+    index = pd.MultiIndex.from_frame(keys.astype(object))
+    end = periods.month_index(cycle)
+    if len(known):
+        first = int(month_indexes_factorized(known["period"]).min())
+    else:
+        first = end
+    n_months = end - first + 1
+    actual = np.zeros((len(keys), n_months))
+    if len(known):
+        row = index.get_indexer(pd.MultiIndex.from_frame(known[["item", "location"]].astype(object)))
+        col = month_indexes_factorized(known["period"]) - first
+        np.add.at(actual, (row, col), known["quantity"].to_numpy(float))
+    with_orders = np.zeros(n_months, dtype=bool)
+    if len(known):
+        with_orders[np.unique(month_indexes_factorized(known["period"]) - first)] = True
+    actual[:, ~with_orders] = np.nan  # a month with no orders at all is unknown, not zero
+    for month in unknown_months:
+        j = periods.month_index(month) - first
+        if 0 <= j < n_months:
+            actual[:, j] = np.nan
+    family = keys["item"].map(items.drop_duplicates("item").set_index("item")["family"]).fillna("(unknown family)")
+    region = keys["location"].map(locations.drop_duplicates("location").set_index("location")["region"])
+    keys = keys.assign(family=family.astype(object), region=region.fillna("(unknown region)").astype(object))
+    diffs = np.abs(actual[:, season:] - actual[:, :-season]) if n_months > season else np.empty((len(keys), 0))
+    counted = np.isfinite(diffs)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        scale = np.where(counted.sum(axis=1) > 0, np.nansum(diffs, axis=1) / np.maximum(counted.sum(axis=1), 1),
+                         np.nan)
+    pattern = np.full(len(keys), "", dtype=object)
+    if patterns is not None and len(patterns):
+        found = index.get_indexer(pd.MultiIndex.from_frame(patterns[["item", "location"]].astype(object)))
+        ok = found >= 0
+        pattern[found[ok]] = patterns["pattern"].to_numpy(dtype=object)[ok]
+    return SeriesBook(keys=keys, actual=actual, first_month=first, index=index, scale=scale, pattern=pattern)
+
+
+def _codes(values: pd.Series | np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    codes, uniques = pd.factorize(pd.Series(values, dtype=object), sort=True)
+    return codes.astype(np.int64), np.asarray(uniques, dtype=object)
+
+
+@dataclass
+class HistoryLedger:
+    """Running reductions of past errors; :meth:`add_cycle` one past cycle at a time, then :meth:`summary`."""
+
+    book: SeriesBook
+    cycle: str
+    segment: str  # family | item | region | all (the weights' segment)
+    sources: tuple[str, ...]
+    keep_cells: bool = False
+    band_levels: tuple[float, ...] = (0.8, 0.95)
+    _cell_sums: list = field(default_factory=list)
+    _pattern_sums: list = field(default_factory=list)
+    _nodes: list = field(default_factory=list)
+    _bands: dict = field(default_factory=dict)
+    _fva: list = field(default_factory=list)
+    _uplift: list = field(default_factory=list)
+    _history: list = field(default_factory=list)
+    _cells: list = field(default_factory=list)
+    _coverage: list = field(default_factory=list)
+
+    def __post_init__(self) -> None:
+        keys = self.book.keys
+        n = len(keys)
+        self._n = n
+        self._source_code = {s: k for k, s in enumerate(self.sources)}
+        self._cell_acc = np.zeros((3, len(self.sources), len(BUCKETS), n))  # Σe, Σ|e|, count
+        segment_values = {"family": keys["family"], "item": keys["item"], "region": keys["region"],
+                          "all": pd.Series("all", index=keys.index)}[self.segment]
+        self._segment_codes, self._segment_names = _codes(segment_values)
+        self._pattern_codes, self._pattern_names = _codes(pd.Series(self.book.pattern).replace("", "unknown"))
+        self._levels = {}
+        for level, (item_side, location_side) in UPPER_LEVELS.items():
+            left = keys[item_side] if item_side != "all" else pd.Series("all", index=keys.index)
+            right = keys[location_side] if location_side != "all" else pd.Series("all", index=keys.index)
+            codes, uniques = pd.MultiIndex.from_arrays([left.astype(object), right.astype(object)]).factorize()
+            self._levels[level] = (codes.astype(np.int64), uniques)
+        self._now = periods.month_index(self.cycle)
+
+    # -- one past cycle -------------------------------------------------------------------
+
+    def add_cycle(self, name: str, forecasts: pd.DataFrame, *, bands: pd.DataFrame | None = None) -> None:
+        """Score one past cycle's forecasts [source, item, location, period, quantity] (``consensus`` included).
+
+        ``bands``: the cycle's published plan with its bands [item, location,
+        period, lower_80, upper_80, lower_95, upper_95], for band coverage.
+        """
+        book = self.book
+        c_index = periods.month_index(name)
+        frame = forecasts[forecasts["source"].isin(self.sources)]
+        sid = book.index.get_indexer(pd.MultiIndex.from_frame(frame[["item", "location"]].astype(object)))
+        month = month_indexes_factorized(frame["period"])
+        lag = month - c_index
+        keep = (sid >= 0) & (month <= self._now) & (lag >= 1) & (month >= book.first_month)
+        sid, month, lag = sid[keep], month[keep], lag[keep]
+        forecast = frame["quantity"].to_numpy(float)[keep]
+        actual = book.actual[sid, month - book.first_month]
+        scored = np.isfinite(actual) & np.isfinite(forecast)
+        sid, month, lag, forecast, actual = sid[scored], month[scored], lag[scored], forecast[scored], actual[scored]
+        source = frame["source"].map(self._source_code).to_numpy()[keep][scored].astype(np.int64)
+        if not len(sid):
+            return
+        error = actual - forecast
+        bucket = np.searchsorted([first for _, first, _ in DEFAULT_LAG_BUCKETS], lag, side="right") - 1
+        scale = book.scale[sid]
+        scaled_ok = np.isfinite(scale) & (scale > 0)
+        nonzero = actual != 0
+        parts = pd.DataFrame({
+            "source": source, "lag": lag, "n": 1, "n_zero": (~nonzero).astype(int), "sum_abs": np.abs(error),
+            "sum_sq": error * error, "sum_err": error, "sum_actual": actual, "sum_forecast": forecast,
+            "sum_ape": np.where(nonzero, np.abs(error) / np.where(nonzero, np.abs(actual), 1.0), 0.0),
+            "sum_scaled": np.where(scaled_ok, np.abs(error) / np.where(scaled_ok, scale, 1.0), 0.0),
+            "n_scaled": scaled_ok.astype(int)})
+        for target, codes in ((self._cell_sums, self._segment_codes), (self._pattern_sums, self._pattern_codes)):
+            target.append(parts.assign(group=codes[sid]).groupby(["source", "lag", "group"], sort=True)[SUM_FIELDS]
+                          .sum().reset_index().assign(cycle=name))
+        flat = (source * len(BUCKETS) + bucket) * self._n + sid
+        size = self._cell_acc[0].size
+        for k, values in enumerate((error, np.abs(error), None)):
+            self._cell_acc[k] += np.bincount(flat, weights=values, minlength=size).reshape(self._cell_acc[k].shape)
+        for level, (codes, _) in self._levels.items():
+            node = codes[sid]
+            summed = pd.DataFrame({"source": source, "node": node, "month": month, "forecast": forecast,
+                                   "actual": actual}).groupby(["source", "node", "month"], sort=True)[
+                ["forecast", "actual"]].sum().reset_index()
+            summed["level"] = level
+            summed["cycle"] = name
+            self._nodes.append(summed)
+        for band_source in BAND_SOURCES:
+            code = self._source_code.get(band_source)
+            if code is None:
+                continue
+            mine = (source == code) & (forecast > 0)
+            self._bands.setdefault(band_source, []).append(
+                pd.DataFrame({"lag_bucket": np.asarray(BUCKETS, dtype=object)[bucket[mine]],
+                              "forecast": forecast[mine], "actual": actual[mine]}))
+        self._history.append(parts.groupby("source", sort=True)[["sum_abs", "sum_err", "sum_actual"]].sum()
+                             .reset_index().assign(cycle=name))
+        self._add_fva(name, source, sid, month, forecast, actual)
+        self._add_uplift(source, sid, month, bucket, forecast, actual)
+        if bands is not None and len(bands):
+            self._add_coverage(name, bands)
+        if self.keep_cells:
+            self._cells.append(pd.DataFrame({"source": source, "sid": sid, "cycle": name, "month": month, "lag": lag,
+                                             "forecast": forecast, "actual": actual}))
+
+    def _band_table(self) -> tuple[pd.DataFrame, str]:
+        """Quantiles of the plan's own past relative errors by lag bucket (with the statistical source's while short).
+
+        The consensus's own errors are used once there are at least
+        ``MIN_OWN_BAND_ERRORS`` of them; before that, the statistical
+        source's errors are pooled in (common practice: borrow the nearest
+        comparable forecast's error record rather than invent a band).
+        """
+        from consensus.methods.intervals import band_table
+
+        parts = {s: pd.concat(p, ignore_index=True) for s, p in self._bands.items() if p}
+        own = parts.get("consensus")
+        if own is not None and len(own) >= MIN_OWN_BAND_ERRORS:
+            chosen, source = own, "consensus"
+        else:
+            chosen = pd.concat([p for p in (own, parts.get("statistical")) if p is not None], ignore_index=True) \
+                if parts else pd.DataFrame(columns=["lag_bucket", "forecast", "actual"])
+            source = "consensus and statistical"
+        if chosen.empty:
+            return pd.DataFrame(), "none"
+        return band_table(chosen, levels=self.band_levels), source
+
+    def _cell_key(self, sid: np.ndarray, month: np.ndarray) -> np.ndarray:
+        return sid.astype(np.int64) * 10_000 + (month - self.book.first_month)
+
+    def _add_fva(self, name, source, sid, month, forecast, actual) -> None:
+        """Each step's absolute error on the cells the plan itself forecast (so steps compare on common cells)."""
+        reference_code = self._source_code.get("consensus")
+        if reference_code is None:
+            present = [self._source_code[s] for s in FVA_STEPS if s in self._source_code]
+            reference_code = present[0] if present else None
+        if reference_code is None:
+            return
+        key = self._cell_key(sid, month)
+        in_reference = np.isin(key, key[source == reference_code])
+        for step in FVA_STEPS:
+            code = self._source_code.get(step)
+            if code is None:
+                continue
+            mine = (source == code) & in_reference
+            if mine.any():
+                self._fva.append({"cycle": name, "step": step, "sum_abs": float(np.abs(actual[mine] - forecast[mine])
+                                                                              .sum()),
+                                  "sum_actual": float(actual[mine].sum()), "n": int(mine.sum())})
+
+    def _add_uplift(self, source, sid, month, bucket, forecast, actual) -> None:
+        """Statistical with and without marketing's events, on the cells the events changed."""
+        with_code, without_code = self._source_code.get("statistical"), self._source_code.get("statistical_base")
+        if with_code is None or without_code is None:
+            return
+        key = self._cell_key(sid, month)
+        a = pd.DataFrame({"key": key[source == with_code], "with": forecast[source == with_code],
+                          "actual": actual[source == with_code], "bucket": bucket[source == with_code]})
+        b = pd.DataFrame({"key": key[source == without_code], "without": forecast[source == without_code]})
+        paired = a.merge(b, on="key", how="inner")
+        changed = paired[~np.isclose(paired["with"], paired["without"], rtol=0, atol=1e-9)]
+        if len(changed):
+            self._uplift.append(changed.assign(abs_with=(changed["actual"] - changed["with"]).abs(),
+                                               abs_without=(changed["actual"] - changed["without"]).abs())[
+                ["bucket", "abs_with", "abs_without", "actual"]])
+
+    def _add_coverage(self, name: str, bands: pd.DataFrame) -> None:
+        from consensus.methods.intervals import winkler_score
+
+        book = self.book
+        sid = book.index.get_indexer(pd.MultiIndex.from_frame(bands[["item", "location"]].astype(object)))
+        month = month_indexes_factorized(bands["period"])
+        keep = (sid >= 0) & (month <= self._now) & (month >= book.first_month)
+        actual = book.actual[sid[keep], month[keep] - book.first_month]
+        lag = month[keep] - periods.month_index(name)
+        label = lag_bucket_labels(lag)
+        for nominal in (80, 95):
+            lo = bands[f"lower_{nominal}"].to_numpy(float)[keep] if f"lower_{nominal}" in bands else None
+            if lo is None:
+                continue
+            hi = bands[f"upper_{nominal}"].to_numpy(float)[keep]
+            ok = np.isfinite(actual) & np.isfinite(lo) & np.isfinite(hi)
+            if not ok.any():
+                continue
+            hit = (actual[ok] >= lo[ok]) & (actual[ok] <= hi[ok])
+            score = winkler_score(lo[ok], hi[ok], actual[ok], level=nominal / 100)
+            self._coverage.append(pd.DataFrame({"level": "item", "lag_bucket": label[ok], "nominal": nominal / 100,
+                                                "hit": hit.astype(int), "winkler": score, "n": 1}))
+
+    # -- what the run reads -------------------------------------------------------------------
+
+    def summary(self) -> "HistorySummary":
+        src = np.asarray(self.sources, dtype=object)
+
+        def named(frames: list[pd.DataFrame], names: np.ndarray, column: str) -> pd.DataFrame:
+            if not frames:
+                return pd.DataFrame(columns=["source", "cycle", "lag", "lag_bucket", column, *SUM_FIELDS])
+            out = pd.concat(frames, ignore_index=True)
+            out["source"] = src[out["source"].to_numpy()]
+            out[column] = names[out["group"].to_numpy()]
+            out["lag_bucket"] = lag_bucket_labels(out["lag"].to_numpy())
+            return out.drop(columns="group")[["source", "cycle", "lag", "lag_bucket", column, *SUM_FIELDS]]
+
+        cell_sums = named(self._cell_sums, self._segment_names, "segment")
+        pattern_sums = named(self._pattern_sums, self._pattern_names, "pattern")
+        nodes = []
+        for part in self._nodes:
+            codes, uniques = self._levels[part["level"].iloc[0]]
+            labels = uniques[part["node"].to_numpy()]
+            nodes.append(pd.DataFrame({
+                "level": part["level"].to_numpy(), "source": src[part["source"].to_numpy()],
+                "cycle": part["cycle"].to_numpy(),
+                "node_item": np.array([k[0] for k in labels], dtype=object),
+                "node_location": np.array([k[1] for k in labels], dtype=object),
+                "period": periods.month_names(part["month"].to_numpy()),
+                "lag": part["month"].to_numpy() - month_indexes_factorized(part["cycle"]),
+                "forecast": part["forecast"].to_numpy(), "actual": part["actual"].to_numpy()}))
+        node_errors = (pd.concat(nodes, ignore_index=True) if nodes else pd.DataFrame(columns=NODE_COLUMNS))
+        total, absolute, count = self._cell_acc
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mad = absolute / count
+            signal = np.where(mad > 0, total / np.where(mad > 0, mad, 1.0), 0.0)
+        has = count > 0
+        rows = []
+        for s, name in enumerate(self.sources):
+            for b, bucket in enumerate(BUCKETS):
+                mine = has[s, b]
+                if mine.any():
+                    values = signal[s, b][mine]
+                    rows.append({"source": name, "lag_bucket": bucket, "mean_tracking_signal": float(values.mean()),
+                                 "share_outside_limits": float(np.mean(np.abs(values) > TRACKING_SIGNAL_LIMIT)),
+                                 "n_series": int(mine.sum())})
+        cell_signals = pd.DataFrame(rows, columns=["source", "lag_bucket", "mean_tracking_signal",
+                                                   "share_outside_limits", "n_series"])
+        band_table, band_source = self._band_table()
+        uplift = pd.concat(self._uplift, ignore_index=True) if self._uplift else pd.DataFrame(
+            columns=["bucket", "abs_with", "abs_without", "actual"])
+        cells = None
+        if self.keep_cells and self._cells:
+            raw = pd.concat(self._cells, ignore_index=True)
+            keys = self.book.keys
+            cells = pd.DataFrame({
+                "source": src[raw["source"].to_numpy()], "cycle": raw["cycle"].to_numpy(),
+                "item": keys["item"].to_numpy()[raw["sid"].to_numpy()],
+                "location": keys["location"].to_numpy()[raw["sid"].to_numpy()],
+                "period": periods.month_names(raw["month"].to_numpy()), "lag": raw["lag"].to_numpy(),
+                "lag_bucket": lag_bucket_labels(raw["lag"].to_numpy()), "forecast": raw["forecast"].to_numpy(),
+                "actual": raw["actual"].to_numpy()})
+            cells["error"] = cells["actual"] - cells["forecast"]
+        return HistorySummary(
+            cell_sums=cell_sums, pattern_sums=pattern_sums, node_errors=node_errors, cell_signals=cell_signals,
+            band_table=band_table, band_source=band_source, fva=pd.DataFrame(self._fva, columns=["cycle", "step", "sum_abs", "sum_actual", "n"]),
+            uplift=uplift,
+            history=(pd.concat(self._history, ignore_index=True).assign(
+                source=lambda f: src[f["source"].to_numpy()]) if self._history else
+                pd.DataFrame(columns=["source", "sum_abs", "sum_err", "sum_actual", "cycle"])),
+            coverage=(pd.concat(self._coverage, ignore_index=True) if self._coverage else
+                      pd.DataFrame(columns=["level", "lag_bucket", "nominal", "hit", "winkler", "n"])),
+            cell_errors=cells)
+
+
+@dataclass(frozen=True)
+class HistorySummary:
+    """What a run reads of its past: see the module docstring for each part."""
+
+    cell_sums: pd.DataFrame  # [source, cycle, lag, lag_bucket, segment, *SUM_FIELDS]
+    pattern_sums: pd.DataFrame  # [source, cycle, lag, lag_bucket, pattern, *SUM_FIELDS]
+    node_errors: pd.DataFrame  # NODE_COLUMNS
+    cell_signals: pd.DataFrame  # [source, lag_bucket, mean_tracking_signal, share_outside_limits, n_series]
+    band_table: pd.DataFrame  # intervals.band_table of the band source's relative errors
+    band_source: str
+    fva: pd.DataFrame  # [cycle, step, sum_abs, sum_actual, n]
+    uplift: pd.DataFrame  # [bucket, abs_with, abs_without, actual]
+    history: pd.DataFrame  # [source, cycle, sum_abs, sum_err, sum_actual]
+    coverage: pd.DataFrame  # [level, lag_bucket, nominal, hit, winkler, n]
+    cell_errors: pd.DataFrame | None = None  # forecast_errors' table, only when a reconciliation needs it
+
+    def weight_sums(self) -> pd.DataFrame:
+        """[segment, lag_bucket, source, cycle, n, sum_abs, sum_sq, sum_err] for the weights."""
+        columns = ["segment", "lag_bucket", "source", "cycle"]
+        if self.cell_sums.empty:
+            return pd.DataFrame(columns=columns + ["n", "sum_abs", "sum_sq", "sum_err"])
+        return (self.cell_sums.groupby(columns, sort=True)[["n", "sum_abs", "sum_sq", "sum_err"]].sum()
+                .reset_index())
+
+    def frames(self) -> dict[str, pd.DataFrame]:
+        """Every part as a plain frame (for caching)."""
+        out = {"cell_sums": self.cell_sums, "pattern_sums": self.pattern_sums, "node_errors": self.node_errors,
+               "cell_signals": self.cell_signals, "fva": self.fva, "uplift": self.uplift, "history": self.history,
+               "coverage": self.coverage, "band_table": self.band_table,
+               "band_source": pd.DataFrame({"source": [self.band_source]})}
+        if self.cell_errors is not None:
+            out["cell_errors"] = self.cell_errors
+        return out
+
+    @classmethod
+    def from_frames(cls, frames: dict[str, pd.DataFrame]) -> "HistorySummary":
+        return cls(cell_sums=frames["cell_sums"], pattern_sums=frames["pattern_sums"],
+                   node_errors=frames["node_errors"], cell_signals=frames["cell_signals"],
+                   band_table=frames["band_table"], band_source=str(frames["band_source"]["source"].iloc[0]),
+                   fva=frames["fva"], uplift=frames["uplift"], history=frames["history"],
+                   coverage=frames["coverage"], cell_errors=frames.get("cell_errors"))

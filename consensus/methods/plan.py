@@ -1,0 +1,588 @@
+"""A cycle's plan as one pure computation: inputs and settings in, the whole result out.
+
+:func:`compute_plan` takes everything a run depends on (:class:`PlanInputs`:
+the master data, the order history and the submissions in force at one
+journal position, the earlier cycles' published plans and the meeting's
+decisions) and the run's settings (:class:`RunSpec`), and returns the result
+(:class:`PlanResult`): the consensus of every cell with its bands, the
+weights, the accuracy of every source at every level, the statistical
+method of every series and the component demand.  It reads no store and
+writes no file, so the same inputs give the same numbers, and a published
+plan can be recomputed and compared digit for digit.
+
+Steps, all vectorised over cells:
+
+1. each cycle of the window (the current one and up to ``window_cycles``
+   before it): the statistical and seasonal naive forecasts from the orders
+   known then (:mod:`consensus.methods.statistical`), the human sources
+   aligned and taken from the submissions in force
+   (:mod:`consensus.methods.cycle_sources`), marketing's events applied;
+2. each past cycle scored against the orders that came, and reduced to what
+   the run reads (:mod:`consensus.methods.history`);
+3. weights from those errors (:mod:`consensus.methods.weights`), the
+   combination (:mod:`consensus.methods.combine`), reconciliation
+   (:mod:`consensus.methods.reconciliation`), bands
+   (:mod:`consensus.methods.intervals`) and the meeting's decisions
+   (:mod:`consensus.methods.decisions`);
+4. the plan is stated in thousandths of a unit.
+
+A cache may be passed in: every part it keeps is filed under the digest of
+everything that part read (and :data:`METHOD_VERSION`), so a result from the
+cache is the result the computation would give.  ``jobs`` spreads the
+statistical fits of fixed groups of families over processes; the groups do
+not depend on ``jobs``, so any number of processes gives the same digits.
+"""
+
+from __future__ import annotations
+
+import zlib
+from collections.abc import Callable
+from concurrent.futures import ProcessPoolExecutor
+from dataclasses import asdict, dataclass, field
+from multiprocessing import get_context
+from typing import Protocol
+
+import numpy as np
+import pandas as pd
+
+from consensus import periods
+from consensus.errors import InvalidSpec
+from consensus.methods import cycle_sources as cs
+from consensus.methods import history as hist
+from consensus.methods import scoring
+from consensus.methods.alignment import historical_mix
+from consensus.methods.bom import component_totals, explode_bom
+from consensus.methods.combine import combine_sources
+from consensus.methods.decisions import apply_decisions
+from consensus.methods.intervals import apply_bands, band_columns
+from consensus.methods.reconciliation import DEFAULT_RECONCILIATION, RECONCILIATION_METHODS, reconcile_hierarchy
+from consensus.methods.statistical import forecast_statistical
+from consensus.methods.weights import WeightSpec, estimate_weights_from_sums
+from consensus.store.columnar import digest_of, frame_digest
+from consensus.vocabulary import combined_sources, scored_sources
+
+#: Bump when any step changes the numbers, so cached parts made by older code are never read.
+METHOD_VERSION = "2026.12.1"
+#: The published plan and its bands are stated in thousandths of a unit.
+PLAN_DECIMALS = 3
+#: Fixed groups of families the statistical fits are spread over (independent of the number of processes).
+STATISTICAL_GROUPS = 16
+#: Fewer series than this and the fits stay in one process (starting processes would cost more).
+PARALLEL_MIN_SERIES = 4000
+
+
+@dataclass(frozen=True)
+class RunSpec:
+    """Every setting of a consensus run; stored with the run."""
+
+    weights: WeightSpec = field(default_factory=WeightSpec)
+    band_levels: tuple[float, ...] = (0.8, 0.95)
+    mix_window_months: int = 12
+    reconciliation: str = DEFAULT_RECONCILIATION
+
+    def __post_init__(self) -> None:
+        if self.reconciliation not in RECONCILIATION_METHODS:
+            raise InvalidSpec(f"reconciliation must be one of {', '.join(RECONCILIATION_METHODS)}")
+        levels = tuple(float(level) for level in self.band_levels)
+        if not levels or not all(0 < level < 1 for level in levels):
+            raise InvalidSpec("band levels must lie strictly between 0 and 1")
+        if len({int(round(100 * level)) for level in levels}) != len(levels):
+            raise InvalidSpec(f"band levels {levels} would share column names")
+        object.__setattr__(self, "band_levels", levels)
+        if not isinstance(self.mix_window_months, int) or not 1 <= self.mix_window_months <= 60:
+            raise InvalidSpec("mix window must be 1 to 60 months")
+
+    def to_dict(self) -> dict:
+        out = asdict(self)
+        out["band_levels"] = list(self.band_levels)
+        return out
+
+    @classmethod
+    def from_dict(cls, data: dict) -> "RunSpec":
+        data = dict(data)
+        weights = WeightSpec(**data.pop("weights", {}))
+        if "band_levels" in data:
+            data["band_levels"] = tuple(data["band_levels"])
+        return cls(weights=weights, **data)
+
+
+@dataclass(frozen=True)
+class CycleInputs:
+    """One cycle of the window: its submissions in force and, for a past cycle, its published plan."""
+
+    name: str
+    horizon: int
+    submissions: pd.DataFrame  # accepted forecast and events files: [id, seq, kind, source, scope_detail, months, lines_sha256]
+    published: pd.DataFrame | None = None  # [item, location, period, consensus, lower_80, upper_80, …]
+    published_run: int | None = None
+
+
+@dataclass(frozen=True)
+class PlanInputs:
+    """Everything a run depends on, read at one journal position."""
+
+    cycle: CycleInputs
+    past: tuple[CycleInputs, ...]
+    items: pd.DataFrame
+    locations: pd.DataFrame
+    bom: pd.DataFrame
+    actuals: pd.DataFrame  # monthly orders in force, any months
+    decisions: pd.DataFrame  # the current cycle's decisions in force
+    lines: Callable[[list[str]], dict[str, pd.DataFrame]]  # checked lines of submissions, by their sha256
+    unknown_months: tuple[str, ...] = ()  # months planned as unknown (a cycle opened before its orders were in)
+
+    def master_digest(self) -> str:
+        return digest_of(self.items, self.locations)
+
+    def fingerprint(self, spec: RunSpec) -> str:
+        """A digest of everything the result depends on: same fingerprint, same numbers."""
+        def cycle_part(c: CycleInputs):
+            subs = c.submissions[["seq", "kind", "source", "lines_sha256"]].astype(str).values.tolist()
+            scopes = [str(d) for d in c.submissions["scope_detail"]]
+            published = frame_digest(c.published) if c.published is not None else None
+            return [c.name, c.horizon, subs, scopes, published]
+        decisions = self.decisions.drop(columns=[c for c in ("at",) if c in self.decisions.columns])
+        return digest_of(METHOD_VERSION, spec.to_dict(), cycle_part(self.cycle), [cycle_part(c) for c in self.past],
+                         self.items, self.locations, self.bom, self.actuals, decisions, list(self.unknown_months))
+
+
+class Cache(Protocol):
+    """Where computed parts may be kept: get by key, put with a kind and cycle (for housekeeping)."""
+
+    def get(self, key: str) -> dict[str, pd.DataFrame] | None: ...
+
+    def put(self, key: str, *, kind: str, cycle: str, frames: dict[str, pd.DataFrame]) -> None: ...
+
+
+class NoCache:
+    def get(self, key: str):
+        return None
+
+    def put(self, key: str, *, kind: str, cycle: str, frames) -> None:
+        return None
+
+
+@dataclass
+class PlanResult:
+    """The result of a run: named frames (each stored as one packed part), notes and a summary."""
+
+    parts: dict[str, pd.DataFrame]
+    notes: dict
+    summary: dict
+
+
+# --------------------------------------------------------------------------- order history
+
+
+@dataclass(frozen=True)
+class _History:
+    """The order history as the run reads it: known rows, unknown months, and a digest per cycle."""
+
+    actuals: pd.DataFrame
+    unknown: tuple[str, ...]
+    month_digests: dict[str, str]
+
+    def known_at(self, cycle: str) -> pd.DataFrame:
+        return self.actuals[self.actuals["period"] <= cycle]
+
+    def digest_at(self, cycle: str) -> str:
+        """Digest of the orders known at ``cycle`` (and of which months are unknown), cheap per cycle."""
+        months = [(m, d) for m, d in self.month_digests.items() if m <= cycle]
+        return digest_of(months, [m for m in self.unknown if m <= cycle])
+
+
+def _history(actuals: pd.DataFrame, unknown: tuple[str, ...]) -> _History:
+    frame = actuals[["item", "location", "period", "quantity"]].astype(
+        {"item": object, "location": object, "period": object}).reset_index(drop=True)
+    frame["quantity"] = frame["quantity"].astype(float)
+    hashed = pd.util.hash_pandas_object(frame, index=False).to_numpy()
+    sums = pd.DataFrame({"period": frame["period"], "h": hashed}).groupby("period", sort=True)["h"]
+    digests = {month: f"{int(np.bitwise_xor.reduce(values.to_numpy()))}:{len(values)}"
+               for month, values in sums}
+    return _History(actuals=frame, unknown=tuple(sorted(unknown)), month_digests=digests)
+
+
+# --------------------------------------------------------------------------- statistical source
+
+
+def _statistical_group(families: pd.Series) -> np.ndarray:
+    """A fixed group per family (crc32 of its name), so a family is always fitted whole and in one place."""
+    codes, names = pd.factorize(families.astype(str), sort=False)
+    group_of = np.array([zlib.crc32(str(f).encode("utf-8")) % STATISTICAL_GROUPS for f in names], dtype=int)
+    return group_of[codes] if len(codes) else np.zeros(0, dtype=int)
+
+
+def _fit_group(args) -> tuple:
+    history, cycle, horizon, families = args
+    result = forecast_statistical(history, cycle=cycle, horizon=horizon, families=families)
+    return result.forecast, result.seasonal_naive, result.series
+
+
+def statistical_for_cycle(history: pd.DataFrame, *, cycle: str, horizon: int, items: pd.DataFrame,
+                          unknown: tuple[str, ...] = (), jobs: int = 1,
+                          pool: ProcessPoolExecutor | None = None) -> dict[str, pd.DataFrame]:
+    """The statistical and seasonal naive forecasts of every series from the orders known at ``cycle``.
+
+    Unknown months are given to the fit as missing observations (NaN), never as zero.
+    Returns {"statistical": [item, location, period, quantity], "naive": …, "series": per-series method}.
+    """
+    known = history[history["period"] <= cycle]
+    if known.empty:
+        empty = pd.DataFrame({c: pd.Series(dtype=float if c == "quantity" else object)
+                              for c in ["item", "location", "period", "quantity"]})
+        return {"statistical": empty, "naive": empty.copy(), "series": pd.DataFrame(columns=["item", "location"])}
+    unknown_here = [m for m in unknown if m <= cycle]
+    if unknown_here:
+        pairs = known[["item", "location"]].drop_duplicates()
+        holes = pairs.merge(pd.DataFrame({"period": unknown_here}), how="cross").assign(quantity=np.nan)
+        known = pd.concat([known, holes[known.columns]], ignore_index=True)
+    families = items.drop_duplicates("item").set_index("item")["family"]
+    group = _statistical_group(known["item"].map(families).fillna(""))
+    tasks = [(known[group == g], cycle, horizon, families) for g in np.unique(group)]
+    if pool is not None and len(tasks) > 1:
+        results = list(pool.map(_fit_group, tasks))
+    else:
+        results = [_fit_group(t) for t in tasks]
+    order = ["item", "location", "period"]
+
+    def gather(position: int, columns: list[str]) -> pd.DataFrame:
+        frame = pd.concat([r[position] for r in results], ignore_index=True)
+        frame = frame.sort_values(order[: len([c for c in order if c in frame.columns])], kind="mergesort",
+                                  ignore_index=True)
+        if "quantity" in frame:
+            frame["quantity"] = cs.rounded(frame["quantity"])
+        return frame[columns].reset_index(drop=True)
+
+    return {"statistical": gather(0, ["item", "location", "period", "quantity"]),
+            "naive": gather(1, ["item", "location", "period", "quantity"]),
+            "series": gather(2, list(results[0][2].columns))}
+
+
+# --------------------------------------------------------------------------- one cycle's sources
+
+
+@dataclass
+class _Context:
+    inputs: PlanInputs
+    spec: RunSpec
+    history: _History
+    cache: Cache
+    pool: ProcessPoolExecutor | None
+    progress: Callable[[str], None]
+    warnings: list[str] = field(default_factory=list)
+    made: list[str] = field(default_factory=list)
+
+
+def _known_lines(lines: pd.DataFrame, items: pd.DataFrame, locations: pd.DataFrame) -> tuple[pd.DataFrame, int]:
+    """Lines whose item, family, location and region are all in the master in force (the rest are left out)."""
+    ok = np.ones(len(lines), dtype=bool)
+    for column, known in (("item", items["item"]), ("family", items["family"]), ("location", locations["location"]),
+                          ("region", locations["region"])):
+        if column in lines:
+            values = lines[column]
+            ok &= (values.isna() | values.isin(set(known))).to_numpy()
+    return lines[ok], int((~ok).sum())
+
+
+def _cycle_lines(ctx: _Context, c: CycleInputs, kind: str) -> pd.DataFrame:
+    subs = c.submissions[c.submissions["kind"] == kind]
+    if subs.empty:
+        return pd.DataFrame()
+    found = ctx.inputs.lines([s for s in subs["lines_sha256"] if isinstance(s, str)])
+    parts = []
+    for sub in subs.itertuples(index=False):
+        frame = found[sub.lines_sha256]
+        if "cycle" in frame:
+            frame = frame[frame["cycle"] == c.name]
+        parts.append(frame.assign(seq=int(sub.seq), submission_id=int(sub.id), source=sub.source))
+    return pd.concat(parts, ignore_index=True) if parts else pd.DataFrame()
+
+
+def _statistical(ctx: _Context, c: CycleInputs) -> dict[str, pd.DataFrame]:
+    items = ctx.inputs.items
+    key = digest_of("statistical", METHOD_VERSION, c.name, c.horizon, ctx.history.digest_at(c.name),
+                    items[["item", "family"]])
+    found = ctx.cache.get(key)
+    if found is not None:
+        return found
+    ctx.progress(f"statistical forecast {c.name}")
+    made = statistical_for_cycle(ctx.history.actuals, cycle=c.name, horizon=c.horizon, items=items,
+                                 unknown=ctx.history.unknown, pool=ctx.pool)
+    ctx.cache.put(key, kind="statistical", cycle=c.name, frames=made)
+    ctx.made.append(c.name)
+    return made
+
+
+def _human_sources(ctx: _Context, c: CycleInputs) -> pd.DataFrame:
+    """A cycle's submitted sources at planning grain, in force; cached under everything they read."""
+    inputs, spec = ctx.inputs, ctx.spec
+    forecasts = c.submissions[c.submissions["kind"] == "forecast"]
+    key = digest_of("aligned", METHOD_VERSION, c.name, forecasts[["seq", "source", "lines_sha256"]].astype(str)
+                    .values.tolist(), [str(d) for d in forecasts["scope_detail"]],
+                    [list(m or []) for m in forecasts["months"]], ctx.history.digest_at(c.name),
+                    inputs.master_digest(), spec.mix_window_months)
+    found = ctx.cache.get(key)
+    if found is not None:
+        ctx.warnings += found["warnings"]["text"].tolist()
+        return found["aligned"]
+    ctx.progress(f"align {c.name}")
+    lines = _cycle_lines(ctx, c, "forecast")
+    aligned, warnings = _align(lines, forecasts, c.name, inputs, ctx.history, spec.mix_window_months)
+    ctx.cache.put(key, kind="aligned", cycle=c.name,
+                  frames={"aligned": aligned, "warnings": pd.DataFrame({"text": warnings}, dtype=object)})
+    ctx.warnings += warnings
+    return aligned
+
+
+def _align(lines: pd.DataFrame, forecasts: pd.DataFrame, cycle: str, inputs: PlanInputs, history: _History,
+           mix_window: int, *, with_traces: bool = False):
+    empty = pd.DataFrame({c: pd.Series(dtype=float if c == "quantity" else object) for c in cs.ALIGNED_COLUMNS})
+    if lines.empty:
+        return (empty, [], None) if with_traces else (empty, [])
+    lines, dropped = _known_lines(lines, inputs.items, inputs.locations)
+    warnings = []
+    if dropped:
+        warnings.append(f"cycle {cycle}: {dropped:,} submitted row(s) name items, families, locations or regions "
+                        "no longer in the master data; they are left out")
+    known = history.known_at(cycle)
+    known = known[known["quantity"].notna()]
+    mix = historical_mix(known[known["item"].isin(set(inputs.items["item"])) &
+                               known["location"].isin(set(inputs.locations["location"]))],
+                         items=inputs.items, locations=inputs.locations, cycle=cycle, window_months=mix_window)
+    per_submission, align_warnings, traces = cs.align_submissions(
+        lines, cycle=cycle, items=inputs.items, locations=inputs.locations, mix=mix, with_traces=with_traces)
+    covered = cs.declared_cells(forecasts, items=inputs.items, locations=inputs.locations)
+    aligned = cs.sources_in_force(per_submission, covered)
+    warnings += align_warnings
+    if with_traces:
+        return aligned, warnings, (traces, per_submission, covered)
+    return aligned, warnings
+
+
+def _events(ctx: _Context, c: CycleInputs) -> pd.DataFrame:
+    lines = _cycle_lines(ctx, c, "events")
+    if lines.empty:
+        return lines
+    lines, _ = _known_lines(lines, ctx.inputs.items, ctx.inputs.locations)
+    return cs.events_in_force(lines, c.submissions[c.submissions["kind"] == "events"])
+
+
+def cycle_frame(ctx: _Context, c: CycleInputs) -> tuple[pd.DataFrame, dict[str, pd.DataFrame]]:
+    """[source, item, location, period, lag, quantity] of every source of one cycle, and its statistical parts."""
+    stat = _statistical(ctx, c)
+    human = _human_sources(ctx, c)
+    horizon = set(periods.horizon_months(c.name, c.horizon))
+    human = human[human["period"].isin(horizon)]
+    statistical = stat["statistical"]
+    # A cell that only people forecast (an item with no orders yet) gets a statistical forecast of 0.
+    known = pd.MultiIndex.from_frame(statistical[["item", "location", "period"]])
+    cells = human[["item", "location", "period"]].drop_duplicates()
+    new = cells[~pd.MultiIndex.from_frame(cells).isin(known)]
+    if len(new):
+        statistical = pd.concat([statistical, new.assign(quantity=0.0)], ignore_index=True).sort_values(
+            ["item", "location", "period"], kind="mergesort", ignore_index=True)
+    with_events, _, event_warnings = cs.apply_events(statistical, _events(ctx, c), items=ctx.inputs.items,
+                                                     locations=ctx.inputs.locations)
+    ctx.warnings += [f"cycle {c.name}: {w}" for w in event_warnings]
+    frame = pd.concat([human, with_events, stat["naive"].assign(source=cs.NAIVE)[cs.ALIGNED_COLUMNS]],
+                      ignore_index=True)
+    frame = frame[frame["period"].isin(horizon)]
+    frame = frame.assign(lag=periods.lags(pd.Series(c.name, index=frame.index), frame["period"]))
+    return frame.reset_index(drop=True), stat
+
+
+# --------------------------------------------------------------------------- the run
+
+
+def _history_summary(ctx: _Context, patterns: pd.DataFrame) -> hist.HistorySummary:
+    inputs, spec = ctx.inputs, ctx.spec
+    cycle = inputs.cycle.name
+    keep_cells = spec.reconciliation != "bottom_up"
+    past_keys = []
+    for c in inputs.past:
+        forecasts = c.submissions[["seq", "kind", "source", "lines_sha256"]].astype(str).values.tolist()
+        past_keys.append([c.name, c.horizon, forecasts, [str(d) for d in c.submissions["scope_detail"]],
+                          frame_digest(c.published) if c.published is not None else None])
+    key = digest_of("history", METHOD_VERSION, cycle, past_keys, ctx.history.digest_at(cycle),
+                    inputs.master_digest(), spec.mix_window_months, spec.weights.segment, keep_cells,
+                    list(spec.band_levels), frame_digest(patterns))
+    found = ctx.cache.get(key)
+    if found is not None:
+        return hist.HistorySummary.from_frames(found)
+    book = hist.build_series_book(ctx.history.actuals[ctx.history.actuals["quantity"].notna()], items=inputs.items,
+                                  locations=inputs.locations, cycle=cycle, unknown_months=ctx.history.unknown,
+                                  patterns=patterns)
+    ledger = hist.HistoryLedger(book=book, cycle=cycle, segment=spec.weights.segment,
+                                sources=tuple(scored_sources()), keep_cells=keep_cells,
+                                band_levels=spec.band_levels)
+    for c in inputs.past:
+        frame, _ = cycle_frame(ctx, c)
+        frame = frame[frame["period"] <= cycle]
+        published = None
+        if c.published is not None and len(c.published):
+            published = c.published[c.published["period"] <= cycle]
+            frame = pd.concat([frame, published[["item", "location", "period", "consensus"]]
+                               .rename(columns={"consensus": "quantity"}).assign(source="consensus")],
+                              ignore_index=True)
+        ctx.progress(f"score {c.name}")
+        ledger.add_cycle(c.name, frame, bands=published)
+    summary = ledger.summary()
+    ctx.cache.put(key, kind="history", cycle=cycle, frames=summary.frames())
+    return summary
+
+
+def compute_plan(inputs: PlanInputs, spec: RunSpec | None = None, *, cache: Cache | None = None, jobs: int = 1,
+                 progress: Callable[[str], None] | None = None) -> PlanResult:
+    """The plan of ``inputs.cycle``: see the module docstring."""
+    spec = spec or RunSpec()
+    if not isinstance(spec, RunSpec):
+        raise InvalidSpec("spec must be a RunSpec")
+    if not isinstance(jobs, int) or jobs < 1:
+        raise InvalidSpec(f"jobs must be a whole number ≥ 1, got {jobs!r}")
+    series_count = inputs.actuals[["item", "location"]].drop_duplicates().shape[0] if len(inputs.actuals) else 0
+    pool = None
+    if jobs > 1 and series_count >= PARALLEL_MIN_SERIES:
+        pool = ProcessPoolExecutor(max_workers=jobs, mp_context=get_context("fork"))
+    try:
+        ctx = _Context(inputs=inputs, spec=spec, history=_history(inputs.actuals, inputs.unknown_months),
+                       cache=cache or NoCache(), pool=pool, progress=progress or (lambda _m: None))
+        return _compute(ctx)
+    finally:
+        if pool is not None:
+            pool.shutdown()
+
+
+def _compute(ctx: _Context) -> PlanResult:
+    inputs, spec = ctx.inputs, ctx.spec
+    cycle = inputs.cycle
+    current, stat = cycle_frame(ctx, cycle)
+    present = [s for s in combined_sources() if s in set(current["source"])]
+    combined_rows = current[current["source"].isin(present)]
+    if combined_rows.empty:
+        raise InvalidSpec(f"cycle {cycle.name} has no forecast from any source and no order history")
+    summary = _history_summary(ctx, stat["series"][["item", "location", "pattern"]]
+                               if "pattern" in stat["series"] else pd.DataFrame(columns=["item", "location",
+                                                                                         "pattern"]))
+    ctx.progress("weights")
+    segments = _segments(spec.weights.segment, inputs.items, inputs.locations)
+    weights = estimate_weights_from_sums(summary.weight_sums(), cycle=cycle.name, segments=segments,
+                                         spec=spec.weights, sources=present)
+    combined = combine_sources(combined_rows, weights, items=inputs.items, locations=inputs.locations,
+                               spec=spec.weights)
+    table = combined.consensus
+    reconciled = reconcile_hierarchy(table, combined_rows, summary.cell_errors if summary.cell_errors is not None
+                                     else _no_errors(), items=inputs.items, locations=inputs.locations,
+                                     method=spec.reconciliation, weight_spec=spec.weights, cycle=cycle.name,
+                                     actuals=inputs.actuals[inputs.actuals["quantity"].notna()])
+    table = reconciled.consensus
+    ctx.progress("error bands")
+    bands = band_columns(spec.band_levels)
+    table = apply_bands(table, summary.band_table, levels=spec.band_levels) if len(summary.band_table) else \
+        table.assign(**{c: np.nan for c in bands}, band_method="no error history yet")
+    table, applied = apply_decisions(table, inputs.decisions, items=inputs.items, locations=inputs.locations,
+                                     band_columns=bands)
+    for column in ["consensus", *bands]:
+        table[column] = np.round(table[column].astype(float), PLAN_DECIMALS) + 0.0
+    cells = _cells_part(table, combined_rows, present, bands)
+    components = component_totals(explode_bom(cells.rename(columns={"consensus": "quantity"})[
+        ["item", "period", "quantity"]], inputs.bom)) if len(inputs.bom) else pd.DataFrame(
+        columns=["component", "period", "quantity"])
+    parts = {"cells": cells, "weights": combined.weights, "series": stat["series"], "components": components,
+             "band_table": summary.band_table}
+    parts.update(scoring.scorecards(summary, items=inputs.items, locations=inputs.locations,
+                                    actuals=ctx.history.known_at(cycle.name)))
+    notes = {"warnings": list(dict.fromkeys(ctx.warnings)), "decisions_applied": applied,
+             "reconciliation": reconciled.notes, "statistical_made": ctx.made, "band_source": summary.band_source,
+             "unknown_months": list(inputs.unknown_months), "method_version": METHOD_VERSION}
+    summary_line = {"cells": int(len(cells)), "total": float(cells["consensus"].sum()), "sources": present,
+                    "flagged": int(cells["flagged"].sum())}
+    return PlanResult(parts=parts, notes=notes, summary=summary_line)
+
+
+def _no_errors() -> pd.DataFrame:
+    return pd.DataFrame({c: pd.Series(dtype=float if c in ("forecast", "actual", "error") else object)
+                         for c in ["source", "cycle", "item", "location", "period", "lag", "lag_bucket", "forecast",
+                                   "actual", "error"]})
+
+
+def _segments(segment: str, items: pd.DataFrame, locations: pd.DataFrame) -> list:
+    if segment == "all":
+        return ["all"]
+    if segment == "item":
+        return sorted(items["item"].astype(str))
+    if segment == "family":
+        return sorted(items["family"].astype(str).unique())
+    return sorted(locations["region"].astype(str).unique())
+
+
+#: The cell columns a run stores (the source values ride along, one column per combined source).
+CELL_COLUMNS = ["item", "location", "period", "consensus", "band_method", "combined", "reconciliation_adjustment",
+                "before_override", "n_sources", "missing_sources", "spread", "spread_ratio", "flagged"]
+
+
+def _cells_part(table: pd.DataFrame, rows: pd.DataFrame, present: list[str], bands: list[str]) -> pd.DataFrame:
+    """The stored cells: the plan, its bands, how it was reached, and each combined source's value."""
+    out = table.rename(columns={"before_reconciliation": "combined"})
+    out = out[[c for c in CELL_COLUMNS[:4]] + bands + CELL_COLUMNS[4:]].copy()
+    out["combined"] = np.round(out["combined"].astype(float), cs.QUANTITY_DECIMALS) + 0.0
+    out["reconciliation_adjustment"] = np.round(out["reconciliation_adjustment"].astype(float),
+                                                cs.QUANTITY_DECIMALS) + 0.0
+    out["spread"] = np.round(out["spread"].astype(float), cs.QUANTITY_DECIMALS) + 0.0
+    out["spread_ratio"] = np.round(out["spread_ratio"].astype(float), cs.QUANTITY_DECIMALS) + 0.0
+    out["n_sources"] = out["n_sources"].astype(np.int8)
+    out["flagged"] = out["flagged"].astype(bool)
+    out = out.sort_values(["item", "location", "period"], kind="mergesort", ignore_index=True)
+    cell_index = pd.MultiIndex.from_frame(out[["item", "location", "period"]].astype(object))
+    for source in present:
+        mine = rows[rows["source"] == source]
+        values = np.full(len(out), np.nan)
+        where = cell_index.get_indexer(pd.MultiIndex.from_frame(mine[["item", "location", "period"]].astype(object)))
+        values[where[where >= 0]] = mine["quantity"].to_numpy(float)[where >= 0]
+        out[f"value_{source}"] = values
+    return out
+
+
+# --------------------------------------------------------------------------- the trail of one cell
+
+
+def trace_cell(inputs: PlanInputs, spec: RunSpec, *, item: str, location: str, period: str) -> pd.DataFrame:
+    """How each submitted row reached one cell of the current cycle, and which submission is in force there.
+
+    Recomputed from the stored inputs with the run's own alignment, for the
+    rows that can reach the cell (its item or family, its location or region,
+    or all).  Returns TRACE_COLUMNS of :mod:`consensus.methods.cycle_sources`
+    and ``in_force`` (the row belongs to the submission whose value the run used).
+    """
+    c = inputs.cycle
+    items, locations = inputs.items, inputs.locations
+    family = items.loc[items["item"] == item, "family"]
+    region = locations.loc[locations["location"] == location, "region"]
+    ctx = _Context(inputs=inputs, spec=spec, history=_history(inputs.actuals, inputs.unknown_months),
+                   cache=NoCache(), pool=None, progress=lambda _m: None)
+    lines = _cycle_lines(ctx, c, "forecast")
+    columns = cs.TRACE_COLUMNS + ["in_force"]
+    if lines.empty or family.empty or region.empty:
+        return pd.DataFrame(columns=columns)
+    lines = cs._for_columns(lines)
+    product = (lines["item"] == item) | (lines["item"].isna() & (lines["family"].isna() |
+                                                                 (lines["family"] == family.iloc[0])))
+    place = (lines["location"] == location) | (lines["location"].isna() & (lines["region"].isna() |
+                                                                           (lines["region"] == region.iloc[0])))
+    forecasts = c.submissions[c.submissions["kind"] == "forecast"]
+    aligned, _, (traces, per_submission, covered) = _align(lines[product & place], forecasts, c.name, inputs,
+                                                           ctx.history, spec.mix_window_months, with_traces=True)
+    at_cell = lambda f: f[(f["item"] == item) & (f["location"] == location) & (f["period"] == period)]  # noqa: E731
+    mine = at_cell(traces)
+    candidates = pd.concat([at_cell(per_submission)[["seq", "source"]], at_cell(covered)[["seq", "source"]]])
+    winners = candidates.groupby("source")["seq"].max()
+    mine = mine.assign(in_force=mine["seq"].to_numpy() == mine["source"].map(winners).to_numpy())
+    return mine.sort_values(["source", "seq", "row"], kind="mergesort")[columns].reset_index(drop=True)
+
+
+def current_sources(inputs: PlanInputs, spec: RunSpec | None = None) -> pd.DataFrame:
+    """Every source of the current cycle at planning grain, as the run would combine them (nothing cached)."""
+    spec = spec or RunSpec()
+    ctx = _Context(inputs=inputs, spec=spec, history=_history(inputs.actuals, inputs.unknown_months),
+                   cache=NoCache(), pool=None, progress=lambda _m: None)
+    frame, _ = cycle_frame(ctx, inputs.cycle)
+    return frame
