@@ -76,6 +76,11 @@ def source_label(key: str) -> str:
     return source(key).label
 
 
+def source_short(key: str) -> str:
+    """The short name for narrow tables (printed with a legend)."""
+    return source(key).short
+
+
 def submitted_sources() -> tuple[str, ...]:
     """Sources that arrive in files, in display order."""
     return tuple(s.key for s in sorted(SOURCES, key=lambda s: s.order) if s.submitted)
@@ -94,3 +99,26 @@ def scored_sources() -> tuple[str, ...]:
 def ordered(keys) -> list[str]:
     """Source keys in display order (unknown keys last, alphabetically)."""
     return sorted(dict.fromkeys(keys), key=lambda k: (source(k).order, k))
+
+
+_METHOD_LABELS = {
+    "naive": "naive (last month)", "seasonal_naive": "seasonal naive", "moving_average": "moving average",
+    "ses": "simple exponential smoothing", "croston": "Croston", "sba": "Syntetos–Boylan (SBA)",
+    "holt_damped": "damped Holt", "holt": "Holt", "holt_winters_add": "Holt–Winters, additive season",
+    "holt_winters_mul": "Holt–Winters, multiplicative season", "new_item_profile": "new-item profile",
+    "zero_demand": "zero demand",
+}
+
+
+def method_label(key: str) -> str:
+    """The statistical method's name as a planner reads it."""
+    return _METHOD_LABELS.get(str(key), str(key).replace("_", " "))
+
+
+def describe_change(kind: str, amount: float) -> str:
+    """A decision in words: 'set to 240', '+40 units', '+8%'."""
+    if kind == "set":
+        return f"set to {amount:,.0f}"
+    if kind == "pct":
+        return f"{amount:+g}%"
+    return f"{amount:+,.0f} units"

@@ -1,4 +1,11 @@
-"""Backcasts: the statistical forecast each past cycle would have had, from the data known then."""
+"""Past cycles for the accuracy record: opened with no submissions, so their statistical forecast counts.
+
+A new store has no forecasts from earlier months, so nobody's accuracy can be
+measured yet.  Opening the past cycles lets every run make, for each of them,
+the statistical forecast the method would have given from the orders known
+then (the run keeps those in its cache), so the statistical source has an
+accuracy record from the first real cycle.
+"""
 
 from __future__ import annotations
 
@@ -7,24 +14,24 @@ from consensus.errors import ConsensusError
 from consensus.store import frames
 from consensus.store.db import session_scope
 from consensus.store.models import Cycle
-from consensus.workflow.statistical_source import ensure_statistical
+from consensus.workflow.cycles import open_cycle
 
 
-def backcast_cycles(first: str, last: str, *, horizon: int = 18, url=None) -> list[dict]:
-    """Open any missing cycle from ``first`` to ``last`` and make its statistical source (idempotent)."""
+def open_past_cycles(first: str, last: str, *, horizon: int = 18, url=None) -> list[dict]:
+    """Open every cycle from ``first`` to ``last`` that is not open yet (idempotent)."""
+    for name in (first, last):
+        if not periods.is_month(name):
+            raise ConsensusError(f"--from and --to must be months in YYYY-MM form, not {name!r}")
     if periods.month_index(first) > periods.month_index(last):
         raise ConsensusError(f"--from {first} is after --to {last}")
+    with session_scope(url, write=False) as session:
+        actuals = frames.load_actuals(session)
+    if actuals.empty:
+        raise ConsensusError("no order history loaded; load it with 'consensus actuals FILE'")
     done = []
-    with session_scope(url) as session:
-        items = frames.load_items(session)
-        actuals = frames.load_actuals(session, through=last)
-        if actuals.empty:
-            raise ConsensusError("no order history loaded; load it with 'consensus actuals FILE'")
-        for name in periods.month_range(first, last):
-            cycle = session.get(Cycle, name)
-            if cycle is None:
-                cycle = Cycle(name=name, horizon=horizon)
-                session.add(cycle)
-                session.flush()
-            done.append(ensure_statistical(session, cycle, actuals=actuals, items=items))
+    for name in periods.month_range(first, last):
+        with session_scope(url, write=False) as session:
+            already = session.get(Cycle, name) is not None
+        open_cycle(name, horizon=horizon, url=url)
+        done.append({"cycle": name, "opened": not already})
     return done

@@ -1,32 +1,55 @@
-"""The review meeting's decisions: overrides with a reason and an author, applied on top of the computed consensus.
+"""The review meeting's decisions: recorded with a reason and an author, withdrawn the same way, applied by the run.
 
-A decision names a scope (an item or a family, at a location, a region or all
-locations) and a month.  Set, delta and percent changes apply to the scope's
-total and spread to its cells by the consensus mix of that month, so a family
-override keeps the items' proportions (a cell with no consensus in an all-zero
-scope gets an equal share).
+Every decision and every withdrawal is a journal entry, so the log keeps both
+and a run applies exactly the decisions in force when it read its inputs
+(:func:`consensus.workflow.inputs.decisions_in_force`; the arithmetic is in
+:mod:`consensus.methods.decisions`).  A published cycle takes no decisions.
 """
 
 from __future__ import annotations
 
-import numpy as np
+import math
+
 import pandas as pd
 from sqlalchemy import select
 
 from consensus import periods
-from consensus.errors import ConsensusError
-from consensus.store import frames
+from consensus.errors import ConsensusError, CycleStateError, NotFound
+from consensus.methods.decisions import DECISION_COLUMNS, KINDS, decision_scope
+from consensus.store import frames, journal
 from consensus.store.db import session_scope
-from consensus.store.models import Decision
-from consensus.workflow.cycles import get_cycle
+from consensus.store.models import Decision, utcnow
 
-KINDS = ("set", "delta", "pct")
+#: Largest number a decision may set or add, in units (the intake limit for quantities).
+MAX_UNITS = 1e9
+
+__all__ = ["record_decision", "withdraw_decision", "load_decisions", "decision_scope", "KINDS"]
+
+
+def _check_amount(kind: str, amount: float) -> float:
+    try:
+        amount = float(amount)
+    except (TypeError, ValueError):
+        raise ConsensusError(f"the amount must be a number, not {amount!r}") from None
+    if not math.isfinite(amount):
+        raise ConsensusError(f"the amount must be a finite number, not {amount}")
+    if kind == "set" and amount < 0:
+        raise ConsensusError("a set decision cannot make demand negative")
+    if kind == "pct" and amount < -100:
+        raise ConsensusError(f"--pct {amount:g} would make demand negative; the smallest change is -100 (to zero)")
+    if kind in ("set", "delta") and abs(amount) > MAX_UNITS:
+        raise ConsensusError(f"{amount:g} units is beyond the plausible limit of {MAX_UNITS:,.0f}")
+    if kind == "pct" and amount > 10_000:
+        raise ConsensusError(f"--pct {amount:g} is beyond the plausible limit of 10,000%")
+    return amount
 
 
 def record_decision(cycle: str, *, period: str, amount: float, reason: str, author: str, kind: str = "set",
                     item: str | None = None, family: str | None = None, location: str | None = None,
                     region: str | None = None, url=None) -> Decision:
-    """Store one decision after checking that its scope exists and it has a reason."""
+    """Store one decision after checking that its scope exists, the cycle is open and it has a reason."""
+    from consensus.intake.submission import require_open
+
     if kind not in KINDS:
         raise ConsensusError(f"kind must be one of {', '.join(KINDS)}, not {kind!r}")
     if not reason.strip() or not author.strip():
@@ -35,10 +58,11 @@ def record_decision(cycle: str, *, period: str, amount: float, reason: str, auth
         raise ConsensusError("name exactly one of --item or --family")
     if location is not None and region is not None:
         raise ConsensusError("name at most one of --location or --region")
-    if kind == "set" and amount < 0:
-        raise ConsensusError("a set decision cannot make demand negative")
+    amount = _check_amount(kind, amount)
+    if not periods.is_month(period):
+        raise ConsensusError(f"--period must be a month in YYYY-MM form, not {period!r}")
     with session_scope(url) as session:
-        c = get_cycle(session, cycle)
+        c = require_open(session, cycle)
         if period not in periods.horizon_months(c.name, c.horizon):
             raise ConsensusError(f"period {period} is outside cycle {cycle}'s horizon")
         items, locations = frames.load_items(session), frames.load_locations(session)
@@ -46,64 +70,47 @@ def record_decision(cycle: str, *, period: str, amount: float, reason: str, auth
                                      (location, "location", locations), (region, "region", locations)):
             if value is not None and value not in set(frame[column]):
                 raise ConsensusError(f"unknown {column} {value!r}")
-        decision = Decision(cycle=cycle, period=period, amount=float(amount), reason=reason.strip(),
+        decision = Decision(cycle=cycle, revision=c.revision, period=period, amount=amount, reason=reason.strip(),
                             author=author.strip(), kind=kind, item=item, family=family, location=location,
-                            region=region)
+                            region=region, at=utcnow())
         session.add(decision)
         session.flush()
+        decision.seq = journal.record(session, "decision", decision, cycle=cycle).seq
+        session.add(decision)
         return decision
 
 
-def load_decisions(session, cycle: str) -> pd.DataFrame:
-    columns = ["id", "at", "author", "item", "family", "location", "region", "period", "kind", "amount", "reason"]
+def withdraw_decision(decision_id: int, *, reason: str, by: str, url=None) -> Decision:
+    """Withdraw a decision of an open cycle; it stays in the log, marked withdrawn, and stops applying."""
+    from consensus.intake.submission import require_open
+
+    if not reason.strip() or not by.strip():
+        raise ConsensusError("withdrawing a decision needs --reason and --by")
+    with session_scope(url) as session:
+        decision = session.get(Decision, int(decision_id))
+        if decision is None:
+            raise NotFound(f"there is no decision #{decision_id}")
+        if decision.withdrawn_at is not None:
+            raise CycleStateError(f"decision #{decision_id} was already withdrawn by {decision.withdrawn_by}")
+        require_open(session, decision.cycle)
+        decision.withdrawn_at, decision.withdrawn_by, decision.withdrawn_reason = utcnow(), by.strip(), reason.strip()
+        session.add(decision)
+        session.flush()
+        decision.withdrawn_seq = journal.record(session, "withdrawal", decision, cycle=decision.cycle).seq
+        session.add(decision)
+        return decision
+
+
+def load_decisions(session, cycle: str, *, through: int | None = None) -> pd.DataFrame:
+    """Every decision of the cycle (withdrawn ones included, with who withdrew them and why)."""
     d = Decision.__table__
-    return frames.read_frame(session, select(*[d.c[c] for c in columns]).where(d.c.cycle == cycle).order_by(d.c.id),
-                             columns)
-
-
-def decision_scope(decisions: pd.DataFrame) -> pd.Series:
-    """Each decision's scope in words, e.g. 'family SPRINKLERS × region SOUTH'."""
-    product = np.where(decisions["item"].notna(), "item " + decisions["item"].astype(str),
-                       "family " + decisions["family"].astype(str))
-    place = np.where(decisions["location"].notna(), " × " + decisions["location"].astype(str),
-                     np.where(decisions["region"].notna(), " × region " + decisions["region"].astype(str), ""))
-    return pd.Series(product + place, index=decisions.index)
-
-
-def apply_decisions(session, cycle: str, table: pd.DataFrame, *, items: pd.DataFrame,
-                    locations: pd.DataFrame) -> tuple[pd.DataFrame, list[dict]]:
-    """Apply the cycle's decisions in the order they were made; keep the computed number as ``before_override``."""
-    found = load_decisions(session, cycle)
-    table = table.copy()
-    table["before_override"] = np.nan
-    if found.empty:
-        return table, []
-    cells = table.merge(items[["item", "family"]], on="item").merge(locations[["location", "region"]], on="location")
-    applied = []
-    for d in found.itertuples(index=False):  # a handful of decisions, each vectorised over its cells
-        mask = (cells["period"] == d.period).to_numpy().copy()
-        for column in ("item", "family", "location", "region"):
-            value = getattr(d, column)
-            if value is not None and not pd.isna(value):
-                mask &= (cells[column] == value).to_numpy()
-        if not mask.any():
-            applied.append({"id": int(d.id), "cells": 0, "note": "no consensus cells in scope"})
-            continue
-        before = cells.loc[mask, "consensus"].to_numpy(dtype=float)
-        total = before.sum()
-        target = {"set": d.amount, "delta": total + d.amount, "pct": total * (1 + d.amount / 100.0)}[d.kind]
-        target = max(target, 0.0)
-        shares = before / total if total > 0 else np.full(len(before), 1.0 / len(before))
-        after = target * shares
-        first_touch = cells.loc[mask, "before_override"].isna().to_numpy()
-        idx = cells.index[mask]
-        cells.loc[idx[first_touch], "before_override"] = before[first_touch]
-        cells.loc[idx, "consensus"] = after
-        ratio = np.divide(after, before, out=np.ones_like(after), where=before > 0)
-        shift = np.where(before > 0, 0.0, after - before)  # a band around zero moves with the new number
-        for lo, hi in (("lower_80", "upper_80"), ("lower_95", "upper_95")):
-            if lo in cells.columns:  # the band moves with the number it surrounds
-                cells.loc[idx, lo] = np.maximum(cells.loc[idx, lo].to_numpy(dtype=float) * ratio + shift, 0.0)
-                cells.loc[idx, hi] = cells.loc[idx, hi].to_numpy(dtype=float) * ratio + shift
-        applied.append({"id": int(d.id), "cells": int(mask.sum()), "before": float(total), "after": float(target)})
-    return cells.drop(columns=["family", "region"]), applied
+    columns = [*DECISION_COLUMNS, "revision", "seq", "withdrawn_at", "withdrawn_by", "withdrawn_reason",
+               "withdrawn_seq"]
+    statement = select(*[d.c[c] for c in columns]).where(d.c.cycle == cycle)
+    if through is not None:
+        statement = statement.where(d.c.seq <= through)
+    frame = frames.read_frame(session, statement.order_by(d.c.id), columns)
+    if through is not None and len(frame):
+        late = pd.to_numeric(frame["withdrawn_seq"]) > through
+        frame.loc[late, ["withdrawn_at", "withdrawn_by", "withdrawn_reason", "withdrawn_seq"]] = None
+    return frame

@@ -13,7 +13,7 @@ from consensus.intake.submission import load_actuals_file, load_master_file, sub
 from consensus.resources import sample_inputs_dir
 from consensus.store.db import get_engine, session_scope
 from consensus.store.models import Setting
-from consensus.workflow.backcast import backcast_cycles
+from consensus.workflow.backcast import open_past_cycles
 from consensus.workflow.cycles import open_cycle
 from consensus.workflow.decisions import record_decision
 from consensus.workflow.meeting_pack import write_pack
@@ -45,37 +45,44 @@ def run_demo(workdir: Path | str, *, inputs: Path | None = None,
     with session_scope(url) as session:
         session.add(Setting(key="company", value=manifest["company"]))
     current, horizon = manifest["current_cycle"], int(manifest.get("horizon", 18))
-    for name in [*manifest["past_cycles"], current]:
-        open_cycle(name, horizon=horizon, url=url)
-    for entry in manifest["files"]:
-        path = inputs / entry["path"]
+    first_files = [e for e in manifest["files"] if e["kind"] in ("items", "locations", "bom", "actuals")]
+    for entry in first_files:  # master data and order history first: a cycle is opened on known orders
         tell(f"intake {entry['path']}")
-        kind, by = entry["kind"], entry.get("submitted_by", "")
-        if kind in ("items", "locations", "bom"):
-            outcome = load_master_file(path, kind=kind, url=url, submitted_by=by)
-        elif kind == "actuals":
+        kind, by, path = entry["kind"], entry.get("submitted_by", ""), inputs / entry["path"]
+        if kind == "actuals":
             outcome = load_actuals_file(path, url=url, submitted_by=by)
         else:
-            try:
-                outcome = submit_file(path, url=url, source=entry.get("source"), cycle=entry.get("cycle"),
-                                      submitted_by=by)
-            except InputRejected as error:
-                if entry.get("expect") != "rejected":
-                    raise
-                # the sample company's broken file shows what a rejection looks like, and that nothing changes
-                say(error.summary(limit=6))
-                say(f"  (kept as rejected submission #{error.submission_id}; nothing else changed)")
-                continue
+            outcome = load_master_file(path, kind=kind, url=url, submitted_by=by)
+        say(outcome.line())
+    for name in [*manifest["past_cycles"], current]:
+        open_cycle(name, horizon=horizon, url=url, due=manifest.get("due", {}).get(name))
+    for entry in manifest["files"]:
+        if entry in first_files:
+            continue
+        path = inputs / entry["path"]
+        tell(f"intake {entry['path']}")
+        by = entry.get("submitted_by", "")
+        try:
+            outcome = submit_file(path, url=url, source=entry.get("source"), cycle=entry.get("cycle"),
+                                  submitted_by=by)
+        except InputRejected as error:
+            if entry.get("expect") != "rejected":
+                raise
+            # the sample company's broken file shows what a rejection looks like, and that nothing changes
+            say(error.summary(limit=6))
+            say(f"  (kept as rejected submission #{error.submission_id}; nothing else changed)")
+            continue
         say(outcome.line())
     first_past = manifest["past_cycles"][0]
-    tell("backcast")
-    backcast_cycles(periods.shift_month(first_past, -12), periods.shift_month(first_past, -1), horizon=horizon,
-                    url=url)
-    say(f"statistical backcast for the 12 cycles before {first_past}, so accuracy history starts on day one")
+    open_past_cycles(periods.shift_month(first_past, -12), periods.shift_month(first_past, -1), horizon=horizon,
+                     url=url)
+    say(f"the 12 cycles before {first_past} opened for their statistical forecast, so accuracy is measured "
+        "from the first cycle")
+    publisher = manifest.get("publisher", "")
     for name in manifest["past_cycles"]:
         tell(f"consensus {name}")
         run_cycle(name, url=url)
-        publish_cycle(name, url=url)
+        publish_cycle(name, url=url, by=publisher)
     say(f"past cycles {manifest['past_cycles'][0]} … {manifest['past_cycles'][-1]}: consensus computed and published")
     tell(f"consensus {current}")
     summary = run_cycle(current, url=url, progress=tell)
@@ -87,7 +94,7 @@ def run_demo(workdir: Path | str, *, inputs: Path | None = None,
     if manifest.get("decisions"):
         summary = run_cycle(current, url=url, progress=tell)
         say("after the meeting's decisions: " + summary.line())
-    run = publish_cycle(current, url=url)
+    run = publish_cycle(current, url=url, by=publisher)
     say(f"cycle {current} published (run #{run.id})")
     tell("pack")
     pdf, pages = write_pack(current, pdf_path=workdir / "pack.pdf", html_path=workdir / "pack.html", url=url)

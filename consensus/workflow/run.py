@@ -1,283 +1,147 @@
-"""Compute and store a cycle's consensus: statistical source, alignment, weights, combination, bands, audit.
+"""A consensus run: read the inputs in force, compute the plan, store the result.  Nothing else.
 
-The run is one transaction.  Its settings (:class:`RunSpec`) and the ids and
-hashes of every submission it read are stored with it, so the same inputs give
-the same numbers and every number can be explained from stored rows.
+The run reads its inputs at one journal position (:mod:`consensus.workflow.inputs`),
+computes with no transaction open (:func:`consensus.methods.plan.compute_plan`),
+then stores the result in one short write: the run record with its settings,
+the position it read and the digest of its inputs, and each result frame as a
+packed part.  A submission made while the run computes waits only for that
+short write; the run says it was made from the inputs before it.
 """
 
 from __future__ import annotations
 
-import hashlib
-import warnings as warnings_module
+import os
 from collections.abc import Callable
-from dataclasses import asdict, dataclass, field
+from dataclasses import dataclass
 
-import numpy as np
 import pandas as pd
-from sqlalchemy import delete, select, update
+from sqlalchemy import select, update
 
-from consensus import periods
-from consensus.errors import InvalidSpec
-from consensus.methods import accuracy, combine, events, intervals
-from consensus.methods.weights import WeightSpec, estimate_weights
-from consensus.store import frames
+from consensus.errors import CycleStateError
+from consensus.methods.plan import METHOD_VERSION, PlanResult, RunSpec, compute_plan
+from consensus.store import blobs, journal
+from consensus.store.cache import StoreCache
 from consensus.store.db import session_scope
-from consensus.store.models import (
-    AlignedLine,
-    AlignmentTrace,
-    CellSource,
-    ConsensusLine,
-    ConsensusRun,
-    Cycle,
-    Submission,
-    SubmissionCycle,
-    WeightRecord,
-)
-from consensus.workflow import decisions
-from consensus.workflow.align import align_lines
-from consensus.workflow.cycles import get_cycle
-from consensus.workflow.reconciliation import DEFAULT_RECONCILIATION, RECONCILIATION_METHODS, reconcile_consensus
-from consensus.workflow.statistical_source import NAIVE, STATISTICAL, ensure_statistical
+from consensus.store.models import Blob, ConsensusRun, Cycle, Submission, utcnow
+from consensus.workflow.inputs import LoadedInputs, load_plan_inputs
 
-COMBINED_SOURCES = ("sales", "marketing", "dc", STATISTICAL)
-ALIGNMENT_VERSION = "1"  # bump when alignment changes, so cached past alignments are redone
-ALIGNED_COLUMNS_NO_CYCLE = ["source", "item", "location", "period", "lag", "quantity"]
-RECONCILIATIONS = RECONCILIATION_METHODS
+__all__ = ["RunSpec", "RunSummary", "run_cycle", "compute_cycle", "default_jobs"]
 
 
-@dataclass(frozen=True)
-class RunSpec:
-    """Every setting of a consensus run; stored with the run."""
-
-    weights: WeightSpec = field(default_factory=WeightSpec)
-    band_levels: tuple[float, ...] = (0.8, 0.95)
-    mix_window_months: int = 12
-    reconciliation: str = DEFAULT_RECONCILIATION
-
-    def __post_init__(self) -> None:
-        if self.reconciliation not in RECONCILIATIONS:
-            raise InvalidSpec(f"reconciliation must be one of {', '.join(RECONCILIATIONS)}")
-        if not all(0 < level < 1 for level in self.band_levels):
-            raise InvalidSpec("band levels must lie strictly between 0 and 1")
-        if not 1 <= self.mix_window_months <= 60:
-            raise InvalidSpec("mix window must be 1 to 60 months")
-
-    def to_dict(self) -> dict:
-        return asdict(self)
+def default_jobs() -> int:
+    """The machine's cores (the processes a run spreads its statistical fits over by default)."""
+    return max(1, len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1))
 
 
 @dataclass
 class RunSummary:
     run_id: int
     cycle: str
+    revision: int
     cells: int
     sources: list[str]
     total: float
     flagged: int
     warnings: list[str]
+    through_seq: int
+    newer_inputs: int = 0
 
     def line(self) -> str:
-        return (f"cycle {self.cycle}: run #{self.run_id}, {self.cells:,} cells from {', '.join(self.sources)}; "
-                f"total {self.total:,.0f} units; {self.flagged} cells flagged for disagreement")
+        from consensus.vocabulary import source_label
+
+        text = (f"cycle {self.cycle}: run #{self.run_id}, {self.cells:,} cells from "
+                f"{', '.join(source_label(s) for s in self.sources)}; total {self.total:,.0f} units; "
+                f"{self.flagged:,} cells where the sources disagree")
+        if self.newer_inputs:
+            text += (f"; {self.newer_inputs} file(s) arrived while it computed and are not in it: run again to "
+                     "include them")
+        return text
 
 
-def _previous_consensus(session, cycles: list[str]) -> pd.DataFrame:
-    """The latest stored run of each earlier cycle, as source 'consensus' (published runs first)."""
-    runs = frames.read_frame(session, select(ConsensusRun.__table__.c.id, ConsensusRun.__table__.c.cycle,
-                                             ConsensusRun.__table__.c.status)
-                             .where(ConsensusRun.__table__.c.cycle.in_(cycles)), ["id", "cycle", "status"])
-    if runs.empty:
-        return pd.DataFrame(columns=["source", "cycle", "item", "location", "period", "quantity"])
-    runs["rank"] = runs["status"].map({"published": 0, "draft": 1, "superseded": 2})
-    chosen = runs.sort_values(["cycle", "rank", "id"], ascending=[True, True, False]).drop_duplicates("cycle")
-    cl = ConsensusLine.__table__
-    lines = frames.read_frame(session, select(cl.c.run_id, cl.c.item, cl.c.location, cl.c.period, cl.c.consensus)
-                              .where(cl.c.run_id.in_(chosen["id"].tolist())),
-                              ["run_id", "item", "location", "period", "consensus"])
-    lines = lines.merge(chosen[["id", "cycle"]], left_on="run_id", right_on="id")
-    return lines.rename(columns={"consensus": "quantity"}).assign(source="consensus")[
-        ["source", "cycle", "item", "location", "period", "quantity"]]
-
-
-def _pad_statistical(frame: pd.DataFrame, cycle: Cycle, items, locations) -> pd.DataFrame:
-    """Give every master item × location a statistical forecast: zero where it has no history (a new item)."""
-    stat = frame[frame["source"] == STATISTICAL]
-    if stat.empty:
-        return frame
-    grid = (items[["item"]].merge(locations[["location"]], how="cross")
-            .merge(pd.DataFrame({"period": periods.horizon_months(cycle.name, cycle.horizon)}), how="cross"))
-    known = pd.MultiIndex.from_frame(stat[["item", "location", "period"]])
-    extra = grid[~pd.MultiIndex.from_frame(grid).isin(known)]
-    if extra.empty:
-        return frame
-    extra = extra.assign(source=STATISTICAL, cycle=cycle.name, quantity=0.0,
-                         lag=periods.lags(pd.Series(cycle.name, index=extra.index), extra["period"]))
-    return pd.concat([frame, extra[frame.columns]], ignore_index=True)
-
-
-def align_cycle(cycle: Cycle, lines: pd.DataFrame, cycle_events: pd.DataFrame, *, items, locations, actuals,
-                mix_window_months: int) -> tuple[pd.DataFrame, pd.DataFrame, list[str]]:
-    """One cycle's sources at planning grain, marketing events applied to the statistical source.
-
-    Returns (aligned, traces, warnings).  The statistical forecast before the
-    events is kept as source ``statistical_base`` so marketing's value added can
-    be measured; each event's uplift is traced to the cells it touched.
-    """
-    known = actuals[actuals["period"] <= cycle.name]
-    result = align_lines(lines, cycle=cycle.name, items=items, locations=locations, actuals=known,
-                         mix_window_months=mix_window_months)
-    frame = _pad_statistical(result.aligned, cycle, items, locations)
-    traces, warnings = result.traces, list(result.warnings)
-    stat = frame[frame["source"] == STATISTICAL]
-    if cycle_events.empty or stat.empty:
-        return frame, traces, warnings
-    with warnings_module.catch_warnings(record=True) as caught:
-        warnings_module.simplefilter("always")
-        adjusted, audit = events.apply_event_uplifts(stat, cycle_events, items=items, locations=locations)
-    warnings += [str(w.message) for w in caught]
-    frame = pd.concat([frame[frame["source"] != STATISTICAL], stat.assign(source="statistical_base"),
-                       adjusted.assign(source=STATISTICAL, cycle=cycle.name)[frame.columns]], ignore_index=True)
-    if not audit.empty:
-        first = cycle_events.drop_duplicates("event").set_index("event")
-        uplift = audit.assign(source="marketing event", share=1.0,
-                              submission_id=audit["event"].map(first["submission_id"]),
-                              row=audit["event"].map(first["row"]),
-                              submitted="event " + audit["event"].astype(str),
-                              share_basis="uplift on the statistical forecast of "
-                                          + audit["base"].map("{:,.1f}".format) + " units",
-                              quantity=audit["uplift_units"])
-        traces = pd.concat([traces, uplift[traces.columns]], ignore_index=True)
-    return frame, traces, warnings
-
-
-def _alignment_key(session, cycle: str, digest: str, mix_window_months: int) -> str:
-    sc = SubmissionCycle.__table__
-    ids = sorted(r.submission_id for r in session.execute(
-        select(sc.c.submission_id).where(sc.c.cycle == cycle).where(sc.c.status == "accepted")))
-    return hashlib.sha256(f"{ALIGNMENT_VERSION}|{ids}|{digest}|{mix_window_months}".encode()).hexdigest()
-
-
-def gather_history(session, cycle: Cycle, *, window: int, items, locations, actuals, mix_window_months,
-                   progress: Callable[[str], None] | None = None) -> dict:
-    """Every cycle in the window aligned to planning grain, with the statistical source made where missing.
-
-    Past cycles are read from the alignment cache when nothing they depend on
-    has changed; the current cycle is always aligned afresh, with its traces.
-    """
-    names = [periods.shift_month(cycle.name, -k) for k in range(window, -1, -1)]
-    cycles = [c for c in (session.get(Cycle, n) for n in names) if c is not None]
-    made = []
-    for c in cycles:
-        if progress:
-            progress(f"statistical forecast {c.name}")
-        made.append(ensure_statistical(session, c, actuals=actuals, items=items))
-    session.flush()
-    keys = {m["cycle"]: _alignment_key(session, m["cycle"], m["digest"], mix_window_months) for m in made}
-    al = AlignedLine.__table__
-    cached = frames.read_frame(session, select(*[al.c[k] for k in ("cycle", "key", *ALIGNED_COLUMNS_NO_CYCLE)])
-                               .where(al.c.cycle.in_([c.name for c in cycles if c.name != cycle.name])),
-                               ["cycle", "key", *ALIGNED_COLUMNS_NO_CYCLE])
-    cached = cached[cached["key"] == cached["cycle"].map(keys)]
-    cached_cycles = set(cached["cycle"].unique())
-    to_align = [c for c in cycles if c.name == cycle.name or c.name not in cached_cycles]
-    names_to_align = [c.name for c in to_align]
-    lines = frames.active_forecast_lines(session, cycles=names_to_align)
-    event_rows = frames.active_event_lines(session, cycles=names_to_align)
-    aligned, traces, warnings = [cached.drop(columns="key")], None, []
-    for c in to_align:
-        if progress:
-            progress(f"align {c.name}")
-        frame, cycle_traces, cycle_warnings = align_cycle(
-            c, lines[lines["cycle"] == c.name], event_rows[event_rows["cycle"] == c.name], items=items,
-            locations=locations, actuals=actuals, mix_window_months=mix_window_months)
-        aligned.append(frame)
-        if c.name == cycle.name:
-            traces, warnings = cycle_traces, cycle_warnings
-        else:
-            session.execute(delete(al).where(al.c.cycle == c.name))
-            frames.write_frame(session, AlignedLine, frame.assign(key=keys[c.name]))
-    history = pd.concat([f for f in aligned if not f.empty], ignore_index=True)
-    return {"aligned": history, "traces": traces, "warnings": warnings, "made": made,
-            "cycles": [c.name for c in cycles]}
-
-
-def measure_history(session, cycle: Cycle, *, spec: "RunSpec", items, locations, actuals,
-                    progress: Callable[[str], None] | None = None) -> tuple[dict, pd.DataFrame]:
-    """The window's aligned sources and every past error known at this cycle (sources, consensus, naive)."""
-    gathered = gather_history(session, cycle, window=spec.weights.window_cycles, items=items, locations=locations,
-                              actuals=actuals, mix_window_months=spec.mix_window_months, progress=progress)
-    history = gathered["aligned"]
-    past = history[history["cycle"] < cycle.name]
-    past = pd.concat([past, _previous_consensus(session, gathered["cycles"][:-1])], ignore_index=True)
-    known_actuals = actuals[actuals["period"] <= cycle.name]
-    errors = accuracy.forecast_errors(past[["source", "cycle", "item", "location", "period", "quantity"]],
-                                      known_actuals)
-    return gathered, errors
-
-
-def run_cycle(cycle_name: str, *, url=None, spec: RunSpec | None = None,
-              progress: Callable[[str], None] | None = None) -> RunSummary:
-    """Compute, store and return the consensus of one cycle as a new draft run."""
+def compute_cycle(cycle_name: str, *, url=None, spec: RunSpec | None = None, jobs: int | None = None,
+                  through: int | None = None, use_cache: bool = True, require_open: bool = True,
+                  progress: Callable[[str], None] | None = None) -> tuple[LoadedInputs, PlanResult, StoreCache]:
+    """Read a cycle's inputs (as of ``through``) and compute its plan, storing nothing."""
     spec = spec or RunSpec()
+    loaded = load_plan_inputs(cycle_name, url=url, spec=spec, through=through, require_open=require_open)
+    cache = StoreCache(url, enabled=use_cache)
+    result = compute_plan(loaded.inputs, spec, cache=cache, jobs=jobs or default_jobs(), progress=progress)
+    return loaded, result, cache
+
+
+def run_cycle(cycle_name: str, *, url=None, spec: RunSpec | None = None, jobs: int | None = None, by: str = "",
+              progress: Callable[[str], None] | None = None) -> RunSummary:
+    """Compute and store the consensus of one cycle as its new draft run."""
+    spec = spec or RunSpec()
+    loaded, result, cache = compute_cycle(cycle_name, url=url, spec=spec, jobs=jobs, progress=progress)
+    if progress:
+        progress("store the result")
     with session_scope(url) as session:
-        cycle = get_cycle(session, cycle_name)
-        items, locations = frames.load_items(session), frames.load_locations(session)
-        actuals = frames.load_actuals(session)
-        gathered, errors = measure_history(session, cycle, spec=spec, items=items, locations=locations,
-                                           actuals=actuals, progress=progress)
-        history = gathered["aligned"]
-        current = history[(history["cycle"] == cycle.name) & history["source"].isin(COMBINED_SOURCES)]
-        if current.empty:
-            raise InvalidSpec(f"cycle {cycle.name} has no forecast from any source and no order history")
-        if progress:
-            progress("weights")
-        sources = sorted(current["source"].unique())
-        weights = estimate_weights(errors[errors["source"].isin(sources)], cycle=cycle.name, items=items,
-                                   locations=locations, spec=spec.weights, sources=sources)
-        combined = combine.combine_sources(current, weights, items=items, locations=locations, spec=spec.weights)
-        table = combined.consensus
-        table, gathered["reconciliation"] = reconcile_consensus(
-            table, current, errors, items=items, locations=locations, method=spec.reconciliation,
-            weight_spec=spec.weights, cycle=cycle.name, actuals=actuals)
-        if progress:
-            progress("error bands")
-        band_errors = _band_errors(errors)
-        if band_errors.empty:  # a store's very first cycle: say so rather than invent a band
-            table = table.assign(**{c: np.nan for c in intervals.band_columns(spec.band_levels)},
-                                 band_method="no error history yet (run 'consensus backcast')")
-        else:
-            banded = intervals.empirical_bands(table, band_errors, levels=spec.band_levels)
-            table = table.merge(banded[["item", "location", "period", *intervals.band_columns(spec.band_levels),
-                                        "band_method"]], on=["item", "location", "period"], how="left")
-        table, applied = decisions.apply_decisions(session, cycle.name, table, items=items, locations=locations)
-        run = _store_run(session, cycle, spec=spec, table=table, combined=combined, gathered=gathered,
-                         applied=applied)
-        return RunSummary(run.id, cycle.name, len(table), sources, float(table["consensus"].sum()),
-                          int(table["flagged"].sum()), gathered["warnings"])
+        cycle = session.get(Cycle, cycle_name)
+        if cycle.status == "published" or cycle.revision != loaded.revision:
+            raise CycleStateError(f"cycle {cycle_name} was published or reopened while the run computed; "
+                                  "nothing was stored")
+        run = store_result(session, cycle, loaded, result, spec, by=by)
+        cache.write(session)
+        newer = _newer_inputs(session, loaded.through_seq)
+        return RunSummary(run.id, cycle_name, cycle.revision, result.summary["cells"], result.summary["sources"],
+                          result.summary["total"], result.summary["flagged"], result.notes["warnings"],
+                          loaded.through_seq, newer)
 
 
-def _band_errors(errors: pd.DataFrame) -> pd.DataFrame:
-    """Past errors that the bands are drawn from: the consensus's own where it has history, else the statistical."""
-    own = errors[errors["source"] == "consensus"]
-    return own if len(own) >= 30 else errors[errors["source"].isin(["consensus", STATISTICAL])]
+def _newer_inputs(session, through: int) -> int:
+    t = Submission.__table__
+    return len(session.execute(select(t.c.id).where(t.c.seq > through).where(t.c.status == "accepted")).all())
 
 
-def _store_run(session, cycle: Cycle, *, spec: RunSpec, table: pd.DataFrame, combined, gathered, applied) -> ConsensusRun:
+def store_result(session, cycle: Cycle, loaded: LoadedInputs, result: PlanResult, spec: RunSpec, *,
+                 by: str = "") -> ConsensusRun:
+    """Record a run: earlier drafts of the revision are superseded (their parts let go), the result packed."""
     cr = ConsensusRun.__table__
-    session.execute(update(cr).where(cr.c.cycle == cycle.name).where(cr.c.status == "draft").values(status="superseded"))
-    inputs = frames.read_frame(session, select(Submission.__table__.c.id, Submission.__table__.c.source,
-                                               Submission.__table__.c.filename, Submission.__table__.c.sha256)
-                               .where(Submission.__table__.c.id.in_(
-                                   gathered["traces"]["submission_id"].dropna().astype(int).unique().tolist())),
-                               ["id", "source", "filename", "sha256"])
-    run = ConsensusRun(cycle=cycle.name, spec=spec.to_dict(), inputs=inputs.to_dict("records"),
-                       notes={"warnings": gathered["warnings"], "decisions_applied": applied,
-                              "reconciliation": gathered.get("reconciliation", {}),
-                              "statistical": [m for m in gathered["made"] if m["made"]]})
+    drafts = session.execute(select(cr.c.id, cr.c.parts).where(cr.c.cycle == cycle.name)
+                             .where(cr.c.revision == cycle.revision).where(cr.c.status == "draft")).all()
+    session.execute(update(cr).where(cr.c.id.in_([d.id for d in drafts])).values(status="superseded"))
+    parts = {name: blobs.put_frame(session, frame) for name, frame in result.parts.items()}
+    inputs = _inputs_read(session, loaded.submission_ids)
+    run = ConsensusRun(cycle=cycle.name, revision=cycle.revision, created_at=utcnow(), created_by=by,
+                       spec=spec.to_dict(), through_seq=loaded.through_seq,
+                       inputs_digest=loaded.inputs.fingerprint(spec), method_version=METHOD_VERSION, inputs=inputs,
+                       summary=result.summary, notes=result.notes, parts=parts)
     session.add(run)
     session.flush()
-    frames.write_frame(session, ConsensusLine, table.assign(run_id=run.id))
-    frames.write_frame(session, CellSource, combined.contributions.assign(run_id=run.id))
-    frames.write_frame(session, AlignmentTrace, gathered["traces"].assign(run_id=run.id))
-    frames.write_frame(session, WeightRecord, combined.weights.assign(run_id=run.id))
+    journal.record(session, "run", run, cycle=cycle.name)
+    _let_go(session, {sha for d in drafts for sha in (d.parts or {}).values()} - set(parts.values()))
     return run
+
+
+def _inputs_read(session, ids: list[int]) -> list[dict]:
+    t = Submission.__table__
+    if not ids:
+        return []
+    rows = session.execute(select(t.c.id, t.c.source, t.c.filename, t.c.sha256).where(t.c.id.in_(ids))
+                           .order_by(t.c.id))
+    return [{"id": r.id, "source": r.source, "filename": r.filename, "sha256": r.sha256} for r in rows]
+
+
+def _let_go(session, shas: set[str]) -> None:
+    """Delete result parts of superseded drafts that nothing else refers to (a draft is never published)."""
+    if not shas:
+        return
+    cr, sub = ConsensusRun.__table__, Submission.__table__
+    kept = {sha for (parts,) in session.execute(select(cr.c.parts).where(cr.c.status != "superseded"))
+            for sha in (parts or {}).values()}
+    kept |= {r[0] for r in session.execute(select(sub.c.lines_sha256).where(sub.c.lines_sha256.in_(list(shas))))}
+    kept |= {r[0] for r in session.execute(select(sub.c.sha256).where(sub.c.sha256.in_(list(shas))))}
+    gone = sorted(shas - kept)
+    if gone:
+        session.execute(Blob.__table__.delete().where(Blob.__table__.c.sha256.in_(gone)))
+
+
+def sources_in_force(cycle_name: str, *, url=None, through: int | None = None,
+                     spec: RunSpec | None = None) -> pd.DataFrame:
+    """The cycle's sources at planning grain from the submissions in force now (or at ``through``)."""
+    from consensus.methods.plan import current_sources
+
+    spec = spec or RunSpec()
+    loaded = load_plan_inputs(cycle_name, url=url, spec=spec, through=through, require_open=False)
+    return current_sources(loaded.inputs, spec)

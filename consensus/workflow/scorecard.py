@@ -1,63 +1,52 @@
-"""Who has been right: accuracy of every source by lag bucket at any level of the hierarchy."""
+"""Who has been right: the accuracy a run measured, read back from its stored result.
+
+``consensus scorecard`` shows what the run of the cycle measured with its own
+settings (its window, its segments); it never measures again.
+"""
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import pandas as pd
 
-from consensus import periods
-from consensus.methods import accuracy, events
-from consensus.store import frames
+from consensus.errors import ConsensusError
+from consensus.methods.scoring import LEVELS
 from consensus.store.db import session_scope
-from consensus.workflow.cycles import get_cycle
-from consensus.workflow.run import RunSpec, measure_history
+from consensus.workflow.inputs import run_parts
+from consensus.workflow.publish import latest_run
+
+__all__ = ["scorecard", "marketing_value_added", "scorecard_report", "LEVELS"]
 
 
-@dataclass(frozen=True)
-class ErrorHistory:
-    """Every past error known at a cycle, with the master data and order history it was measured on."""
-
-    errors: pd.DataFrame
-    items: pd.DataFrame
-    locations: pd.DataFrame
-    actuals: pd.DataFrame  # known at the cycle
+def _parts(cycle: str, names: list[str], *, revision: int | None, url) -> dict[str, pd.DataFrame]:
+    with session_scope(url, write=False) as session:
+        run = latest_run(session, cycle, revision=revision)
+        return run_parts(session, run, names)
 
 
-def load_error_history(cycle: str, *, url=None) -> ErrorHistory:
-    """Errors of every source, the consensus and the naive reference, for the cycles in the weight window."""
-    with session_scope(url) as session:
-        c = get_cycle(session, cycle)
-        items, locations = frames.load_items(session), frames.load_locations(session)
-        actuals = frames.load_actuals(session, through=cycle)
-        _, errors = measure_history(session, c, spec=RunSpec(), items=items, locations=locations, actuals=actuals)
-    return ErrorHistory(errors, items, locations, actuals)
+def scorecard(cycle: str, *, level: str = "family", revision: int | None = None, url=None,
+              pooled: bool | None = None) -> pd.DataFrame:
+    """Accuracy of each source (and the consensus and the naive yardstick) known at ``cycle``, by lag bucket.
+
+    For item × location the rows pool every cell; for an upper level, one row
+    per group (``pooled=True`` pools the groups instead).
+    """
+    if level not in LEVELS:
+        raise ConsensusError(f"--level must be one of {', '.join(LEVELS)}, not {level!r}")
+    parts = _parts(cycle, ["accuracy", "accuracy_groups"], revision=revision, url=url)
+    if level == "item" or pooled:
+        table = parts["accuracy"]
+        return table[table["level"] == level].drop(columns="level").reset_index(drop=True)
+    table = parts["accuracy_groups"]
+    return table[table["level"] == level].drop(columns="level").reset_index(drop=True)
 
 
-def scorecard(cycle: str, *, level: str = "family", window: int | None = None, url=None,
-              history: ErrorHistory | None = None) -> pd.DataFrame:
-    """Accuracy of each source (and the consensus and naive references) known at ``cycle``, by lag bucket."""
-    history = history or load_error_history(cycle, url=url)
-    errors = history.errors
-    if window is not None:
-        errors = errors[errors["cycle"] >= periods.shift_month(cycle, -window)]
-    scale = accuracy.seasonal_naive_scale(history.actuals, level=level, items=history.items,
-                                          locations=history.locations)
-    return accuracy.accuracy_table(errors, level=level, items=history.items, locations=history.locations,
-                                   seasonal_scale=scale)
-
-
-def marketing_value_added(cycle: str, *, url=None, history: ErrorHistory | None = None) -> pd.DataFrame:
+def marketing_value_added(cycle: str, *, revision: int | None = None, url=None) -> pd.DataFrame:
     """Did marketing's event uplifts make the statistical forecast better?  By lag bucket, on the cells they touched."""
-    errors = (history or load_error_history(cycle, url=url)).errors
-    without = errors[errors["source"] == "statistical_base"]
-    if without.empty:
-        return pd.DataFrame()
-    return events.uplift_value_added(errors[errors["source"] == "statistical"], without)
+    return _parts(cycle, ["uplift"], revision=revision, url=url).get("uplift", pd.DataFrame())
 
 
-def scorecard_report(cycle: str, *, level: str = "family", url=None) -> tuple[pd.DataFrame, pd.DataFrame]:
-    """The scorecard and marketing's value added, from one pass over the cycle's error history."""
-    history = load_error_history(cycle, url=url)
-    return (scorecard(cycle, level=level, history=history),
-            marketing_value_added(cycle, history=history))
+def scorecard_report(cycle: str, *, level: str = "family", revision: int | None = None,
+                     url=None) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """The scorecard and marketing's value added, as the cycle's run stored them."""
+    return (scorecard(cycle, level=level, revision=revision, url=url),
+            marketing_value_added(cycle, revision=revision, url=url))

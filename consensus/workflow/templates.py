@@ -40,7 +40,7 @@ def template_frame(session, cycle: Cycle, *, product: str = "item", place: str =
     frame["quantity"] = pd.NA
     previous = periods.shift_month(cycle.name, -1)
     try:
-        lines = run_lines(session, latest_run(session, previous).id)
+        lines = run_lines(session, latest_run(session, previous))
     except NotFound:
         lines = pd.DataFrame(columns=["item", "location", "period", "consensus"])
     if not lines.empty:
