@@ -57,7 +57,7 @@ from consensus.store.models import ConsensusLine, ConsensusRun, Setting  # noqa:
 from consensus.workflow.backcast import backcast_cycles  # noqa: E402
 from consensus.workflow.cycles import open_cycle  # noqa: E402
 from consensus.workflow.publish import publish_cycle  # noqa: E402
-from consensus.workflow.reconciliation import DEFAULT_RECONCILIATION, RECONCILIATION_METHODS  # noqa: E402
+from consensus.methods.reconciliation import DEFAULT_RECONCILIATION, RECONCILIATION_METHODS  # noqa: E402
 from consensus.workflow.run import RunSpec, run_cycle  # noqa: E402
 
 LEVELS = ("item", "family_region", "family", "total")

@@ -1,21 +1,23 @@
-"""The command line: every command explains itself, appears in the README, and turns errors into clear exits."""
+"""The command line: every command explains itself, appears in the README, and turns every error into a clear exit."""
 
 from __future__ import annotations
 
+import json
 import re
 import shutil
 from pathlib import Path
 
+import pandas as pd
 import pytest
-from sqlalchemy import func, select
+from sqlalchemy import select
 from typer.main import get_command
 from typer.testing import CliRunner
 
-from consensus.cli import app
+from consensus.cli import app, run_cli
 from consensus.store.db import get_engine, session_scope
-from consensus.store.models import ForecastLine, Submission
-from tests.conftest import DATA
+from consensus.store.models import Submission
 
+DATA = Path(__file__).parent / "data"
 runner = CliRunner()
 ROOT = Path(__file__).parent.parent
 
@@ -23,6 +25,8 @@ ROOT = Path(__file__).parent.parent
 def _commands():
     group = get_command(app)
     for name, command in group.commands.items():
+        if getattr(command, "hidden", False):
+            continue
         if hasattr(command, "commands"):
             for sub_name, sub in command.commands.items():
                 yield f"{name} {sub_name}", sub
@@ -41,6 +45,19 @@ def test_every_command_has_help_with_an_example(name):
 
 
 @pytest.mark.parametrize("name", sorted(COMMANDS))
+def test_every_option_has_help_and_a_meaningful_placeholder(name):
+    for param in COMMANDS[name].params:
+        if param.name == "help":
+            continue
+        assert getattr(param, "help", None), f"{name}: {param.name} has no help text"
+        if not getattr(param, "is_flag", False):
+            assert param.metavar, f"{name}: {param.name} has no placeholder"
+    shown = runner.invoke(app, [*name.split(), "--help"], terminal_width=100).output
+    for generic in ("<str>", "{", " TEXT", " INTEGER", " FLOAT", " PATH"):
+        assert generic not in shown, f"{name} --help shows {generic.strip()!r}"
+
+
+@pytest.mark.parametrize("name", sorted(COMMANDS))
 def test_every_command_is_in_the_readme(name):
     assert f"consensus {name}" in (ROOT / "README.md").read_text(encoding="utf-8")
 
@@ -55,8 +72,10 @@ def cli_store(tmp_path):
     url = f"sqlite:///{tmp_path / 'cli.db'}"
     get_engine.cache_clear()
     for kind in ("items", "locations"):
-        assert runner.invoke(app, ["--db", url, "master", str(DATA / "good" / f"{kind}.csv"), "--kind", kind]).exit_code == 0
-    assert runner.invoke(app, ["--db", url, "cycle", "open", "2026-11"]).exit_code == 0
+        assert runner.invoke(app, ["--db", url, "master", str(DATA / "good" / f"{kind}.csv"), "--kind", kind]
+                             ).exit_code == 0
+    assert runner.invoke(app, ["--db", url, "cycle", "open", "2026-11", "--allow-missing-history",
+                               "--due", "2026-11-20"]).exit_code == 0
     yield url
     get_engine.cache_clear()
 
@@ -65,22 +84,23 @@ def test_submit_accepts_then_status_shows_it(cli_store):
     result = runner.invoke(app, ["--db", cli_store, "submit", str(DATA / "good" / "forecast.csv"), "--cycle",
                                  "2026-11", "--source", "dc", "--by", "R. Tester"])
     assert result.exit_code == 0 and "accepted as #" in result.output
-    status = runner.invoke(app, ["--db", cli_store, "status", "--cycle", "2026-11"])
-    assert status.exit_code == 0 and "submitted" in status.output and "missing" in status.output
+    status = runner.invoke(app, ["--db", cli_store, "status", "--cycle", "2026-11", "--format", "csv"])
+    states = pd.read_csv(__import__("io").StringIO(status.output))["state"]
+    assert status.exit_code == 0 and {"received", "not received"} <= set(states)
 
 
 def test_broken_file_exits_2_names_row_and_column_and_changes_nothing(cli_store):
-    def line_count():
+    def accepted():
         with session_scope(cli_store) as s:
-            return s.execute(select(func.count()).select_from(ForecastLine)).scalar_one()
+            return len(s.execute(select(Submission.id).where(Submission.status == "accepted")).all())
 
-    before = line_count()
+    before = accepted()
     result = runner.invoke(app, ["--db", cli_store, "submit", str(DATA / "bad" / "forecast_negative.csv"),
                                  "--cycle", "2026-11", "--source", "dc"])
     assert result.exit_code == 2
     assert re.search(r"forecast_negative\.csv, row \d+, column 'quantity'", result.output)
     assert "nothing else changed" in result.output
-    assert line_count() == before
+    assert accepted() == before
     with session_scope(cli_store) as s:
         assert s.execute(select(Submission.status).order_by(Submission.id.desc())).first()[0] == "rejected"
 
@@ -92,14 +112,16 @@ def test_library_errors_become_one_line_and_exit_1(cli_store):
     assert bad_scheme.exit_code == 1 and "scheme must be one of" in bad_scheme.output
 
 
-def test_submit_folder_gives_one_line_per_file(cli_store, tmp_path):
+def test_submit_folder_gives_one_line_per_file_and_a_summary(cli_store, tmp_path):
     folder = tmp_path / "returns"
     folder.mkdir()
     shutil.copy(DATA / "good" / "forecast.csv", folder / "a.csv")
     shutil.copy(DATA / "bad" / "forecast_negative.csv", folder / "b.csv")
+    (folder / "c.xlsx").write_bytes(b"PK\x03\x04 not really a workbook")
     result = runner.invoke(app, ["--db", cli_store, "submit", str(folder), "--cycle", "2026-11", "--source", "dc"])
-    assert result.exit_code == 2  # one file was refused
+    assert result.exit_code == 2  # a file was refused
     assert "a.csv: accepted" in result.output and "b.csv: rejected" in result.output
+    assert "3 file(s)" in result.output
 
 
 def test_template_writes_every_key_and_month(cli_store, tmp_path):
@@ -107,7 +129,85 @@ def test_template_writes_every_key_and_month(cli_store, tmp_path):
     result = runner.invoke(app, ["--db", cli_store, "template", "--cycle", "2026-11", "--source", "sales",
                                  "--grain", "family,region", "--region", "NORTH", "--out", str(out)])
     assert result.exit_code == 0, result.output
-    import pandas as pd
     frame = pd.read_csv(out, encoding="utf-8-sig")
     assert list(frame.columns[:4]) == ["family", "region", "period", "quantity"]
     assert len(frame) == 3 * 1 * 18 and frame["quantity"].isna().all()  # 3 families × 1 region × 18 months
+
+
+@pytest.mark.parametrize("fmt", ["csv", "json"])
+def test_listings_print_csv_and_json(cli_store, fmt):
+    for args in (["cycle", "list"], ["status", "--cycle", "2026-11"], ["settings", "list"]):
+        result = runner.invoke(app, ["--db", cli_store, *args, "--format", fmt])
+        assert result.exit_code == 0, (args, result.output)
+        if fmt == "json":
+            assert isinstance(json.loads(result.output), list)
+        else:
+            assert pd.read_csv(__import__("io").StringIO(result.output)).shape[1] >= 2
+
+
+def test_tables_fit_80_columns(cli_store):
+    runner.invoke(app, ["--db", cli_store, "submit", str(DATA / "good" / "forecast.csv"), "--cycle", "2026-11",
+                        "--source", "dc", "--by", "R. Tester"])
+    for args in (["cycle", "list"], ["status", "--cycle", "2026-11"], ["settings", "list"]):
+        result = runner.invoke(app, ["--db", cli_store, *args], terminal_width=80)
+        widest = max(len(line) for line in result.output.splitlines())
+        assert widest <= 80, (args, widest)
+
+
+# Every command with arguments that cannot work: one or two plain lines, exit 1 (2 for a rejected file), no traceback.
+BROKEN = [
+    ["cycle", "open", "2026-13"],
+    ["cycle", "open", "2026-11", "--horizon", "abc"],
+    ["cycle", "open", "2026-11", "--due", "soon"],
+    ["cycle", "reopen", "2026-11", "--reason", "x", "--by", "y"],
+    ["cycle", "list", "--format", "xml"],
+    ["open-past", "--from", "2026-13", "--to", "2026-14"],
+    ["backcast", "--from", "2026-13", "--to", "2026-14"],
+    ["master", "missing.csv", "--kind", "items"],
+    ["master", "{good}/items.csv", "--kind", "people"],
+    ["actuals", "missing.csv"],
+    ["submit", "missing.csv", "--cycle", "2026-11", "--source", "dc"],
+    ["submit", "{good}/forecast.csv", "--cycle", "2026-11", "--source", "dc", "--scope", "region NOWHERE"],
+    ["template", "--cycle", "2026-11", "--source", "sales", "--out", "{tmp}", "--grain", "family,region"],
+    ["template", "--cycle", "2026-11", "--source", "sales", "--out", "{tmp}/t.xlsx", "--grain", "colour"],
+    ["status", "--cycle", "nope"],
+    ["run", "--cycle", "2026-11", "--bands", "eighty"],
+    ["run", "--cycle", "2026-11", "--jobs", "0"],
+    ["run", "--cycle", "2026-11", "--window", "-3"],
+    ["explain", "--cycle", "2026-11", "--item", "ZZZ", "--location", "L1", "--period", "2027-01"],
+    ["scorecard", "--cycle", "2026-11", "--level", "planet"],
+    ["decide", "--cycle", "2026-11", "--period", "2027-01", "--item", "A100", "--set", "nan", "--reason", "r",
+     "--by", "b"],
+    ["decide", "--cycle", "2026-11", "--period", "2027-01", "--item", "A100", "--delta", "inf", "--reason", "r",
+     "--by", "b"],
+    ["decide", "--cycle", "2026-11", "--period", "2027-01", "--item", "A100", "--pct", "-500", "--reason", "r",
+     "--by", "b"],
+    ["decide", "--withdraw", "999", "--reason", "r", "--by", "b"],
+    ["decisions", "--cycle", "2031-01"],
+    ["publish", "--cycle", "2026-11", "--by", "b"],
+    ["export", "--cycle", "2026-11", "--out", "{tmp}"],
+    ["export", "--cycle", "2026-11", "--out", "{tmp}/no/such/folder/c.csv"],
+    ["components", "--cycle", "2026-11", "--out", "{tmp}"],
+    ["pack", "--cycle", "2026-11", "--out", "{tmp}"],
+    ["verify", "--cycle", "2026-11"],
+    ["settings", "set", "limit.max_quantity", "lots"],
+    ["settings", "set", "nosuch", "1"],
+    ["--db", "sqlite:///{tmp}/no/such/folder/x.db", "cycle", "list"],
+    ["--db", "carrier-pigeon://x", "cycle", "list"],
+    ["--db", "postgresql+psycopg://nobody@127.0.0.1:9/none", "cycle", "list"],
+]
+
+
+@pytest.mark.parametrize("args", BROKEN, ids=[" ".join(a)[:60] for a in BROKEN])
+def test_broken_arguments_give_a_plain_message_and_no_traceback(cli_store, tmp_path, capsys, args):
+    filled = [a.replace("{good}", str(DATA / "good")).replace("{tmp}", str(tmp_path)) for a in args]
+    if filled[0] != "--db":
+        filled = ["--db", cli_store, *filled]
+    code = run_cli(filled)
+    out = capsys.readouterr()
+    text = out.out + out.err
+    assert code in (1, 2), (code, text)
+    assert "Traceback" not in text and "Error:" not in text.replace("error:", "")
+    lines = [line for line in out.err.splitlines() if line.strip()]
+    assert lines and lines[0].startswith(("error:", "Usage")) or code == 2, text
+    assert len(lines) <= 3 or code == 2, text

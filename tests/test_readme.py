@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import pandas as pd
 
-from tests.conftest import readme_commands
+from conftest import readme_commands
 
 
 def test_quick_start_has_two_commands_demo_then_tests():

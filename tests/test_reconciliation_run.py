@@ -12,7 +12,7 @@ from consensus.errors import InvalidSpec
 from consensus.methods.combine import combine_sources
 from consensus.methods.weights import WeightSpec, estimate_weights
 from consensus.periods import lag_bucket_labels, month_index, month_name
-from consensus.workflow.reconciliation import RECONCILIATION_METHODS, reconcile_consensus, reconcile_hierarchy
+from consensus.methods.reconciliation import RECONCILIATION_METHODS, reconcile_consensus, reconcile_hierarchy
 from consensus.workflow.run import RunSpec
 
 ITEMS = pd.DataFrame({"item": ["A1", "A2", "B1"], "family": ["FA", "FA", "FB"], "unit_price": 1.0})
