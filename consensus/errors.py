@@ -21,6 +21,10 @@ class CycleStateError(ConsensusError):
     """The cycle is not in a state that allows the step (e.g. publishing twice)."""
 
 
+class OutputNotWritable(ConsensusError):
+    """An output path names a folder, a folder that does not exist, or a place the tool may not write."""
+
+
 @dataclass(frozen=True)
 class Problem:
     """One thing wrong with one cell of an input file, as the user sees it."""
