@@ -71,8 +71,8 @@ class ReadLimits:
       spreadsheet made.
     * ``max_inflated_bytes`` 1,000,000,000 bytes unpacked, summed over the
       workbook's parts as the zip directory declares them: this tool's own
-      filled-in template unpacks to about 300 bytes a row (measured with
-      bench/bench_intake.py), 600 MB for 2,000,000 rows.  Python's zipfile
+      filled-in template unpacks to about 265 bytes a row (measured with
+      bench/bench_intake.py), 530 MB for 2,000,000 rows.  Python's zipfile
       never inflates a part beyond its declared size (a part that lies fails
       its CRC check and is refused as damaged), so the declared sizes bound the
       work.
@@ -81,12 +81,14 @@ class ReadLimits:
     * ``max_cells`` 20,000,000 filled cells kept: 2,000,000 rows of 10 columns.
       Read cells are Python objects, so this, not the file size, bounds memory.
     * ``max_compression_ratio`` 100 for any part that unpacks to more than
-      ``RATIO_FLOOR_BYTES`` (1 MB): sheets compress about 11–15 to 1 (measured
-      with bench/bench_intake.py on this tool's template and on a sheet of
-      identical rows, whose cell references still differ), while a compressed
-      bomb of repeated XML reaches several hundred to 1 (deflate's ceiling is
-      about 1,032 to 1, from memory of zlib's technical notes).  This is what
-      stops a small file that unpacks to hundreds of MB, below the size cap.
+      ``RATIO_FLOOR_BYTES`` (1 MB): sheets compress about 10–15 to 1 (measured
+      with bench/bench_intake.py on this tool's filled template, and by hand on
+      a sheet of 100,000 identical rows, whose cell references still differ),
+      while a bomb of one row repeated reaches 258 to 1 in the bench (deflate's
+      ceiling is about 1,032 to 1, from memory of zlib's technical notes).
+      This is what stops a small file that unpacks to hundreds of MB below
+      the size cap: the bench's 0.8 MB file unpacking to 200 MB is refused in
+      0.06 s, where reading it took 74 s and 900 MB.
     * ``max_parts`` 10,000 entries in the zip archive (a workbook has tens).
     """
 
