@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import datetime as dt
+import math
 from pathlib import Path
 
 import numpy as np
@@ -518,6 +519,20 @@ def test_master_clean_frame_always_carries_a_description():
         assert clean["description"].tolist() == [""] and clean["description"].notna().all()
         blank = check_master_rows(_raw({**columns, "description": [""]}), kind=kind).clean
         assert blank["description"].tolist() == [""]
+
+
+@settings(max_examples=80, deadline=None)
+@given(numbers=st.lists(st.floats(allow_nan=True, allow_infinity=True, width=64), min_size=1, max_size=20))
+def test_a_number_is_accepted_exactly_when_finite_and_within_its_limit(numbers):
+    """Oracle: Python's float() of the cell text and IEEE 754 finiteness (math.isfinite), row by row."""
+    texts = [repr(x) for x in numbers]
+    raw = _raw({"item": ["A100"] * len(texts), "location": ["L1"] * len(texts), "date": ["2026-10-01"] * len(texts),
+                "quantity": texts})
+    result = check_actual_rows(raw, items=ITEMS, locations=LOCATIONS, limits=LIMITS, max_problems=100)
+    allowed = [math.isfinite(float(t)) and 0 <= float(t) <= LIMITS.max_actual_quantity for t in texts]
+    assert result.total_problems == allowed.count(False)
+    assert [p.row for p in result.problems] == [row for row, ok in enumerate(allowed, start=2) if not ok]
+    assert math.isfinite(result.clean["quantity"].sum())
 
 
 @pytest.mark.parametrize("options", [{"max_forecast_quantity": 0}, {"max_unit_price": float("inf")},

@@ -419,6 +419,13 @@ def test_csv_cell_over_the_csv_modules_field_limit_names_the_row(tmp_path):
     assert len(read_table(ok).frame.loc[0, "note"]) == limit
 
 
+def test_over_long_header_cell_is_refused_at_row_one(tmp_path):
+    path = tmp_path / "long_header.csv"
+    path.write_text("item," + "x" * (csv.field_size_limit() + 1) + "\nA100,1\n", encoding="utf-8")
+    with pytest.raises(InputRejected, match="long_header.csv, row 1; expected cells of at most"):
+        read_table(path)
+
+
 def test_unclosed_quote_is_reported_at_its_row(tmp_path):
     path = tmp_path / "quote.csv"
     rows = "".join(f"A{i},L1,2026-12,{i}\n" for i in range(20_000))

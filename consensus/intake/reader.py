@@ -271,19 +271,24 @@ def _csv_records(text: str, name: str, delimiter: str) -> list[list[str]]:
         records.extend(parser)
     except csv.Error as exc:
         row = len(records) + 1
-        if "field larger than field limit" in str(exc):
-            expected = (f"cells of at most {csv.field_size_limit():,} characters (the csv module's field limit); "
-                        "this row has a longer one, often a quote (\") that is opened and never closed")
-        else:
-            expected = f"a well-formed CSV row ({exc})"
-        raise InputRejected(file=name, problems=[Problem(name, row, None, None, expected)]) from None
+        raise InputRejected(file=name, problems=[Problem(name, row, None, None, _csv_error_text(exc))]) from None
     return records
 
 
+def _csv_error_text(exc: csv.Error) -> str:
+    if "field larger than field limit" in str(exc):
+        return (f"cells of at most {csv.field_size_limit():,} characters (the csv module's field limit); "
+                "this row has a longer one, often a quote (\") that is opened and never closed")
+    return f"a well-formed CSV row ({exc})"
+
+
 def _header_delimiter(text: str, name: str) -> str:
-    for line in text.splitlines():
+    for number, line in enumerate(text.splitlines(), start=1):
         if line.strip(" \t,;"):
-            return detect_delimiter(line, filename=name)
+            try:
+                return detect_delimiter(line, filename=name)
+            except csv.Error as exc:  # the header itself holds a field over the csv module's limit
+                raise InputRejected(file=name, problems=[Problem(name, number, None, None, _csv_error_text(exc))]) from None
     return ","
 
 
