@@ -25,8 +25,8 @@ class StoreError(ConsensusError):
     """The store cannot be opened or used: a bad URL, an unreachable server, a schema from another release."""
 
 
-class VerifyFailed(ConsensusError):
-    """A published plan no longer matches what its stored inputs give, or a stored record was changed."""
+class OutputNotWritable(ConsensusError):
+    """An output path names a folder, a folder that does not exist, or a place the tool may not write."""
 
 
 @dataclass(frozen=True)

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import datetime as dt
+import math
 from pathlib import Path
 
 import numpy as np
@@ -13,6 +14,8 @@ from hypothesis import strategies as st
 
 from consensus.errors import InputRejected, InvalidSpec
 from consensus.intake.checks import (
+    DEFAULT_LIMITS,
+    IntakeLimits,
     check_actual_rows,
     check_event_rows,
     check_forecast_rows,
@@ -23,7 +26,7 @@ from consensus.intake.reader import RawTable, read_table
 from consensus.periods import horizon_months
 
 DATA = Path(__file__).parent / "data"
-BAD, GOOD = DATA / "bad", DATA / "good"
+BAD, GOOD, HOSTILE = DATA / "bad", DATA / "good", DATA / "hostile"
 
 ITEMS = pd.DataFrame(
     {
@@ -37,19 +40,19 @@ HORIZONS = {"2026-11": horizon_months("2026-11", 18), "2026-12": horizon_months(
 DEFAULT_CYCLE = "2026-11"
 
 
-def run_check(path: Path, *, default_cycle: str | None = DEFAULT_CYCLE):
+def run_check(path: Path, *, default_cycle: str | None = DEFAULT_CYCLE, limits: IntakeLimits = DEFAULT_LIMITS):
     """Read a file and run the check its name starts with (forecast_, events_, actuals_, items_ …)."""
     raw = read_table(path)
     kind = path.name.split("_")[0].split(".")[0]
     if kind == "forecast":
         return check_forecast_rows(raw, filename=path.name, items=ITEMS, locations=LOCATIONS,
-                                   horizons=HORIZONS, default_cycle=default_cycle)
+                                   horizons=HORIZONS, default_cycle=default_cycle, limits=limits)
     if kind == "events":
         return check_event_rows(raw, filename=path.name, items=ITEMS, locations=LOCATIONS,
-                                horizons=HORIZONS, default_cycle=default_cycle)
+                                horizons=HORIZONS, default_cycle=default_cycle, limits=limits)
     if kind == "actuals":
-        return check_actual_rows(raw, filename=path.name, items=ITEMS, locations=LOCATIONS)
-    return check_master_rows(raw, filename=path.name, kind=kind)
+        return check_actual_rows(raw, filename=path.name, items=ITEMS, locations=LOCATIONS, limits=limits)
+    return check_master_rows(raw, filename=path.name, kind=kind, limits=limits)
 
 
 # One line per expected problem: file, row, column and the value as the user typed it, then the expectation.
@@ -341,6 +344,205 @@ def test_monthly_actuals_taken_for_a_forecast_fail_the_horizon_check():
     assert detect_file_kind(_raw(raw.frame.to_dict("list"), meta={"kind": "actuals"})) == "actuals"
     with pytest.raises(InputRejected, match="the columns of a forecast"):
         detect_file_kind(_raw({"colour": ["red"]}))
+
+
+# ---- hostile files: absurd numbers, future history, formula codes, optional columns ---------------
+# Fixed limits, so the expectations do not move with the calendar (the default latest month is today's).
+LIMITS = IntakeLimits(latest_actual_month="2026-12")
+FORMULA_CODE = "expected a code that does not start with '=', '+', '-', '@', a tab or a carriage return"
+HOSTILE_ROWS: dict[str, list[str]] = {
+    # 1e308 is finite (IEEE 754 doubles reach about 1.8e308) but two of them sum to inf: the limit is 10^9.
+    "forecast_huge_quantity.csv": [
+        "forecast_huge_quantity.csv, row 2, column 'quantity': got '1e308'; expected a quantity of at most 1,000,000,000",
+        "forecast_huge_quantity.csv, row 3, column 'quantity': got '1000000001'; expected a quantity of at most 1,000,000,000",
+    ],
+    "actuals_huge_quantity.csv": [
+        "actuals_huge_quantity.csv, row 2, column 'quantity': got '1e308'; expected a quantity of at most 1,000,000,000",
+        "actuals_huge_quantity.csv, row 3, column 'quantity': got '1e308'",
+    ],
+    "items_huge_price.csv": ["items_huge_price.csv, row 2, column 'unit_price': got '1e308'; expected a unit price of at most 1,000,000,000"],
+    "bom_huge_numbers.csv": [
+        "bom_huge_numbers.csv, row 2, column 'qty_per': got '1e308'; expected a quantity per parent of at most 1,000,000",
+        "bom_huge_numbers.csv, row 3, column 'lead_time_months': got '1000000'; expected a lead time of at most 120 months",
+    ],
+    # The horizon of cycle 2026-11 is 2026-12 … 2028-05; 24 months either side reach 2024-12 and 2030-05.
+    "events_huge_effects.csv": [
+        "events_huge_effects.csv, row 2, column 'uplift_pct': got '1e308'; expected an uplift of at most 10,000 percent",
+        "events_huge_effects.csv, row 3, column 'units': got '-1e308'; expected units between -1,000,000,000 and 1,000,000,000",
+        "events_huge_effects.csv, row 4, column 'start': got '1900-01'; expected an event starting at most 24 months before the horizon, so not before 2024-12",
+        "events_huge_effects.csv, row 4, column 'end': got '2099-12'; expected an event ending at most 24 months after the horizon, so not after 2030-05",
+    ],
+    "actuals_far_dates.csv": [
+        "actuals_far_dates.csv, row 2, column 'date': got '2099-01-15'; expected a date in the months 1990-01 … 2026-12: orders cannot come from the future",
+        "actuals_far_dates.csv, row 3, column 'date': got '1900-01-01'; expected a date in the months 1990-01 … 2026-12",
+    ],
+    # A distribution center's forecast has the very columns of monthly history: its months give it away.
+    "actuals_is_a_forecast.csv": [
+        "actuals_is_a_forecast.csv, column 'period'; expected order history up to 2026-12; 3 of 4 rows are for later months (2027-01 … 2027-03), so this looks like a forecast",
+        "actuals_is_a_forecast.csv, row 2, column 'period': got '2027-01'; expected a month in 1990-01 … 2026-12: orders cannot come from the future",
+        "actuals_is_a_forecast.csv, row 3, column 'period': got '2027-02'",
+        "actuals_is_a_forecast.csv, row 4, column 'period': got '2027-03'",
+    ],
+    "actuals_with_cycle_column.csv": [
+        "actuals_with_cycle_column.csv, column 'cycle'; expected order history (item, location, date or period, quantity), not a forecast; it has the column(s) 'cycle'",
+    ],
+    # OWASP, "CSV Injection": cells starting with =, +, -, @, tab or carriage return run as formulas.
+    "forecast_formula_codes.csv": [
+        "forecast_formula_codes.csv, row 2, column 'item': got '=HYPERLINK(\"http://x.invalid\")'; " + FORMULA_CODE,
+        "forecast_formula_codes.csv, row 3, column 'location': got '+L1'; " + FORMULA_CODE,
+    ],
+    "items_formula_codes.csv": [
+        "items_formula_codes.csv, row 2, column 'item': got '@A1'; " + FORMULA_CODE,
+        "items_formula_codes.csv, row 3, column 'family': got '-FAM'; " + FORMULA_CODE,
+    ],
+    "bom_formula_codes.csv": [
+        "bom_formula_codes.csv, row 2, column 'parent': got '=A'; " + FORMULA_CODE,
+        "bom_formula_codes.csv, row 3, column 'component': got '+B'; " + FORMULA_CODE,
+    ],
+    "events_formula_name.csv": ["events_formula_name.csv, row 2, column 'event': got '=Spring promo'; " + FORMULA_CODE],
+    "items_no_description.csv": [],
+    "locations_no_description.csv": [],
+}
+
+
+def test_every_hostile_check_file_has_an_expectation():
+    assert {p.name for p in HOSTILE.glob("*.csv")} == set(HOSTILE_ROWS)
+
+
+@pytest.mark.parametrize("name", sorted(HOSTILE_ROWS))
+def test_hostile_file_yields_exactly_its_problems(name):
+    result = run_check(HOSTILE / name, limits=LIMITS)
+    shown = [str(p) for p in result.problems]
+    expected = HOSTILE_ROWS[name]
+    assert result.total_problems == len(expected), shown
+    for line, wanted in zip(shown, expected):
+        assert line.startswith(wanted), (line, wanted)
+
+
+@pytest.mark.parametrize("text, allowed", [("1000000000", True), ("1e9", True), ("1000000000.5", False),
+                                           ("1.7976931348623157e308", False), ("0", True)])
+def test_the_quantity_limit_is_inclusive_and_every_kind_applies_it(text, allowed):
+    """At most 10^9 units a row, by default, for forecasts and order history alike (IntakeLimits)."""
+    forecast = _raw({"item": ["A100"], "period": ["2026-12"], "quantity": [text]})
+    actuals = _raw({"item": ["A100"], "location": ["L1"], "period": ["2026-10"], "quantity": [text]})
+    assert run_raw(forecast, "forecast").is_clean == allowed
+    assert run_raw(actuals, "actuals").is_clean == allowed
+
+
+def run_raw(raw: RawTable, kind: str, *, limits: IntakeLimits = LIMITS):
+    if kind == "forecast":
+        return check_forecast_rows(raw, items=ITEMS, locations=LOCATIONS, horizons=HORIZONS,
+                                   default_cycle=DEFAULT_CYCLE, limits=limits)
+    return check_actual_rows(raw, items=ITEMS, locations=LOCATIONS, limits=limits)
+
+
+def test_limits_are_settings_a_larger_business_raises():
+    raw = _raw({"item": ["A100"], "period": ["2026-12"], "value": ["5e12"]})
+    assert not run_raw(raw, "forecast").is_clean
+    assert run_raw(raw, "forecast", limits=IntakeLimits(max_forecast_value=1e13)).is_clean
+    history = _raw({"item": ["A100"], "location": ["L1"], "date": ["1985-06-30"], "quantity": ["1"]})
+    assert not run_raw(history, "actuals").is_clean
+    assert run_raw(history, "actuals", limits=IntakeLimits(earliest_actual_month="1980-01",
+                                                           latest_actual_month="2026-12")).is_clean
+
+
+def test_every_clean_number_sums_to_a_finite_total():
+    """What the limits are for: a file's clean numbers, however many, add up without overflow (IEEE 754)."""
+    count = 2_000
+    raw = _raw({"item": ["A100"] * count, "location": ["L1"] * count,
+                "date": (pd.Timestamp("2026-01-01") + pd.to_timedelta(np.arange(count) % 300, unit="D"))
+                .strftime("%Y-%m-%d").tolist(),
+                "quantity": (["1e9", "1e308", "1.7e308", "9e15"] * (count // 4))})
+    result = run_raw(raw, "actuals")
+    assert result.total_problems == count // 2 + count // 4
+    assert np.isfinite(result.clean["quantity"].sum()) and result.clean["quantity"].max() <= 1e9 * count
+
+
+def test_the_latest_order_month_is_by_default_this_calendar_month():
+    today = dt.date.today()
+    this_month = f"{today.year:04d}-{today.month:02d}"
+    next_month = (pd.Period(this_month, "M") + 1).strftime("%Y-%m")
+    assert DEFAULT_LIMITS.actual_months()[1] == this_month
+    raw = _raw({"item": ["A100", "A100"], "location": ["L1", "L1"], "period": [this_month, next_month],
+                "quantity": ["1", "1"]})
+    result = check_actual_rows(raw, items=ITEMS, locations=LOCATIONS)
+    assert [p.row for p in result.problems] == [3]
+    assert "orders cannot come from the future" in result.problems[0].expected
+
+
+def test_a_forecast_template_given_as_actuals_is_refused_whole():
+    raw = _raw({"item": ["A100"], "location": ["L1"], "period": ["2026-10"], "quantity": ["3"]},
+               meta={"source": "dc", "cycle": "2026-11"})
+    result = run_raw(raw, "actuals")
+    assert result.total_problems == 1 and result.problems[0].row is None
+    assert "it is a template, with source 'dc', cycle '2026-11'" in result.problems[0].expected
+
+
+def test_a_demo_distribution_center_forecast_is_refused_by_the_actuals_check():
+    """The bundled sample company's DC forecast (792 rows, item, location, period, quantity), given as actuals."""
+    path = DATA.parent.parent / "sample_inputs" / "current" / "dc_n1.csv"
+    master = pd.read_csv(DATA.parent.parent / "sample_inputs" / "master" / "items.csv", dtype=str)
+    places = pd.read_csv(DATA.parent.parent / "sample_inputs" / "master" / "locations.csv", dtype=str)
+    result = check_actual_rows(read_table(path), items=master, locations=places,
+                               limits=IntakeLimits(latest_actual_month="2026-11"))
+    assert result.total_problems == 1 + 792
+    assert result.problems[0].row is None and "looks like a forecast" in result.problems[0].expected
+
+
+@pytest.mark.parametrize("code", ["=A1", "+A1", "-A1", "@A1", "\tA1", "\rA1"])
+@pytest.mark.parametrize("column", ["item", "family"])
+def test_every_formula_start_is_refused_in_master_codes(code, column):
+    """The general rule behind the files above, on the OWASP list of formula starts."""
+    raw = _raw({"item": ["OK1"], "family": ["FAM"], column: [code]})  # built by hand: the reader would strip a tab
+    result = check_master_rows(raw, kind="items")
+    assert [p.column for p in result.problems] == [column]
+    assert result.problems[0].expected.startswith("a code that does not start with")
+
+
+def test_codes_with_formula_characters_inside_are_fine():
+    raw = _raw({"item": ["A-100", "B+2", "C@3", "D=4"], "family": ["F-1"] * 4})
+    assert check_master_rows(raw, kind="items").is_clean
+
+
+def test_free_text_is_kept_and_the_tools_own_escape_is_removed():
+    """Notes and descriptions are free text: kept as received; "'=" (the tool's CSV escape) reads back as "="."""
+    raw = _raw({"item": ["A100", "A200"], "period": ["2026-12", "2026-12"], "quantity": ["1", "2"],
+                "note": ["=1+1", "'@team"]})
+    assert run_raw(raw, "forecast").clean["note"].tolist() == ["=1+1", "@team"]
+    items = _raw({"item": ["A1", "A2"], "family": ["F", "F"], "description": ["-5% pack", "'+ spare"]})
+    assert check_master_rows(items, kind="items").clean["description"].tolist() == ["-5% pack", "+ spare"]
+
+
+def test_master_clean_frame_always_carries_a_description():
+    for kind, columns in (("items", {"item": ["A1"], "family": ["F"]}), ("locations", {"location": ["L1"], "region": ["R"]})):
+        clean = check_master_rows(_raw(columns), kind=kind).clean
+        assert clean["description"].tolist() == [""] and clean["description"].notna().all()
+        blank = check_master_rows(_raw({**columns, "description": [""]}), kind=kind).clean
+        assert blank["description"].tolist() == [""]
+
+
+@settings(max_examples=80, deadline=None)
+@given(numbers=st.lists(st.floats(allow_nan=True, allow_infinity=True, width=64), min_size=1, max_size=20))
+def test_a_number_is_accepted_exactly_when_finite_and_within_its_limit(numbers):
+    """Oracle: Python's float() of the cell text and IEEE 754 finiteness (math.isfinite), row by row."""
+    texts = [repr(x) for x in numbers]
+    raw = _raw({"item": ["A100"] * len(texts), "location": ["L1"] * len(texts), "date": ["2026-10-01"] * len(texts),
+                "quantity": texts})
+    result = check_actual_rows(raw, items=ITEMS, locations=LOCATIONS, limits=LIMITS, max_problems=100)
+    allowed = [math.isfinite(float(t)) and 0 <= float(t) <= LIMITS.max_actual_quantity for t in texts]
+    assert result.total_problems == allowed.count(False)
+    assert [p.row for p in result.problems] == [row for row, ok in enumerate(allowed, start=2) if not ok]
+    assert math.isfinite(result.clean["quantity"].sum())
+
+
+@pytest.mark.parametrize("options", [{"max_forecast_quantity": 0}, {"max_unit_price": float("inf")},
+                                     {"max_qty_per": float("nan")}, {"max_actual_quantity": True},
+                                     {"earliest_actual_month": "1990-13"}, {"latest_actual_month": "2026-1"},
+                                     {"earliest_actual_month": "2027-01", "latest_actual_month": "2026-12"},
+                                     {"event_months_outside_horizon": -1}, {"max_lead_time_months": "120"}])
+def test_limits_are_checked_when_made(options):
+    with pytest.raises(InvalidSpec):
+        IntakeLimits(**options)
 
 
 # ---- property tests -------------------------------------------------------

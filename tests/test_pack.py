@@ -550,3 +550,82 @@ def test_joined_links_and_bookmarks_resolve(parts_inputs, parts_pack):
     walk(outline)
     for family in parts_inputs.items["family"].unique():
         assert f"Family {family}" in titles
+
+
+# --------------------------------------------------------------------------- writing the files
+
+PACK_CHILD = """
+import sys, time
+import weasyprint
+from consensus.pack.inputs import example_pack_inputs
+from consensus.pack.render import render_pack
+
+whole_pdf = weasyprint.Document.write_pdf
+
+def slow_write_pdf(self, target=None, **options):
+    # A slow disk: the finished PDF reaches the file in small pieces, so a kill lands mid-write.
+    data = whole_pdf(self, None, **options)
+    with open(target, "wb") as handle:
+        for start in range(0, len(data), 2048):
+            handle.write(data[start:start + 2048])
+            handle.flush()
+            if start == 2048:
+                print("writing", flush=True)
+            time.sleep(0.05)
+
+weasyprint.Document.write_pdf = slow_write_pdf
+render_pack(example_pack_inputs(), pdf_path=sys.argv[1], html_path=sys.argv[2], workers=1)
+print("done", flush=True)
+"""
+
+
+def test_pack_killed_while_writing_leaves_the_previous_pdf_and_html(draft_pack, tmp_path):
+    import os
+    import signal
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    pdf, html = tmp_path / "pack.pdf", tmp_path / "pack.html"
+    pdf.write_bytes(draft_pack.pdf_path.read_bytes())
+    html.write_text("<p>last month's pack</p>", encoding="utf-8")
+    before = pdf.read_bytes()
+    env = {**os.environ, "PYTHONPATH": str(Path(__file__).parent.parent)}
+    child = subprocess.Popen([sys.executable, "-c", PACK_CHILD, str(pdf), str(html)], stdout=subprocess.PIPE, env=env)
+    assert child.stdout.readline().strip() == b"writing"
+    child.send_signal(signal.SIGKILL)
+    assert child.wait(timeout=120) == -signal.SIGKILL
+    assert pdf.read_bytes() == before  # the previous pack, whole (it was written straight over before)
+    assert len(pypdf.PdfReader(str(pdf)).pages) > 0
+    assert html.read_text(encoding="utf-8") == "<p>last month's pack</p>"
+
+
+def test_pack_into_a_folder_or_a_missing_folder_fails_before_any_work(draft_inputs, tmp_path, monkeypatch):
+    from consensus.errors import OutputNotWritable
+    from consensus.pack import render
+
+    monkeypatch.setattr(render, "build_pack_context", lambda *a, **k: pytest.fail("work started"))
+    for options in ({"pdf_path": tmp_path}, {"pdf_path": tmp_path / "no" / "pack.pdf"},
+                    {"pdf_path": tmp_path / "pack.pdf", "html_path": tmp_path / "no" / "pack.html"}):
+        with pytest.raises(OutputNotWritable):
+            render_pack(draft_inputs, **options)
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_a_pack_that_fails_to_render_leaves_the_previous_files(draft_inputs, tmp_path, monkeypatch):
+    import weasyprint
+
+    pdf, html = tmp_path / "pack.pdf", tmp_path / "pack.html"
+    pdf.write_bytes(b"%PDF-1.7 previous")
+    html.write_text("previous", encoding="utf-8")
+
+    def failing_write_pdf(self, target=None, **options):
+        with open(target, "wb") as handle:
+            handle.write(b"%PDF-1.7 half")
+        raise RuntimeError("renderer failed")
+
+    monkeypatch.setattr(weasyprint.Document, "write_pdf", failing_write_pdf)
+    with pytest.raises(RuntimeError, match="renderer failed"):
+        render_pack(draft_inputs, pdf_path=pdf, html_path=html, workers=1)
+    assert pdf.read_bytes() == b"%PDF-1.7 previous" and html.read_text(encoding="utf-8") == "previous"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["pack.html", "pack.pdf"]

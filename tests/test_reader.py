@@ -5,6 +5,7 @@ from __future__ import annotations
 import csv
 import datetime as dt
 import io
+import zipfile
 from pathlib import Path
 
 import numpy as np
@@ -13,8 +14,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from consensus.errors import InputRejected
-from consensus.intake.reader import KNOWN_COLUMNS, cell_text, detect_delimiter, read_table
+from consensus.errors import InputRejected, InvalidSpec
+from consensus.intake.reader import KNOWN_COLUMNS, ReadLimits, cell_text, detect_delimiter, read_table
 
 DATA = Path(__file__).parent / "data"
 BAD, GOOD = DATA / "bad", DATA / "good"
@@ -255,3 +256,186 @@ def test_cp1252_text_is_read_right(tmp_path_factory, pairs):
     table = read_table(path)
     assert table.file_format["encoding"] == "cp1252"
     assert table.frame.loc[0, "note"] == note.strip()  # cells are stripped of surrounding spaces
+
+
+# ---- hostile files: damaged workbooks, bombs, caps -------------------------------------------------------
+HOSTILE = DATA / "hostile"
+
+
+def _workbook(rows: list[list]) -> bytes:
+    workbook = openpyxl.Workbook()
+    sheet = workbook.active
+    sheet.title = "forecast"
+    for row in rows:
+        sheet.append(row)
+    buffer = io.BytesIO()
+    workbook.save(buffer)
+    return buffer.getvalue()
+
+
+def _with_part(data: bytes, name: str, content: bytes) -> bytes:
+    source = zipfile.ZipFile(io.BytesIO(data))
+    buffer = io.BytesIO()
+    with zipfile.ZipFile(buffer, "w", zipfile.ZIP_DEFLATED) as out:
+        for info in source.infolist():
+            out.writestr(info.filename, content if info.filename == name else source.read(info.filename))
+    return buffer.getvalue()
+
+
+SMALL = [["item", "location", "period", "quantity"], ["A100", "L1", "2026-12", 5]]
+SHEET = "xl/worksheets/sheet1.xml"
+
+
+@pytest.mark.parametrize("name, words", [
+    ("xlsx_broken_xml.xlsx", "its contents are damaged (ParseError"),
+    ("xlsx_no_workbook_part.xlsx", "its contents are damaged (KeyError"),
+    ("xlsx_no_sheet_part.xlsx", "a visible sheet with data"),
+    ("xlsx_bad_cell_reference.xlsx", "its contents are damaged (ValueError"),
+])
+def test_damaged_workbook_is_refused_by_name_not_with_a_traceback(name, words):
+    """Valid zip archives with broken XML, a missing part or an impossible cell reference (ECMA-376 ends at XFD)."""
+    with pytest.raises(InputRejected) as caught:
+        read_table(HOSTILE / name)
+    assert caught.value.file == name
+    assert words in str(caught.value)
+
+
+def test_every_hostile_workbook_has_an_expectation():
+    tested = {"xlsx_broken_xml.xlsx", "xlsx_no_workbook_part.xlsx", "xlsx_no_sheet_part.xlsx",
+              "xlsx_bad_cell_reference.xlsx"}
+    assert {p.name for p in HOSTILE.glob("*.xlsx")} == tested
+
+
+def test_compressed_bomb_is_refused_from_the_zip_directory_before_any_xml_is_parsed(tmp_path, monkeypatch):
+    """A sheet of repeated rows compresses about 1,000 to 1 (deflate's ceiling, from memory); real sheets 11-15."""
+    row = b"<row><c t=\"inlineStr\"><is><t>A100</t></is></c></row>"
+    body = b"<worksheet xmlns=\"http://schemas.openxmlformats.org/spreadsheetml/2006/main\"><sheetData>"
+    bomb = _with_part(_workbook(SMALL), SHEET, body + row * 400_000 + b"</sheetData></worksheet>")
+    path = tmp_path / "bomb.xlsx"
+    path.write_bytes(bomb)
+    declared = zipfile.ZipFile(path).getinfo(SHEET)
+    assert declared.file_size > 100 * declared.compress_size > 100 * 100  # 20 MB from a few KB
+    monkeypatch.setattr(openpyxl, "load_workbook", lambda *a, **k: pytest.fail("the bomb was opened"))
+    with pytest.raises(InputRejected, match="compress at most 100 to 1; xl/worksheets/sheet1.xml unpacks"):
+        read_table(path)
+
+
+def test_declared_unpacked_size_is_capped(tmp_path):
+    rows = [SMALL[0]] + [[f"A{i:05d}", "L1", "2026-12", i] for i in range(20_000)]
+    path = tmp_path / "big.xlsx"
+    path.write_bytes(_workbook(rows))
+    unpacked = sum(p.file_size for p in zipfile.ZipFile(path).infolist())
+    with pytest.raises(InputRejected, match=f"unpacks to at most 1,000,000 bytes; this one declares {unpacked:,} bytes"):
+        read_table(path, limits=ReadLimits(max_inflated_bytes=1_000_000))
+    assert len(read_table(path, limits=ReadLimits(max_inflated_bytes=unpacked)).frame) == 20_000
+
+
+def test_a_part_that_lies_about_its_size_is_not_inflated_past_it(tmp_path):
+    """Python's zipfile stops a part at its declared size and checks its CRC-32 (zipfile documentation)."""
+    data = bytearray(_workbook([SMALL[0]] + [["A100", "L1", "2026-12", i] for i in range(2_000)]))
+    entry, at = -1, 0
+    while True:  # the central-directory entry of the sheet part
+        at = data.find(b"PK\x01\x02", at + 1)
+        name_length = int.from_bytes(data[at + 28:at + 30], "little")
+        if data[at + 46:at + 46 + name_length] == SHEET.encode():
+            entry = at
+            break
+    data[entry + 24:entry + 28] = (200).to_bytes(4, "little")  # uncompressed size: 200 bytes
+    path = tmp_path / "liar.xlsx"
+    path.write_bytes(bytes(data))
+    assert zipfile.ZipFile(path).getinfo(SHEET).file_size == 200
+    with pytest.raises(InputRejected, match="liar.xlsx; expected a readable .xlsx workbook; its contents are damaged"):
+        read_table(path)
+
+
+def test_a_sheet_that_jumps_to_row_two_billion_stops_at_the_row_cap(tmp_path):
+    """openpyxl fills the rows a sheet skips with empty ones; counting them stops the read at once."""
+    good = _workbook(SMALL)
+    sheet = zipfile.ZipFile(io.BytesIO(good)).read(SHEET)
+    path = tmp_path / "jump.xlsx"
+    path.write_bytes(_with_part(good, SHEET, sheet.replace(b'r="2"', b'r="2000000000"').replace(b'2"', b'2000000000"')))
+    with pytest.raises(InputRejected, match="at most 2,000,000 rows in sheet 'forecast'"):
+        read_table(path)
+
+
+def test_rows_columns_and_cells_are_capped_with_the_row_named(tmp_path):
+    rows = [SMALL[0]] + [["A100", "L1", "2026-12", i] for i in range(10)]
+    path = tmp_path / "ten.xlsx"
+    path.write_bytes(_workbook(rows))
+    with pytest.raises(InputRejected, match="at most 5 rows"):
+        read_table(path, limits=ReadLimits(max_rows=5))
+    with pytest.raises(InputRejected, match="at most 20 filled cells in sheet 'forecast'; row 6 goes past"):  # header and rows 2-5 fill 20
+        read_table(path, limits=ReadLimits(max_cells=20))
+    assert len(read_table(path, limits=ReadLimits(max_rows=11, max_cells=44)).frame) == 10
+
+    wide = _workbook(SMALL)
+    sheet = zipfile.ZipFile(io.BytesIO(wide)).read(SHEET)
+    far = b'<c r="ZZZ2" t="n"><v>1</v></c></row></sheetData>'  # column 18,278, the last openpyxl knows
+    path = tmp_path / "wide.xlsx"
+    path.write_bytes(_with_part(wide, SHEET, sheet.replace(b"</row></sheetData>", far)))
+    with pytest.raises(InputRejected) as caught:
+        read_table(path)
+    assert "wide.xlsx, row 2, column '#18278'; expected at most 256 used columns" in str(caught.value)
+
+
+def test_trailing_empty_cells_are_not_columns(tmp_path):
+    """Formatting far to the right (empty values) is cut off row by row, so it neither counts nor costs."""
+    workbook = openpyxl.Workbook()
+    sheet = workbook.active
+    for row in SMALL:
+        sheet.append(row)
+    sheet.cell(row=2, column=1000).value = "   "
+    sheet.cell(row=3, column=300).value = None
+    sheet.cell(row=3, column=300).font = openpyxl.styles.Font(bold=True)
+    path = tmp_path / "formatted.xlsx"
+    workbook.save(path)
+    assert list(read_table(path).frame.columns) == ["item", "location", "period", "quantity"]
+
+
+def test_a_template_sheet_of_many_rows_is_refused(tmp_path):
+    workbook = openpyxl.Workbook()
+    workbook.active.append(SMALL[0])
+    workbook.active.append(SMALL[1])
+    meta = workbook.create_sheet("_consensus")
+    for number in range(1_500):
+        meta.append([f"key{number}", "value"])
+    path = tmp_path / "meta.xlsx"
+    workbook.save(path)
+    with pytest.raises(InputRejected, match="'_consensus' sheet of at most 1,000 rows"):
+        read_table(path)
+
+
+def test_csv_cell_over_the_csv_modules_field_limit_names_the_row(tmp_path):
+    """Python's csv module refuses a field longer than csv.field_size_limit() (131,072 by default)."""
+    limit = csv.field_size_limit()
+    path = tmp_path / "long.csv"
+    path.write_text("item,location,period,quantity,note\nA100,L1,2026-12,5,ok\n"
+                    f"A100,L2,2026-12,5,{'x' * (limit + 1)}\n", encoding="utf-8")
+    with pytest.raises(InputRejected) as caught:
+        read_table(path)
+    assert f"long.csv, row 3; expected cells of at most {limit:,} characters" in str(caught.value)
+    ok = tmp_path / "at_limit.csv"
+    ok.write_text(f"item,note\nA100,{'x' * limit}\n", encoding="utf-8")
+    assert len(read_table(ok).frame.loc[0, "note"]) == limit
+
+
+def test_over_long_header_cell_is_refused_at_row_one(tmp_path):
+    path = tmp_path / "long_header.csv"
+    path.write_text("item," + "x" * (csv.field_size_limit() + 1) + "\nA100,1\n", encoding="utf-8")
+    with pytest.raises(InputRejected, match="long_header.csv, row 1; expected cells of at most"):
+        read_table(path)
+
+
+def test_unclosed_quote_is_reported_at_its_row(tmp_path):
+    path = tmp_path / "quote.csv"
+    rows = "".join(f"A{i},L1,2026-12,{i}\n" for i in range(20_000))
+    path.write_text('item,location,period,quantity\nA1,L1,2026-12,"5\n' + rows, encoding="utf-8")
+    with pytest.raises(InputRejected, match="quote.csv, row 2; expected cells of at most .* opened and never closed"):
+        read_table(path)
+
+
+@pytest.mark.parametrize("options", [{"max_rows": 0}, {"max_inflated_bytes": -1}, {"max_columns": 2.5},
+                                     {"max_cells": True}, {"max_compression_ratio": "100"}])
+def test_read_limits_are_checked_when_made(options):
+    with pytest.raises(InvalidSpec):
+        ReadLimits(**options)

@@ -9,7 +9,7 @@ import openpyxl
 import pandas as pd
 import pytest
 
-from consensus.errors import InvalidSpec
+from consensus.errors import InvalidSpec, OutputNotWritable
 from consensus.intake.checks import check_forecast_rows, detect_file_kind
 from consensus.intake.reader import read_table
 from consensus.intake.template_file import write_template
@@ -115,3 +115,84 @@ def test_template_without_quantity_column_gets_one(tmp_path):
 def test_returned_template_path_is_the_one_given(tmp_path):
     target = tmp_path / "nested.xlsx"
     assert write_template(target, _scope_frame(), meta=META) == Path(target)
+
+
+# ---- formula text and safe writing -------------------------------------------------------------------
+# Notes a submitter or planner might type; each starts with a character a spreadsheet runs as a formula
+# (OWASP, "CSV Injection": "=", "+", "-", "@", tab, carriage return).
+FORMULA_NOTES = ["=HYPERLINK(\"http://x.invalid\",\"open\")", "+41 22 000 00 00", "-5% after the price rise",
+                 "@team please check", "plain note"]
+
+
+def _frame_with_notes() -> pd.DataFrame:
+    frame = _scope_frame().drop(columns=["quantity"]).head(len(FORMULA_NOTES)).copy()
+    frame["note"] = FORMULA_NOTES
+    return frame
+
+
+def _fill_quantities(path: Path) -> None:
+    workbook = openpyxl.load_workbook(path)
+    sheet = workbook["forecast"]
+    column = [c.value for c in sheet[1]].index("quantity") + 1
+    for row in range(2, sheet.max_row + 1):
+        sheet.cell(row=row, column=column).value = row
+    workbook.save(path)
+
+
+def test_xlsx_template_stores_formula_text_as_text_cells(tmp_path):
+    """Read with openpyxl, the reference reader: every note is a string cell (data type 's'), never 'f'."""
+    path = write_template(tmp_path / "t.xlsx", _frame_with_notes(), meta={**META, "scope": "=region NORTH"})
+    workbook = openpyxl.load_workbook(path)
+    sheet = workbook["forecast"]
+    column = [c.value for c in sheet[1]].index("note") + 1
+    cells = [sheet.cell(row=r, column=column) for r in range(2, 2 + len(FORMULA_NOTES))]
+    assert [c.value for c in cells] == FORMULA_NOTES
+    assert [c.data_type for c in cells] == ["s"] * len(FORMULA_NOTES)
+    assert [bool(c.quotePrefix) for c in cells] == [True, True, True, True, False]
+    meta_cell = next(r[1] for r in workbook["_consensus"].iter_rows(min_row=2) if r[0].value == "scope")
+    assert meta_cell.data_type == "s" and meta_cell.value == "=region NORTH"
+
+
+def test_returned_xlsx_template_reads_back_the_original_notes(tmp_path):
+    path = write_template(tmp_path / "t.xlsx", _frame_with_notes(), meta=META)
+    _fill_quantities(path)  # the submitter's spreadsheet saves the file again
+    raw = read_table(path)
+    result = check_forecast_rows(raw, filename=path.name, items=ITEMS, locations=LOCATIONS, horizons=HORIZONS,
+                                 default_cycle=CYCLE)
+    assert result.is_clean, [str(p) for p in result.problems]
+    assert result.clean["note"].tolist() == FORMULA_NOTES
+
+
+def test_csv_template_escapes_formula_text_and_reads_back_the_original(tmp_path):
+    path = write_template(tmp_path / "t.csv", _frame_with_notes(), meta=META)
+    text = path.read_text(encoding="utf-8-sig")
+    assert "'=HYPERLINK" in text and "'+41 22" in text and "'-5% after" in text and "'@team" in text
+    assert ",plain note" in text  # text that is no formula is written as it is
+    frame = pd.read_csv(path, dtype=str, keep_default_na=False)
+    frame["quantity"] = "7"
+    frame.to_csv(path, index=False)  # the submitter fills in the numbers
+    result = check_forecast_rows(read_table(path), filename=path.name, items=ITEMS, locations=LOCATIONS,
+                                 horizons=HORIZONS, default_cycle=CYCLE)
+    assert result.is_clean, [str(p) for p in result.problems]
+    assert result.clean["note"].tolist() == FORMULA_NOTES  # the quote the tool added is removed again
+
+
+def test_template_into_a_folder_or_a_missing_folder_is_a_clear_error(tmp_path):
+    for target in (tmp_path, tmp_path / "no_such_folder" / "t.xlsx", tmp_path / "no_such_folder" / "t.csv"):
+        with pytest.raises(OutputNotWritable):
+            write_template(target, _scope_frame(), meta=META)
+
+
+def test_a_template_that_fails_to_save_leaves_the_previous_one(tmp_path, monkeypatch):
+    path = write_template(tmp_path / "t.xlsx", _scope_frame(), meta=META)
+    before = path.read_bytes()
+
+    def broken_save(self, filename):
+        Path(filename).write_bytes(b"PK\x03\x04 half a workbook")
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(openpyxl.Workbook, "save", broken_save)
+    with pytest.raises(OutputNotWritable, match="No space left on device"):
+        write_template(path, _scope_frame(), meta=META)
+    assert path.read_bytes() == before
+    assert [p.name for p in tmp_path.iterdir()] == ["t.xlsx"]

@@ -22,10 +22,25 @@ Policy decisions, kept in one place:
   problem, so a half-filled template is not taken as zeros or skipped.
 * ``clean`` holds only the rows without problems; a caller that must keep a
   file all-or-nothing rejects it whenever ``total_problems`` is not zero.
+* Plausible numbers only: every number must be finite and within the
+  :class:`IntakeLimits` of its file kind (a quantity of 1e308 is finite, but
+  two of them sum to infinity and every later step fails), and order history
+  must lie in the months the limits allow (orders cannot come from the
+  future, so a forecast given to the actuals load is refused).
+* Codes (item, family, location, region, parent, component, event names)
+  may not start with "=", "+", "-", "@", a tab or a carriage return: a
+  spreadsheet would run them as formulas when the tool writes them out
+  (OWASP, "CSV Injection"), and a code cannot be escaped without changing it.
+  Free text (notes, descriptions) is kept as received and escaped on the way
+  out by :mod:`consensus.outputs`; the one quote that escaping adds before a
+  formula character is removed again here, so a returned CSV template reads
+  back to the original text.
 """
 
 from __future__ import annotations
 
+import datetime as dt
+import math
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -33,7 +48,8 @@ import pandas as pd
 
 from consensus.errors import InputRejected, InvalidSpec, Problem
 from consensus.intake.reader import RawTable
-from consensus.periods import MONTH_PATTERN
+from consensus.outputs import looks_like_formula, unescape_formula_text
+from consensus.periods import MONTH_PATTERN, is_month, month_index, shift_month
 
 DEFAULT_MAX_PROBLEMS = 50
 REFERENCE_COLUMNS = frozenset({"last_consensus"})
@@ -56,6 +72,78 @@ MASTER_REQUIRED = {
 }
 MASTER_OF = {"item": "item", "family": "item", "location": "location", "region": "location"}
 FILE_KINDS = ("forecast", "events", "actuals", "items", "locations", "bom")
+#: Columns that only a forecast or an events file has; order history with one of them is a misrouted forecast.
+FORECAST_ONLY_COLUMNS = ("cycle", "week", "value", "last_consensus", "family", "region", "event", "uplift_pct",
+                         "units", "start", "end")
+#: Keys of a template's hidden sheet that say the file was made as a forecast template.
+TEMPLATE_META_KEYS = ("source", "cycle", "scope")
+FORMULA_CODE_TEXT = ("a code that does not start with '=', '+', '-', '@', a tab or a carriage return "
+                     "(a spreadsheet would run it as a formula)")
+
+
+@dataclass(frozen=True)
+class IntakeLimits:
+    """The largest plausible number of each file kind, and the months order history may fall in.
+
+    A value beyond its limit is refused with its row and column, like any
+    other problem; the limits are settings of a store, so a business whose
+    numbers are larger raises them.  Defaults, each a round bound far above
+    any real figure and far below where floating-point sums lose meaning:
+
+    * quantities in units (forecasts, order history, event units): 10⁹ a
+      row, i.e. a billion units of one item at one location in one month;
+      2,000,000 such rows still sum exactly in a double (2·10¹⁵ < 2⁵³).
+    * money values of a forecast: 10¹² a row; unit prices: 10⁹.
+    * event uplifts: at most +10,000 percent (a hundredfold); a launch that
+      starts from nothing is given in ``units``.
+    * BOM: at most 10⁶ components per parent, lead times of at most 120
+      months.
+    * order history: months from ``earliest_actual_month`` (1990-01, which
+      catches a spreadsheet's zero date 1900-01-00 and two-digit years read as
+      the first century) to ``latest_actual_month``; ``None`` means the
+      current calendar month, since orders cannot come from the future.
+    * events: at most ``event_months_outside_horizon`` (24) months before the
+      cycle's horizon starts or after it ends.
+    """
+
+    max_forecast_quantity: float = 1e9
+    max_forecast_value: float = 1e12
+    max_actual_quantity: float = 1e9
+    max_event_units: float = 1e9
+    max_event_uplift_pct: float = 10_000.0
+    max_unit_price: float = 1e9
+    max_qty_per: float = 1e6
+    max_lead_time_months: int = 120
+    earliest_actual_month: str = "1990-01"
+    latest_actual_month: str | None = None
+    event_months_outside_horizon: int = 24
+
+    def __post_init__(self) -> None:
+        for name in ("max_forecast_quantity", "max_forecast_value", "max_actual_quantity", "max_event_units",
+                     "max_event_uplift_pct", "max_unit_price", "max_qty_per", "max_lead_time_months"):
+            value = getattr(self, name)
+            if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value) or value <= 0:
+                raise InvalidSpec(f"{name} must be a finite number above 0; got {value!r}")
+        months = {"earliest_actual_month": self.earliest_actual_month, "latest_actual_month": self.latest_actual_month}
+        for name, value in months.items():
+            if value is not None and not (isinstance(value, str) and is_month(value)):
+                raise InvalidSpec(f"{name} must be a month YYYY-MM; got {value!r}")
+        if self.latest_actual_month is not None and self.latest_actual_month < self.earliest_actual_month:
+            raise InvalidSpec(f"latest_actual_month {self.latest_actual_month} is before earliest_actual_month "
+                              f"{self.earliest_actual_month}")
+        outside = self.event_months_outside_horizon
+        if isinstance(outside, bool) or not isinstance(outside, int) or outside < 0:
+            raise InvalidSpec(f"event_months_outside_horizon must be a whole number of 0 or more; got {outside!r}")
+
+    def actual_months(self, *, today: dt.date | None = None) -> tuple[str, str]:
+        """The first and last month order history may fall in; the last is this calendar month unless set."""
+        if self.latest_actual_month is not None:
+            return self.earliest_actual_month, self.latest_actual_month
+        today = today or dt.date.today()
+        return self.earliest_actual_month, f"{today.year:04d}-{today.month:02d}"
+
+
+DEFAULT_LIMITS = IntakeLimits()
 
 
 @dataclass(frozen=True)
@@ -90,6 +178,7 @@ class _Issues:
         self.parts: list[pd.DataFrame] = []
         self.bad = np.zeros(len(self.rows), dtype=bool)
         self.warnings: list[Problem] = []
+        self.file_problems: list[Problem] = []
 
     def add(self, mask, column, values, expected) -> None:
         """Record one problem for every row where ``mask`` is true.
@@ -117,16 +206,21 @@ class _Issues:
     def warn(self, column: str | None, value: str | None, expected: str, row: int | None = None) -> None:
         self.warnings.append(Problem(self.filename, row, column, value, expected))
 
+    def add_file_problem(self, column: str | None, value: str | None, expected: str) -> None:
+        """A problem of the whole file (no row), listed before the rows' problems."""
+        self.file_problems.append(Problem(self.filename, None, column, value, expected))
+
     def result(self, clean: pd.DataFrame, max_problems: int) -> CheckResult:
+        first = self.file_problems[:max_problems]
         if not self.parts:
-            return CheckResult(clean, [], 0, self.warnings[:max_problems])
+            return CheckResult(clean, first, len(self.file_problems), self.warnings[:max_problems])
         found = pd.concat(self.parts, ignore_index=True).sort_values(["position", "rule"], kind="stable")
-        shown = found.head(max_problems)
-        problems = [
+        shown = found.head(max(0, max_problems - len(first)))
+        problems = first + [
             Problem(self.filename, int(self.rows[p]), None if c is None else str(c), None if v is None else str(v), str(e))
             for p, c, v, e in zip(shown["position"], shown["column"], shown["value"], shown["expected"])
         ]
-        return CheckResult(clean, problems, len(found), self.warnings[:max_problems])
+        return CheckResult(clean, problems, len(self.file_problems) + len(found), self.warnings[:max_problems])
 
 
 def _pick(values, positions: np.ndarray):
@@ -158,6 +252,24 @@ def _text(frame: pd.DataFrame, column: str) -> pd.Series:
     if column in frame.columns:
         return frame[column].astype("str")
     return pd.Series("", index=frame.index, dtype="str")
+
+
+def _free_text(frame: pd.DataFrame, column: str) -> pd.Series:
+    """A free-text column as received, less the one quote that the tool's own escaping put before a formula character."""
+    return unescape_formula_text(_text(frame, column)).astype("str")
+
+
+def _plain_codes(issues: _Issues, text: pd.Series, filled, *, column: str) -> np.ndarray:
+    """Flag filled codes that a spreadsheet would run as formulas; return the filled cells that are not."""
+    filled = np.asarray(filled, dtype=bool)
+    formula = filled & looks_like_formula(text)
+    issues.add(formula, column, text, FORMULA_CODE_TEXT)
+    return filled & ~formula
+
+
+def _amount(number: float) -> str:
+    """A limit as the user reads it: 1,000,000,000 rather than 1e+09."""
+    return f"{number:,.0f}" if float(number).is_integer() else f"{number:,g}"
 
 
 def _as_na(text: pd.Series) -> pd.Series:
@@ -235,9 +347,16 @@ def _parse_numbers(
     minimum: float | None = None,
     above_minimum: bool = False,
     minimum_text: str = "",
+    maximum: float | None = None,
+    maximum_text: str = "",
+    magnitude: bool = False,
     integer: bool = False,
 ) -> np.ndarray:
-    """Parse filled cells as finite numbers; flag text, NaN, infinities and values below the minimum."""
+    """Parse filled cells as finite numbers; flag text, NaN, infinities and values below the minimum or above the maximum.
+
+    With ``magnitude`` the maximum bounds the absolute value (for numbers
+    that may be negative, such as units lost to an event).
+    """
     filled = np.asarray(filled, dtype=bool)
     numbers = pd.to_numeric(text.where(filled, ""), errors="coerce").to_numpy(dtype=float)
     lowered = text.str.lower().str.lstrip("+-")
@@ -251,6 +370,9 @@ def _parse_numbers(
     if minimum is not None:
         low = numbers <= minimum if above_minimum else numbers < minimum
         issues.add(finite & low, column, text, minimum_text)
+    if maximum is not None:
+        size = np.abs(numbers) if magnitude else numbers
+        issues.add(finite & (size > maximum), column, text, maximum_text)
     if integer:
         issues.add(finite & (np.floor(numbers) != numbers), column, text, "a whole number")
     return np.where(finite, numbers, np.nan)
@@ -296,6 +418,14 @@ def _month_numbers(text: pd.Series, valid) -> np.ndarray:
     valid = np.asarray(valid, dtype=bool)
     safe = text.where(valid, "0000-01")
     return np.where(valid, safe.str.slice(0, 4).astype(int).to_numpy() * 12 + safe.str.slice(5, 7).astype(int).to_numpy() - 1, -1)
+
+
+def _month_names(indexes: np.ndarray) -> pd.Series:
+    """"YYYY-MM" of month indexes year*12 + month-1 (as :func:`_month_numbers` makes them); "" for negative ones."""
+    indexes = np.asarray(indexes)
+    safe = np.where(indexes >= 0, indexes, 0)
+    text = pd.Series(safe // 12, dtype="int64").astype(str).str.zfill(4) + "-" + pd.Series(safe % 12 + 1, dtype="int64").astype(str).str.zfill(2)
+    return text.where(indexes >= 0, "")
 
 
 def _iso_week_mondays(text: pd.Series, filled) -> tuple[np.ndarray, pd.Series]:
@@ -351,16 +481,18 @@ def check_forecast_rows(
     horizons: dict[str, list[str]],
     default_cycle: str | None,
     max_problems: int = DEFAULT_MAX_PROBLEMS,
+    limits: IntakeLimits = DEFAULT_LIMITS,
 ) -> CheckResult:
     """Check a forecast submission and return its rows typed.
 
     Each row names an ``item`` or a ``family``; optionally a ``location`` or
     a ``region`` (neither means every location); a ``period`` ("YYYY-MM") or
     an ISO ``week`` ("YYYY-Www"); and a ``quantity`` in units or a ``value``
-    in money (converted later with the unit price).  ``cycle`` is taken from
-    the row or else from ``default_cycle``; a period must lie in that cycle's
-    horizon, a week must overlap it.  Clean columns: [row, cycle, item,
-    family, location, region, period, week, quantity, value, note].
+    in money (converted later with the unit price), each from 0 to its limit
+    in ``limits``.  ``cycle`` is taken from the row or else from
+    ``default_cycle``; a period must lie in that cycle's horizon, a week must
+    overlap it.  Clean columns: [row, cycle, item, family, location, region,
+    period, week, quantity, value, note].
     """
     filename = filename or raw.file
     frame = raw.frame
@@ -375,15 +507,7 @@ def check_forecast_rows(
     if problems:
         return _reject_file(filename, problems, out_columns, issues.warnings)
 
-    item, family = _text(frame, "item"), _text(frame, "family")
-    is_item, is_family = _exactly_one(issues, item, family, ("item", "family"), required=True)
-    item = _match_codes(issues, item, is_item, items["item"], column="item", what="item")
-    family = _match_codes(issues, family, is_family, items["family"], column="family", what="family")
-
-    location, region = _text(frame, "location"), _text(frame, "region")
-    is_location, is_region = _exactly_one(issues, location, region, ("location", "region"), required=False)
-    location = _match_codes(issues, location, is_location, locations["location"], column="location", what="location")
-    region = _match_codes(issues, region, is_region, locations["region"], column="region", what="region")
+    item, family, location, region = _product_and_place(issues, frame, items, locations)
 
     cycles, known_cycle = _resolve_cycles(issues, frame, horizons, default_cycle)
     period, week = _text(frame, "period"), _text(frame, "week")
@@ -404,9 +528,11 @@ def check_forecast_rows(
     quantity_text, value_text = _text(frame, "quantity"), _text(frame, "value")
     is_quantity, is_value = _exactly_one(issues, quantity_text, value_text, ("quantity", "value"), required=True)
     quantity = _parse_numbers(issues, quantity_text, is_quantity, column="quantity", minimum=0.0,
-                              minimum_text="a quantity of 0 or more")
+                              minimum_text="a quantity of 0 or more", maximum=limits.max_forecast_quantity,
+                              maximum_text=f"a quantity of at most {_amount(limits.max_forecast_quantity)}")
     value = _parse_numbers(issues, value_text, is_value, column="value", minimum=0.0,
-                           minimum_text="a value of 0 or more")
+                           minimum_text="a value of 0 or more", maximum=limits.max_forecast_value,
+                           maximum_text=f"a value of at most {_amount(limits.max_forecast_value)}")
     _check_prices_for_values(issues, items, item, family, is_value, value_text)
 
     grain = cycles + "|" + _level_key(item, family, ("item", "family")) + "|" + _level_key(location, region, ("location", "region")) + "|" + _level_key(period, week, ("period", "week"))
@@ -428,10 +554,28 @@ def check_forecast_rows(
             "week": _as_na(week[keep]),
             "quantity": quantity[keep],
             "value": value[keep],
-            "note": _as_na(_text(frame, "note")[keep]),
+            "note": _as_na(_free_text(frame, "note")[keep]),
         }
     ).reset_index(drop=True)
     return issues.result(clean, max_problems)
+
+
+def _product_and_place(issues: _Issues, frame: pd.DataFrame, items: pd.DataFrame, locations: pd.DataFrame):
+    """Item or family (one required) and location or region (at most one), checked and matched to the master."""
+    item, family = _text(frame, "item"), _text(frame, "family")
+    is_item, is_family = _exactly_one(issues, item, family, ("item", "family"), required=True)
+    is_item = _plain_codes(issues, item, is_item, column="item")
+    is_family = _plain_codes(issues, family, is_family, column="family")
+    item = _match_codes(issues, item, is_item, items["item"], column="item", what="item")
+    family = _match_codes(issues, family, is_family, items["family"], column="family", what="family")
+
+    location, region = _text(frame, "location"), _text(frame, "region")
+    is_location, is_region = _exactly_one(issues, location, region, ("location", "region"), required=False)
+    is_location = _plain_codes(issues, location, is_location, column="location")
+    is_region = _plain_codes(issues, region, is_region, column="region")
+    location = _match_codes(issues, location, is_location, locations["location"], column="location", what="location")
+    region = _match_codes(issues, region, is_region, locations["region"], column="region", what="region")
+    return item, family, location, region
 
 
 def _check_prices_for_values(issues: _Issues, items: pd.DataFrame, item, family, is_value, value_text) -> None:
@@ -464,15 +608,19 @@ def check_event_rows(
     horizons: dict[str, list[str]],
     default_cycle: str | None,
     max_problems: int = DEFAULT_MAX_PROBLEMS,
+    limits: IntakeLimits = DEFAULT_LIMITS,
 ) -> CheckResult:
     """Check a file of planned events (promotions, price changes, launches).
 
     Each row names an ``event``, an ``item`` or ``family``, optionally a
     ``location`` or ``region``, months ``start`` ≤ ``end`` that overlap the
-    cycle's horizon, and exactly one effect: ``uplift_pct`` (> −100; negative
-    for a dip such as a price increase) or ``units`` (a finite number of
-    units added, negative for a loss).  Clean columns: [row, cycle, event,
-    item, family, location, region, start, end, uplift_pct, units, note].
+    cycle's horizon and reach no further from it than
+    ``limits.event_months_outside_horizon``, and exactly one effect:
+    ``uplift_pct`` (> −100 and at most ``limits.max_event_uplift_pct``;
+    negative for a dip such as a price increase) or ``units`` (units added,
+    negative for a loss, at most ``limits.max_event_units`` either way).
+    Clean columns: [row, cycle, event, item, family, location, region, start,
+    end, uplift_pct, units, note].
     """
     filename = filename or raw.file
     frame = raw.frame
@@ -492,14 +640,8 @@ def check_event_rows(
 
     event = _text(frame, "event")
     issues.add((event == "").to_numpy(), "event", "", "an event name")
-    item, family = _text(frame, "item"), _text(frame, "family")
-    is_item, is_family = _exactly_one(issues, item, family, ("item", "family"), required=True)
-    item = _match_codes(issues, item, is_item, items["item"], column="item", what="item")
-    family = _match_codes(issues, family, is_family, items["family"], column="family", what="family")
-    location, region = _text(frame, "location"), _text(frame, "region")
-    is_location, is_region = _exactly_one(issues, location, region, ("location", "region"), required=False)
-    location = _match_codes(issues, location, is_location, locations["location"], column="location", what="location")
-    region = _match_codes(issues, region, is_region, locations["region"], column="region", what="region")
+    _plain_codes(issues, event, event != "", column="event")
+    item, family, location, region = _product_and_place(issues, frame, items, locations)
 
     cycles, known_cycle = _resolve_cycles(issues, frame, horizons, default_cycle)
     start, end = _text(frame, "start"), _text(frame, "end")
@@ -518,12 +660,24 @@ def check_event_rows(
     horizon_text = cycles.map(_horizon_texts(horizons)).fillna("")
     issues.add(both & known_cycle & (end_at >= start_at) & ~overlaps, "start", start,
                "an event overlapping " + horizon_text)
+    outside = limits.event_months_outside_horizon
+    earliest = _month_names(first_at - outside)
+    latest = _month_names(last_at + outside)
+    near = both & known_cycle & (end_at >= start_at) & overlaps
+    issues.add(near & (start_at < first_at - outside), "start", start,
+               f"an event starting at most {outside} months before the horizon, so not before " + earliest)
+    issues.add(near & (end_at > last_at + outside), "end", end,
+               f"an event ending at most {outside} months after the horizon, so not after " + latest)
 
     uplift_text, units_text = _text(frame, "uplift_pct"), _text(frame, "units")
     is_uplift, is_units = _exactly_one(issues, uplift_text, units_text, ("uplift_pct", "units"), required=True)
     uplift = _parse_numbers(issues, uplift_text, is_uplift, column="uplift_pct", minimum=-100.0,
-                            above_minimum=True, minimum_text="an uplift above -100 percent")
-    units = _parse_numbers(issues, units_text, is_units, column="units")
+                            above_minimum=True, minimum_text="an uplift above -100 percent",
+                            maximum=limits.max_event_uplift_pct,
+                            maximum_text=f"an uplift of at most {_amount(limits.max_event_uplift_pct)} percent")
+    units = _parse_numbers(issues, units_text, is_units, column="units", maximum=limits.max_event_units,
+                           magnitude=True,
+                           maximum_text=f"units between -{_amount(limits.max_event_units)} and {_amount(limits.max_event_units)}")
 
     key = (cycles + "|" + event + "|" + _level_key(item, family, ("item", "family")) + "|"
            + _level_key(location, region, ("location", "region")) + "|" + start)
@@ -544,7 +698,7 @@ def check_event_rows(
             "end": _as_na(end[keep]),
             "uplift_pct": uplift[keep],
             "units": units[keep],
-            "note": _as_na(_text(frame, "note")[keep]),
+            "note": _as_na(_free_text(frame, "note")[keep]),
         }
     ).reset_index(drop=True)
     return issues.result(clean, max_problems)
@@ -561,15 +715,25 @@ def check_actual_rows(
     items: pd.DataFrame,
     locations: pd.DataFrame,
     max_problems: int = DEFAULT_MAX_PROBLEMS,
+    limits: IntakeLimits = DEFAULT_LIMITS,
 ) -> CheckResult:
     """Check customer-order history and sum it into monthly buckets.
 
-    Rows carry ``item``, ``location``, a ``quantity`` ≥ 0 and either a
-    ``date`` ("YYYY-MM-DD", one order line) or a ``period`` ("YYYY-MM", a
-    monthly total).  Repeated monthly totals, or a monthly total next to
-    order lines of the same item, location and month, are problems because
-    summing them would count the demand twice.  Clean columns: [item,
-    location, period, quantity], one row per item × location × month.
+    Rows carry ``item``, ``location``, a ``quantity`` from 0 to
+    ``limits.max_actual_quantity`` and either a ``date`` ("YYYY-MM-DD", one
+    order line) or a ``period`` ("YYYY-MM", a monthly total), in the months
+    ``limits.actual_months()`` allows (by default none after the current
+    calendar month: orders cannot come from the future).  Repeated monthly
+    totals, or a monthly total next to order lines of the same item, location
+    and month, are problems because summing them would count the demand
+    twice.
+
+    A forecast given here is refused as a whole: a file with a column only
+    forecasts and events have (cycle, week, value, family, region …) or with a
+    template's hidden sheet, or one whose rows lie mostly after the latest
+    allowed month (a distribution center's item, location, period, quantity
+    forecast has exactly the columns of monthly history).  Clean columns:
+    [item, location, period, quantity], one row per item × location × month.
     """
     filename = filename or raw.file
     frame = raw.frame
@@ -581,6 +745,14 @@ def check_actual_rows(
             problems.append(_file_problem(filename, column, f"a column '{column}'"))
     if not columns & {"date", "period"}:
         problems.append(_file_problem(filename, "date", "a column 'date' or 'period'"))
+    forecast_columns = [c for c in FORECAST_ONLY_COLUMNS if c in columns]
+    template_keys = [k for k in TEMPLATE_META_KEYS if str(raw.meta.get(k, "")).strip()]
+    if forecast_columns or template_keys:
+        said = (f"it has the column(s) {', '.join(repr(c) for c in forecast_columns)}" if forecast_columns
+                else f"it is a template, with {', '.join(f'{k} {raw.meta[k]!r}' for k in template_keys)} on its hidden sheet")
+        problems.append(_file_problem(filename, forecast_columns[0] if forecast_columns else None,
+                                      f"order history (item, location, date or period, quantity), not a forecast; {said} "
+                                      "(forecasts are submitted, not loaded as actuals)"))
     issues = _Issues(filename, raw.rows)
     _warn_unknown_columns(issues, frame, ACTUAL_COLUMNS, what="actuals")
     if problems:
@@ -589,8 +761,10 @@ def check_actual_rows(
     item, location = _text(frame, "item"), _text(frame, "location")
     issues.add((item == "").to_numpy(), "item", "", "an item code")
     issues.add((location == "").to_numpy(), "location", "", "a location code")
-    item = _match_codes(issues, item, item != "", items["item"], column="item", what="item")
-    location = _match_codes(issues, location, location != "", locations["location"], column="location", what="location")
+    has_item = _plain_codes(issues, item, item != "", column="item")
+    has_location = _plain_codes(issues, location, location != "", column="location")
+    item = _match_codes(issues, item, has_item, items["item"], column="item", what="item")
+    location = _match_codes(issues, location, has_location, locations["location"], column="location", what="location")
 
     date, period = _text(frame, "date"), _text(frame, "period")
     is_date, is_period = _exactly_one(issues, date, period, ("date", "period"), required=True)
@@ -600,11 +774,13 @@ def check_actual_rows(
     issues.add(is_date & ~good_date, "date", date, "a calendar date in YYYY-MM-DD form")
     good_period = _check_months(issues, period, is_period, column="period")
     month = period.where(good_period, parsed.dt.strftime("%Y-%m").fillna(""))
+    _check_history_months(issues, month, good_date, good_period, date=date, period=period, limits=limits)
 
     quantity_text = _text(frame, "quantity")
     issues.add((quantity_text == "").to_numpy(), "quantity", "", "a quantity")
     quantity = _parse_numbers(issues, quantity_text, quantity_text != "", column="quantity", minimum=0.0,
-                              minimum_text="a quantity of 0 or more")
+                              minimum_text="a quantity of 0 or more", maximum=limits.max_actual_quantity,
+                              maximum_text=f"a quantity of at most {_amount(limits.max_actual_quantity)}")
 
     key = item + "|" + location + "|" + month
     usable = ~issues.bad
@@ -624,19 +800,49 @@ def check_actual_rows(
     return issues.result(monthly, max_problems)
 
 
+def _check_history_months(issues: _Issues, month: pd.Series, good_date, good_period, *, date: pd.Series,
+                          period: pd.Series, limits: IntakeLimits) -> None:
+    """Order months inside the allowed window; a file mostly after it is named a forecast, once, for the whole file."""
+    earliest, latest = limits.actual_months()
+    dated = np.asarray(good_date, dtype=bool) | np.asarray(good_period, dtype=bool)
+    at = _month_numbers(month, dated)
+    early = dated & (at < month_index(earliest))
+    late = dated & (at > month_index(latest))
+    window = f"{earliest} … {latest}"
+    for mask, why in ((early, ""), (late, ": orders cannot come from the future")):
+        issues.add(mask & good_date, "date", date, f"a date in the months {window}{why}")
+        issues.add(mask & good_period, "period", period, f"a month in {window}{why}")
+    if late.any() and 2 * int(late.sum()) > int(dated.sum()):
+        months = month[late]
+        issues.add_file_problem(
+            "date" if np.asarray(good_date, dtype=bool)[late].any() else "period", None,
+            f"order history up to {latest}; {int(late.sum()):,} of {int(dated.sum()):,} rows are for later months "
+            f"({months.min()} … {months.max()}), so this looks like a forecast (forecasts are submitted, "
+            "not loaded as actuals)",
+        )
+
+
 # ---------------------------------------------------------------------------
 # master data
 
 
 def check_master_rows(
-    raw: RawTable, *, filename: str | None = None, kind: str, max_problems: int = DEFAULT_MAX_PROBLEMS
+    raw: RawTable,
+    *,
+    filename: str | None = None,
+    kind: str,
+    max_problems: int = DEFAULT_MAX_PROBLEMS,
+    limits: IntakeLimits = DEFAULT_LIMITS,
 ) -> CheckResult:
     """Check a master-data file: ``kind`` is "items", "locations" or "bom".
 
-    items: [item, family, unit_price (≥ 0, optional), description];
-    locations: [location, region, description]; bom: [parent, component,
-    qty_per > 0, lead_time_months ≥ 0 whole].  Codes must be unique (ignoring
-    case, since submissions match codes ignoring case).  A BOM must be
+    items: [item, family, unit_price (0 … ``limits.max_unit_price``,
+    optional), description]; locations: [location, region, description];
+    bom: [parent, component, qty_per (> 0, at most ``limits.max_qty_per``),
+    lead_time_months (whole, 0 … ``limits.max_lead_time_months``)].  The
+    clean frame always carries ``description``, "" where the file has none
+    (the column is optional, the store's is not null).  Codes must be unique
+    (ignoring case, since submissions match codes ignoring case).  A BOM must be
     acyclic: edges inside a strongly connected component of the
     parent → component graph (Tarjan 1972, via scipy.sparse.csgraph), or
     from an item to itself, are reported with the cycle they close.
@@ -656,36 +862,45 @@ def check_master_rows(
         return _reject_file(filename, problems, columns, issues.warnings)
 
     if kind == "bom":
-        return _check_bom(issues, frame, max_problems)
+        return _check_bom(issues, frame, max_problems, limits)
     key_column, parent_column = columns[0], columns[1]
     key, parent = _text(frame, key_column), _text(frame, parent_column)
     issues.add((key == "").to_numpy(), key_column, "", f"{_with_article(key_column)} code")
     issues.add((parent == "").to_numpy(), parent_column, "", f"{_with_article(parent_column)} code")
+    _plain_codes(issues, key, key != "", column=key_column)
+    _plain_codes(issues, parent, parent != "", column=parent_column)
     data = {key_column: key, parent_column: parent}
     if kind == "items":
         price_text = _text(frame, "unit_price")
         data["unit_price"] = _parse_numbers(issues, price_text, price_text != "", column="unit_price", minimum=0.0,
-                                            minimum_text="a unit price of 0 or more")
+                                            minimum_text="a unit price of 0 or more", maximum=limits.max_unit_price,
+                                            maximum_text=f"a unit price of at most {_amount(limits.max_unit_price)}")
     _flag_duplicates(issues, key.str.lower(), (key != "").to_numpy(), column=key_column,
                      what=f"{key_column} code (compared ignoring case)", values=key)
-    data["description"] = _text(frame, "description")
     keep = ~issues.bad
     clean = pd.DataFrame({c: (_as_na(v[keep]) if isinstance(v, pd.Series) else v[keep]) for c, v in data.items()})
+    # Free text, never missing: blank or absent is "", which the store's not-null column takes.
+    clean["description"] = _free_text(frame, "description")[keep].astype("string").to_numpy()
     return issues.result(clean.reset_index(drop=True), max_problems)
 
 
-def _check_bom(issues: _Issues, frame: pd.DataFrame, max_problems: int) -> CheckResult:
+def _check_bom(issues: _Issues, frame: pd.DataFrame, max_problems: int, limits: IntakeLimits) -> CheckResult:
     parent, component = _text(frame, "parent"), _text(frame, "component")
     issues.add((parent == "").to_numpy(), "parent", "", "a parent item code")
     issues.add((component == "").to_numpy(), "component", "", "a component item code")
+    plain_parent = _plain_codes(issues, parent, parent != "", column="parent")
+    plain_component = _plain_codes(issues, component, component != "", column="component")
     qty_text, lead_text = _text(frame, "qty_per"), _text(frame, "lead_time_months")
     issues.add((qty_text == "").to_numpy(), "qty_per", "", "a quantity per parent")
     issues.add((lead_text == "").to_numpy(), "lead_time_months", "", "a lead time in whole months")
     qty_per = _parse_numbers(issues, qty_text, qty_text != "", column="qty_per", minimum=0.0, above_minimum=True,
-                             minimum_text="a quantity per parent above 0")
+                             minimum_text="a quantity per parent above 0", maximum=limits.max_qty_per,
+                             maximum_text=f"a quantity per parent of at most {_amount(limits.max_qty_per)}")
     lead = _parse_numbers(issues, lead_text, lead_text != "", column="lead_time_months", minimum=0.0,
-                          minimum_text="a lead time of 0 months or more", integer=True)
-    named = ((parent != "") & (component != "")).to_numpy()
+                          minimum_text="a lead time of 0 months or more", integer=True,
+                          maximum=limits.max_lead_time_months,
+                          maximum_text=f"a lead time of at most {_amount(limits.max_lead_time_months)} months")
+    named = plain_parent & plain_component
     _flag_duplicates(issues, parent + "|" + component, named, column="component", what="parent and component pair")
     _flag_bom_cycles(issues, parent, component, named)
     keep = ~issues.bad

@@ -7,6 +7,12 @@ semicolon) is taken from its header line.  Every cell comes back as stripped
 text, exactly as the user typed or sees it, with its spreadsheet row number,
 so that the checks can name the row and column of every problem.
 
+Hostile files are refused before they cost much (:class:`ReadLimits`): an
+XLSX file's declared unpacked size is checked from the zip directory before
+any part is inflated, rows and cells are counted while the sheet streams in,
+and a damaged workbook or an over-long CSV cell becomes a refusal naming the
+file (and the row, where there is one), never a traceback.
+
 Reading does no database work and writes nothing.
 """
 
@@ -15,13 +21,14 @@ from __future__ import annotations
 import csv
 import datetime as dt
 import io
+import zipfile
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
-from consensus.errors import InputRejected, Problem
+from consensus.errors import InputRejected, InvalidSpec, Problem
 
 #: Every column name any input kind uses; the delimiter of a CSV file is the
 #: one whose header split yields the most of these.
@@ -45,6 +52,62 @@ XLSX_SUFFIXES = frozenset({".xlsx", ".xlsm"})
 ZIP_MAGIC = b"PK\x03\x04"
 OLE_MAGIC = b"\xd0\xcf\x11\xe0"  # legacy .xls and other compound documents
 MAX_LISTED_PROBLEMS = 50
+META_MAX_ROWS = 1_000
+#: Parts smaller than this unpacked are not held to the compression ratio (a theme or style part may be very regular).
+RATIO_FLOOR_BYTES = 1_000_000
+
+
+@dataclass(frozen=True)
+class ReadLimits:
+    """How large an input file may be before it is refused unread; every limit a positive whole number.
+
+    Defaults admit a real file of 100,000 item × location series over an
+    18-month horizon, 1.8 million rows in the long layout, and little more:
+
+    * ``max_rows`` 2,000,000 physical sheet rows (empty ones included, since
+      reading them costs time too): the 1.8 million rows plus headroom.  It is
+      above a spreadsheet program's own sheet limit of 1,048,576 rows (from
+      memory: Excel's published specifications), so it refuses only sheets no
+      spreadsheet made.
+    * ``max_inflated_bytes`` 1,000,000,000 bytes unpacked, summed over the
+      workbook's parts as the zip directory declares them: this tool's own
+      filled-in template unpacks to about 265 bytes a row (measured with
+      bench/bench_intake.py), 530 MB for 2,000,000 rows.  Python's zipfile
+      never inflates a part beyond its declared size (a part that lies fails
+      its CRC check and is refused as damaged), so the declared sizes bound the
+      work.
+    * ``max_columns`` 256 used columns in any row: every input kind has at most
+      11 known columns; a cell far to the right makes each row a long tuple.
+    * ``max_cells`` 20,000,000 filled cells kept: 2,000,000 rows of 10 columns.
+      Read cells are Python objects, so this, not the file size, bounds memory.
+    * ``max_compression_ratio`` 100 for any part that unpacks to more than
+      ``RATIO_FLOOR_BYTES`` (1 MB): sheets compress about 10–15 to 1 (measured
+      with bench/bench_intake.py on this tool's filled template, and by hand on
+      a sheet of 100,000 identical rows, whose cell references still differ),
+      while a bomb of one row repeated reaches 258 to 1 in the bench (deflate's
+      ceiling is about 1,032 to 1, from memory of zlib's technical notes).
+      This is what stops a small file that unpacks to hundreds of MB below
+      the size cap: the bench's 0.8 MB file unpacking to 200 MB is refused in
+      0.06 s, where reading it took 74 s and 900 MB.
+    * ``max_parts`` 10,000 entries in the zip archive (a workbook has tens).
+    """
+
+    max_inflated_bytes: int = 1_000_000_000
+    max_rows: int = 2_000_000
+    max_columns: int = 256
+    max_cells: int = 20_000_000
+    max_compression_ratio: int = 100
+    max_parts: int = 10_000
+
+    def __post_init__(self) -> None:
+        for name in ("max_inflated_bytes", "max_rows", "max_columns", "max_cells", "max_compression_ratio",
+                     "max_parts"):
+            value = getattr(self, name)
+            if isinstance(value, bool) or not isinstance(value, int) or value < 1:
+                raise InvalidSpec(f"{name} must be a whole number of at least 1; got {value!r}")
+
+
+DEFAULT_READ_LIMITS = ReadLimits()
 
 
 @dataclass(frozen=True)
@@ -68,22 +131,27 @@ class RawTable:
     file: str = ""
 
 
-def read_table(path: Path, *, sheet: str | None = None) -> RawTable:
+def read_table(path: Path, *, sheet: str | None = None, limits: ReadLimits = DEFAULT_READ_LIMITS) -> RawTable:
     """Read a CSV or XLSX input file into a :class:`RawTable`.
 
     Raises :class:`consensus.errors.InputRejected` naming the file (and the
     rows, where it can) when the file cannot be read unambiguously: unknown
     encoding, UTF-16 or binary content, an ambiguous or inconsistent
-    delimiter, a missing or empty sheet, no header or no data rows.
+    delimiter, a CSV cell longer than the csv module's field limit, a damaged
+    workbook, a workbook beyond ``limits``, a missing or empty sheet, no
+    header or no data rows.
     """
     path = Path(path)
     name = path.name
     try:
-        data = path.read_bytes()
+        with path.open("rb") as handle:
+            magic = handle.read(4)
+        if magic != ZIP_MAGIC:
+            data = path.read_bytes()
     except OSError as exc:
         _refuse(name, f"a readable file ({exc.strerror or exc})")
-    if data[:4] == ZIP_MAGIC:
-        return _read_xlsx(path, name, sheet=sheet)
+    if magic == ZIP_MAGIC:
+        return _read_xlsx(path, name, sheet=sheet, limits=limits)
     if path.suffix.lower() in XLSX_SUFFIXES:
         _refuse(name, "an .xlsx workbook, but the file is not one (save it again from the spreadsheet as .xlsx)")
     if data[:4] == OLE_MAGIC:
@@ -165,7 +233,7 @@ def _read_csv(data: bytes, name: str) -> RawTable:
     if not text.strip():
         _refuse(name, "a header row and at least one data row; the file is empty")
     delimiter = _header_delimiter(text, name)
-    records = list(csv.reader(io.StringIO(text, newline=""), delimiter=delimiter))
+    records = _csv_records(text, name, delimiter)
     # Spreadsheet programs show one CSV record per row, blank lines included.
     row_numbers = np.arange(1, len(records) + 1)
     widths = np.fromiter((len(r) for r in records), dtype=int, count=len(records))
@@ -188,10 +256,39 @@ def _read_csv(data: bytes, name: str) -> RawTable:
     return _assemble(name, header, int(row_numbers[header_at]), cells, row_numbers[body], file_format, meta={})
 
 
+def _csv_records(text: str, name: str, delimiter: str) -> list[list[str]]:
+    """Every CSV record; a record the csv module cannot take is refused with its row number.
+
+    The csv module refuses a field longer than ``csv.field_size_limit()``
+    (131,072 characters unless raised: Python's csv documentation); no input
+    cell is legitimately that long, so the limit is kept and reported, with
+    the record where it happened (an unclosed quote makes one field swallow
+    the rest of the file, which is the usual cause).
+    """
+    records: list[list[str]] = []
+    parser = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter)
+    try:
+        records.extend(parser)
+    except csv.Error as exc:
+        row = len(records) + 1
+        raise InputRejected(file=name, problems=[Problem(name, row, None, None, _csv_error_text(exc))]) from None
+    return records
+
+
+def _csv_error_text(exc: csv.Error) -> str:
+    if "field larger than field limit" in str(exc):
+        return (f"cells of at most {csv.field_size_limit():,} characters (the csv module's field limit); "
+                "this row has a longer one, often a quote (\") that is opened and never closed")
+    return f"a well-formed CSV row ({exc})"
+
+
 def _header_delimiter(text: str, name: str) -> str:
-    for line in text.splitlines():
+    for number, line in enumerate(text.splitlines(), start=1):
         if line.strip(" \t,;"):
-            return detect_delimiter(line, filename=name)
+            try:
+                return detect_delimiter(line, filename=name)
+            except csv.Error as exc:  # the header itself holds a field over the csv module's limit
+                raise InputRejected(file=name, problems=[Problem(name, number, None, None, _csv_error_text(exc))]) from None
     return ","
 
 
@@ -199,18 +296,24 @@ def _header_delimiter(text: str, name: str) -> str:
 # XLSX
 
 
-def _read_xlsx(path: Path, name: str, *, sheet: str | None) -> RawTable:
+def _read_xlsx(path: Path, name: str, *, sheet: str | None, limits: ReadLimits) -> RawTable:
     import openpyxl  # imported here so CSV-only use does not pay for it
 
+    _check_archive(path, name, limits)
     try:
         workbook = openpyxl.load_workbook(path, read_only=True, data_only=True)
     except Exception as exc:  # openpyxl raises many types for a damaged archive
-        _refuse(name, f"a readable .xlsx workbook ({type(exc).__name__}: {exc})")
+        _refuse_damaged(name, exc)
     try:
+        # A read-only workbook parses its sheets lazily, so damaged XML surfaces here, while rows stream in.
         worksheet = _pick_sheet(workbook, name, sheet)
         others = [ws.title for ws in workbook.worksheets if ws.title not in (worksheet.title, META_SHEET)]
-        header_cells, header_row, data_rows, data_numbers = _sheet_cells(worksheet, name, others=others)
-        meta = _read_meta(workbook)
+        header_cells, header_row, data_rows, data_numbers = _sheet_cells(worksheet, name, others=others, limits=limits)
+        meta = _read_meta(workbook, name)
+    except (InputRejected, MemoryError):
+        raise
+    except Exception as exc:  # XML, zip, KeyError for a missing part, ValueError for a bad cell reference …
+        _refuse_damaged(name, exc)
     finally:
         workbook.close()
     header_texts = [cell_text(v, column="") for v in header_cells]
@@ -222,6 +325,40 @@ def _read_xlsx(path: Path, name: str, *, sheet: str | None) -> RawTable:
     )
     file_format = {"kind": "xlsx", "encoding": None, "delimiter": None, "sheet": worksheet.title}
     return _assemble(name, header_texts, header_row, cells, np.asarray(data_numbers, dtype=int), file_format, meta=meta)
+
+
+def _check_archive(path: Path, name: str, limits: ReadLimits) -> None:
+    """Refuse a workbook whose zip directory declares too many parts or too many unpacked bytes; nothing is inflated."""
+    try:
+        with zipfile.ZipFile(path) as archive:
+            parts = archive.infolist()
+    except (zipfile.BadZipFile, zipfile.LargeZipFile, OSError, ValueError, EOFError) as exc:
+        _refuse(name, f"a readable .xlsx workbook; its zip archive is damaged ({type(exc).__name__}: {exc})")
+    if len(parts) > limits.max_parts:
+        _refuse(name, f"an .xlsx workbook of at most {limits.max_parts:,} parts; this archive holds {len(parts):,}")
+    for part in parts:
+        if part.file_size > RATIO_FLOOR_BYTES and part.file_size > limits.max_compression_ratio * max(part.compress_size, 1):
+            _refuse(
+                name,
+                f"an .xlsx workbook whose parts compress at most {limits.max_compression_ratio} to 1; {part.filename} "
+                f"unpacks from {part.compress_size:,} to {part.file_size:,} bytes "
+                f"({part.file_size / max(part.compress_size, 1):,.0f} to 1), which is a compressed bomb, not a sheet",
+            )
+    inflated = sum(part.file_size for part in parts)
+    if inflated > limits.max_inflated_bytes:
+        largest = max(parts, key=lambda part: part.file_size)
+        _refuse(
+            name,
+            f"an .xlsx workbook that unpacks to at most {limits.max_inflated_bytes:,} bytes; this one declares "
+            f"{inflated:,} bytes ({largest.filename} alone {largest.file_size:,}) from {path.stat().st_size:,} on disk, "
+            "which is a padded sheet or a compressed bomb (save the data as CSV, or split it)",
+        )
+
+
+def _refuse_damaged(name: str, exc: Exception):
+    detail = str(exc).strip().splitlines()[0][:200] if str(exc).strip() else ""
+    _refuse(name, "a readable .xlsx workbook; its contents are damaged "
+                  f"({type(exc).__name__}{': ' + detail if detail else ''}); save it again from the spreadsheet")
 
 
 def _pick_sheet(workbook, name: str, sheet: str | None):
@@ -240,42 +377,64 @@ def _pick_sheet(workbook, name: str, sheet: str | None):
     return visible[0]
 
 
-def _sheet_cells(worksheet, name: str, *, others: list[str]) -> tuple[tuple, int, list[tuple], list[int]]:
-    """Header cells, header row number, data rows and their row numbers; fully empty rows skipped."""
+def _sheet_cells(worksheet, name: str, *, others: list[str], limits: ReadLimits = DEFAULT_READ_LIMITS,
+                 ) -> tuple[tuple, int, list[tuple], list[int]]:
+    """Header cells, header row number, data rows and their row numbers; fully empty rows skipped.
+
+    Rows are counted as they stream in, empty ones included (a sheet can
+    jump to row 2,000,000,000, which openpyxl fills with empty rows), and
+    the read stops at the first row beyond ``limits``.  Each kept row is cut
+    after its last filled cell, so a stray cell far to the right costs one
+    long row, not a long copy of every row.
+    """
     worksheet.reset_dimensions()  # some writers store a wrong used-range; read every row
+    where = f"sheet {worksheet.title!r}"
     header = None
     header_row = 0
     rows: list[tuple] = []
     numbers: list[int] = []
+    cells = 0
     for number, values in enumerate(worksheet.iter_rows(values_only=True), start=1):
-        if not any(v is not None and str(v).strip() for v in values):
+        if number > limits.max_rows:
+            _refuse(name, f"at most {limits.max_rows:,} rows in {where}; it goes on past row {limits.max_rows:,} "
+                          "(save the data as CSV, or split it)")
+        width = len(values)
+        while width and (values[width - 1] is None or not str(values[width - 1]).strip()):
+            width -= 1
+        if width == 0:
             continue
+        if width > limits.max_columns:
+            raise InputRejected(file=name, problems=[Problem(
+                name, number, f"#{width}", None,
+                f"at most {limits.max_columns:,} used columns in {where}; this row has a value in column #{width}")])
+        cells += width
+        if cells > limits.max_cells:
+            _refuse(name, f"at most {limits.max_cells:,} filled cells in {where}; row {number:,} goes past that "
+                          "(save the data as CSV, or split it)")
+        values = tuple(values[:width])
         if header is None:
             header, header_row = values, number
         else:
             rows.append(values)
             numbers.append(number)
-    where = f"sheet {worksheet.title!r}"
     hint = f" (the workbook also has {', '.join(map(repr, others))}: name the sheet to read)" if others else ""
     if header is None:
         _refuse(name, f"a header row and data rows in {where}; the sheet is empty{hint}")
     if not rows:
         _refuse(name, f"at least one data row below the header in {where}; it has a header only{hint}")
-    # Trailing cells that are empty in the header and every row are formatting, not columns.
-    used = max(len(header), *(len(r) for r in rows))
-    while used > 0 and (header[used - 1] if used <= len(header) else None) is None and all(
-        len(r) < used or r[used - 1] is None or not str(r[used - 1]).strip() for r in rows
-    ):
-        used -= 1
-    header = tuple(header[:used]) + (None,) * max(0, used - len(header))
-    return header, header_row, [tuple(r[:used]) for r in rows], numbers
+    # Rows are already cut after their last filled cell, so trailing formatting never becomes a column.
+    used = max(len(header), max(map(len, rows)))
+    header = header + (None,) * (used - len(header))
+    return header, header_row, rows, numbers
 
 
-def _read_meta(workbook) -> dict[str, str]:
+def _read_meta(workbook, name: str) -> dict[str, str]:
     if META_SHEET not in workbook.sheetnames:
         return {}
     meta = {}
-    for values in workbook[META_SHEET].iter_rows(values_only=True):
+    for number, values in enumerate(workbook[META_SHEET].iter_rows(values_only=True), start=1):
+        if number > META_MAX_ROWS:
+            _refuse(name, f"a {META_SHEET!r} sheet of at most {META_MAX_ROWS:,} rows (a template's own holds a few keys)")
         if len(values) < 2 or values[0] is None:
             continue
         key = str(values[0]).strip()

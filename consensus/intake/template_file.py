@@ -6,6 +6,13 @@ without flags; :func:`consensus.intake.reader.read_table` gives those rows
 back as ``meta``.  A CSV template is the frame only: CSV has nowhere to keep
 the meta, so a CSV template must be submitted with its source and cycle given
 as flags.
+
+Both are written through :mod:`consensus.outputs`: atomically (a template
+being rewritten is never left half-written) and with text a spreadsheet would
+run as a formula escaped: in CSV with a leading single quote, which the
+checks remove again from free-text columns; in XLSX as text cells with the
+``quotePrefix`` style, so the file holds the text itself and reads back
+unchanged.
 """
 
 from __future__ import annotations
@@ -18,6 +25,7 @@ import pandas as pd
 
 from consensus.errors import InvalidSpec
 from consensus.intake.reader import META_SHEET
+from consensus.outputs import check_output_path, save_workbook, write_csv
 
 TEMPLATE_SHEET = "forecast"
 TEMPLATE_FORMATS = (".xlsx", ".csv")
@@ -35,16 +43,21 @@ def write_template(path: Path, frame: pd.DataFrame, *, meta: dict[str, str]) -> 
     ``last_consensus`` column, when present, is kept as a visibly separate
     reference that the checks ignore.  ``meta`` is written to the hidden
     ``_consensus`` sheet of an XLSX file (with ``generated_at`` added in UTC
-    when missing); a CSV template cannot carry it.
+    when missing); a CSV template cannot carry it.  The file is written
+    atomically and text that a spreadsheet would run as a formula is stored
+    as text (see the module docstring); a ``path`` that is a folder or lies in
+    a folder that does not exist raises
+    :class:`consensus.errors.OutputNotWritable`.
     """
     path = Path(path)
+    check_output_path(path)  # before the work: a folder or a missing folder is named at once
     suffix = path.suffix.lower()
     if suffix not in TEMPLATE_FORMATS:
         raise InvalidSpec(f"template format must be one of {', '.join(TEMPLATE_FORMATS)}; got {path.suffix!r}")
     layout = _template_frame(frame)
     if suffix == ".csv":
         # A byte-order mark lets spreadsheet programs open the UTF-8 file with accents intact.
-        layout.to_csv(path, index=False, encoding="utf-8-sig", lineterminator="\r\n", float_format="%.15g")
+        write_csv(layout, path, encoding="utf-8-sig", lineterminator="\r\n", float_format="%.15g")
         return path
     _write_xlsx(path, layout, _template_meta(meta))
     return path
@@ -113,7 +126,7 @@ def _write_xlsx(path: Path, layout: pd.DataFrame, meta: dict[str, str]) -> None:
     for key, value in meta.items():
         hidden.append([key, value])
     hidden.sheet_state = "hidden"
-    workbook.save(path)
+    save_workbook(workbook, path)
 
 
 def _cell_rows(layout: pd.DataFrame):

@@ -10,6 +10,11 @@ several processes (see :mod:`consensus.pack.paginate`).  WeasyPrint gets a fetch
 ``reports_dir()`` (and ``data:`` URIs) and records everything it refused: input
 text is escaped, so nothing a user typed can make the renderer read a file or
 reach the network.
+
+Files are written through :mod:`consensus.outputs`: each to a temporary file
+beside its target, renamed into place once complete, so a pack killed while
+rendering leaves the previous PDF and HTML as they were, never a truncated
+file.  Both paths are checked before any work starts.
 """
 
 from __future__ import annotations
@@ -37,6 +42,7 @@ from consensus.pack.context import (
     format_share,
 )
 from consensus.errors import InvalidSpec
+from consensus.outputs import atomic_target, check_output_path, write_text
 from consensus.pack.inputs import PackInputs
 from consensus.pack.paginate import LaidOutPart, describe_part, join_parts, lay_out, lay_out_part, warm_up
 from consensus.pack.paginate import restricted_fetcher  # noqa: F401 - part of this module's interface
@@ -182,9 +188,16 @@ def render_pack(
     ``spawn``, which imports the calling script again: a script that renders a
     large pack needs the usual ``if __name__ == "__main__":`` guard.  Should the
     workers fail to start, the pack is laid out in this process instead.
+
+    Both files are written atomically, the PDF first and the HTML once the PDF
+    is in place; a path that names a folder, or a folder that does not exist,
+    raises :class:`consensus.errors.OutputNotWritable` before any work.
     """
     if workers is not None and int(workers) < 1:
         raise InvalidSpec(f"workers must be at least 1, got {workers!r}")
+    for path in (pdf_path, html_path):
+        if path is not None:
+            check_output_path(path)
     seconds: dict[str, float] = {}
     n_workers = _worker_count(workers, int(inputs.items["family"].nunique())) if pdf_path is not None else 1
     # Workers start (and import WeasyPrint) while this process builds the context.
@@ -216,11 +229,6 @@ def _render(inputs, pool, *, pdf_path, html_path, seconds, context_options) -> R
     html = _render_context(context, inline_charts=True)
     seconds["html"] = time.perf_counter() - started
 
-    html_out = None
-    if html_path is not None:
-        html_out = Path(html_path)
-        html_out.write_text(html, encoding="utf-8")
-
     pdf_out, n_pages, fetched, refused = None, None, (), ()
     if pdf_path is not None:
         pdf_out = Path(pdf_path)
@@ -229,7 +237,8 @@ def _render(inputs, pool, *, pdf_path, html_path, seconds, context_options) -> R
             from concurrent.futures.process import BrokenProcessPool
 
             try:
-                n_pages, fetched, refused = _render_pdf_in_parts(context, pdf_out, pool=pool, seconds=seconds)
+                with atomic_target(pdf_out) as partial_pdf:
+                    n_pages, fetched, refused = _render_pdf_in_parts(context, partial_pdf, pool=pool, seconds=seconds)
                 laid_out = True
             except BrokenProcessPool:
                 LOGGER.warning("pack: worker processes failed to start; laying the pack out in one process")
@@ -239,10 +248,17 @@ def _render(inputs, pool, *, pdf_path, html_path, seconds, context_options) -> R
             document = lay_out(_render_context(context, inline_charts=False), fetcher=fetcher)
             seconds["layout"] = time.perf_counter() - started
             started = time.perf_counter()
-            document.write_pdf(pdf_out)
+            with atomic_target(pdf_out) as partial_pdf:
+                document.write_pdf(partial_pdf)
             seconds["pdf"] = time.perf_counter() - started
             n_pages = len(document.pages)
             fetched, refused = tuple(fetcher.fetched), tuple(fetcher.refused)
+
+    # After the PDF, so a failed PDF leaves the HTML beside it unchanged as well.
+    html_out = None
+    if html_path is not None:
+        html_out = Path(html_path)
+        write_text(html, html_out)
     return RenderedPack(
         html=html, pdf_path=pdf_out, html_path=html_out, n_pages=n_pages,
         fetched=fetched, refused=refused, seconds=seconds,
