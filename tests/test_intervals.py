@@ -340,3 +340,51 @@ def test_level_options_are_checked():
                         errors.assign(lag_bucket="1"), rule="widest")
     with pytest.raises(InvalidSpec):
         backtest_bands_by_level(errors, size_classes=0)
+
+
+def test_student_t_widens_bands_from_few_errors_to_nominal():
+    # Known law: 20,000 groups, each with 5 past errors N(0, 10²) about a known centre 0 and one new error.
+    # A new error over σ̂ estimated from n errors is Student-t with n degrees of freedom (common statistical
+    # fact; oracle scipy.stats.t inside the method), so the z band under-covers and the t band covers nominal;
+    # σ̂ from the MAD makes t approximate, hence 2.5 points.  Invented data, fixed seed.
+    rng = np.random.default_rng(51)
+    groups, n = 20_000, 5
+    past = pd.DataFrame({"g": np.repeat(np.arange(groups), n), "forecast": 100.0})
+    past["actual"] = 100 + rng.normal(0, 10, len(past))
+    new = pd.DataFrame({"g": np.arange(groups), "consensus": 100.0, "actual": 100 + rng.normal(0, 10, groups)})
+    normal = empirical_bands(new, past, by=("g",))
+    student = empirical_bands(new, past, by=("g",), few_errors="student_t")
+    assert student["band_method"].iloc[0] == "Student t from MAD, 5 errors"
+    for pct, nominal in ((80, 0.8), (95, 0.95)):
+        assert interval_coverage(normal[f"lower_{pct}"], normal[f"upper_{pct}"], normal["actual"]) < nominal - 0.03
+        assert interval_coverage(student[f"lower_{pct}"], student[f"upper_{pct}"], student["actual"]) == \
+            pytest.approx(nominal, abs=0.025)
+    # Half-width ratio t/z for 5 degrees of freedom at 80 %: t_{0.9,5} / z_{0.9} = 1.4759 / 1.2816.
+    ratio = (student["upper_80"] - 100) / (normal["upper_80"] - 100)
+    np.testing.assert_allclose(ratio, stats.t.ppf(0.9, 5) / stats.norm.ppf(0.9))
+
+
+def test_size_classes_shrink_to_what_the_errors_afford():
+    # 100 errors in one lag bucket with min_errors 30 afford 100 // 30 = 3 classes; 40 errors afford one,
+    # which is the relative rule itself.
+    past = heteroscedastic_errors(100, 52, sd_of=lambda f: 3 * np.sqrt(f))
+    forecast = pd.DataFrame({"lag_bucket": "1", "consensus": [60.0, 4000.0]})
+    out = empirical_bands(forecast, past, rule="relative_by_size")
+    assert out["band_method"].iloc[0].endswith(", size class 1 of 3")
+    assert out["band_method"].iloc[1].endswith(", size class 3 of 3")
+    few = past.iloc[:40]
+    np.testing.assert_allclose(empirical_bands(forecast, few, rule="relative_by_size")[["lower_80", "upper_80"]],
+                               empirical_bands(forecast, few)[["lower_80", "upper_80"]])
+
+
+def test_an_empty_lag_bucket_borrows_its_size_class_first():
+    # Lag bucket "7+" has no past errors: under the size rule it takes its size class's errors over every
+    # lag (oracle numpy.quantile of that class), not the pool of all sizes.
+    past = heteroscedastic_errors(3000, 53, sd_of=lambda f: 3 * np.sqrt(f))
+    edges = size_class_edges(past["forecast"], size_classes=5)
+    point = float(edges[-1] * 1.5)  # the largest class
+    out = empirical_bands(pd.DataFrame({"lag_bucket": ["7+"], "consensus": [point]}), past, rule="relative_by_size")
+    members = past[past["forecast"] > edges[-1]]
+    rel = (members["actual"] - members["forecast"]) / members["forecast"]
+    assert out["upper_80"].iloc[0] == pytest.approx(point * (1 + np.quantile(rel, 0.9)))
+    assert out["band_method"].iloc[0] == f"empirical, pooled, {len(members)} errors, size class 5 of 5"

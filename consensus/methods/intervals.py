@@ -34,7 +34,9 @@ category-conditional calibration of Mondrian conformal prediction (Vovk,
 Gammerman & Shafer 2005, "Algorithmic Learning in a Random World", ch. 4;
 from memory), with forecast size as the category: coverage then holds class
 by class, not only on average.  Both rules scale by the forecast, so bands
-at every level are read the same way.
+at every level are read the same way.  ``few_errors="student_t"`` widens the
+MAD fallback of a group with few errors by Student's t quantile in place of
+the normal one, which matters for family and total bands in a young store.
 
 Levels.  :func:`level_errors` sums cells' forecasts and actuals to a level
 (family, total …) per source, cycle and month; :func:`level_bands` gives a
@@ -66,6 +68,8 @@ SIGMA_PER_MAD = float(np.sqrt(np.pi / 2))
 BAND_RULES = ("relative", "relative_by_size")
 #: Forecast-size classes of the "relative_by_size" rule.
 DEFAULT_SIZE_CLASSES = 5
+#: How a group with fewer than min_errors errors is banded, and how band_method says so.
+FEW_ERRORS_TEXT = {"normal": "normal from MAD, ", "student_t": "Student t from MAD, "}
 
 
 def band_columns(levels: Sequence[float]) -> list[str]:
@@ -115,7 +119,7 @@ def _group_quantiles(errors: pd.DataFrame, keys: list[str], probabilities: list[
 
 def empirical_bands(forecast: pd.DataFrame, past_errors: pd.DataFrame, *, levels: Sequence[float] = (0.8, 0.95),
                     by: Sequence[str] = ("lag_bucket",), min_errors: int = 30, rule: str = "relative",
-                    size_classes: int = DEFAULT_SIZE_CLASSES) -> pd.DataFrame:
+                    size_classes: int = DEFAULT_SIZE_CLASSES, few_errors: str = "normal") -> pd.DataFrame:
     """Prediction bands around each consensus number from past relative errors in its group.
 
     ``forecast`` has the key columns, ``consensus`` and the ``by`` columns
@@ -130,12 +134,26 @@ def empirical_bands(forecast: pd.DataFrame, past_errors: pd.DataFrame, *, levels
 
     ``rule="relative_by_size"`` adds the forecast-size class (``size_classes``
     equal-count classes of the past positive forecasts) to the groups, and
-    says "size class j of k" in ``band_method``.
+    says "size class j of k" in ``band_method``; a group with no errors
+    borrows its class's errors over all lags before all errors pooled.  The
+    classes are as many as the errors afford, at most ``size_classes`` and
+    at most n / (``min_errors`` × number of ``by`` groups), so a class holds
+    ``min_errors`` errors per group on average; where errors are few (a
+    family or the total in a young store) the rule falls back to one class,
+    which is the relative rule.
+
+    ``few_errors="student_t"`` widens the MAD band of a group with n <
+    ``min_errors`` errors to Student's t with n degrees of freedom in place
+    of z: for N(0, σ²) errors and σ estimated from n of them about a known
+    centre 0, a new error over σ̂ is t-distributed with n degrees of freedom
+    (Student 1908; common statistical fact), so a band from 3 errors needs
+    t = 1.64 at 80 % rather than z = 1.28.  The MAD-based σ̂ is treated the
+    same way (an approximation).
     """
     levels = _check_levels(levels)
     if not isinstance(min_errors, (int, np.integer)) or min_errors < 1:
         raise InvalidSpec(f"min_errors must be a positive whole number, got {min_errors!r}")
-    _check_rule(rule, size_classes)
+    _check_rule(rule, size_classes, few_errors)
     keys = list(by)
     forecast = _with_lag_bucket(forecast)
     past_errors = _with_lag_bucket(past_errors)
@@ -155,7 +173,10 @@ def empirical_bands(forecast: pd.DataFrame, past_errors: pd.DataFrame, *, levels
     errors = past_errors.loc[usable, keys].assign(relative=((a_past - f_past) / f_past)[usable].to_numpy())
     n_classes = 0
     if rule == "relative_by_size":
-        edges = size_class_edges(f_past[usable].to_numpy(), size_classes=size_classes)
+        # As many classes as the errors allow: on average min_errors errors per class and group.
+        n_groups = max(1, errors.groupby(keys, sort=False, dropna=False).ngroups) if keys else 1
+        affordable = int(np.clip(len(errors) // (min_errors * n_groups), 1, size_classes))
+        edges = size_class_edges(f_past[usable].to_numpy(), size_classes=affordable)
         n_classes = len(edges) + 1
         errors["_size_class"] = np.searchsorted(edges, f_past[usable].to_numpy(), side="right")
         forecast = forecast.assign(_size_class=np.searchsorted(edges, forecast["consensus"].to_numpy(dtype=float),
@@ -169,15 +190,27 @@ def empirical_bands(forecast: pd.DataFrame, past_errors: pd.DataFrame, *, levels
         **{c: pooled[c] for c in pooled.index})
     out["n"] = out["n"].fillna(0)
     borrowed = (out["n"] == 0).to_numpy()
+    class_pooled = np.zeros(len(out), dtype=bool)
+    if n_classes:  # a group with no errors borrows its size class's errors over every lag first
+        by_class = _group_quantiles(errors, ["_size_class"], probabilities)
+        fallback = out[["_size_class"]].merge(by_class, on="_size_class", how="left", sort=False)
+        class_pooled = borrowed & (fallback["n"].fillna(0).to_numpy(float) > 0)
+        for column in pooled.index:
+            out[column] = np.where(class_pooled, fallback[column].to_numpy(dtype=float),
+                                   out[column].to_numpy(dtype=float))
     for column in pooled.index:
-        out[column] = np.where(borrowed, pooled[column], out[column].to_numpy(dtype=float))
+        out[column] = np.where(borrowed & ~class_pooled, pooled[column], out[column].to_numpy(dtype=float))
     n = out["n"].to_numpy(dtype=float)
     empirical = n >= min_errors
     level_point = out["consensus"].astype(float).to_numpy()
     for level in levels:
         low_q = out[f"_q{(1 - level) / 2!r}"].to_numpy(dtype=float)
         high_q = out[f"_q{(1 + level) / 2!r}"].to_numpy(dtype=float)
-        half_width = stats.norm.ppf((1 + level) / 2) * SIGMA_PER_MAD * out["mad"].to_numpy(dtype=float)
+        if few_errors == "student_t":
+            factor = stats.t.ppf((1 + level) / 2, df=np.maximum(n, 1))
+        else:
+            factor = stats.norm.ppf((1 + level) / 2)
+        half_width = factor * SIGMA_PER_MAD * out["mad"].to_numpy(dtype=float)
         low = np.where(empirical, low_q, -half_width)
         high = np.where(empirical, high_q, half_width)
         low, high = np.minimum(low, 0.0), np.maximum(high, 0.0)  # the band holds the forecast itself
@@ -187,15 +220,14 @@ def empirical_bands(forecast: pd.DataFrame, past_errors: pd.DataFrame, *, levels
         # A negative forecast cannot be scaled; its band collapses onto zero and the point.
         out.loc[level_point < 0, [f"lower_{pct}", f"upper_{pct}"]] = np.nan
     count_text = out["n"].astype(int).astype(str) + " errors"
-    method = np.where(empirical, "empirical, ", "normal from MAD, ")
+    method = np.where(empirical, "empirical, ", FEW_ERRORS_TEXT[few_errors])
     method = np.where(borrowed, np.char.add(method.astype(str), "pooled, "), method)
     out["band_method"] = pd.Series(method, index=out.index).astype(object) + count_text.astype(object)
     total = int(pooled["n"])
-    out.loc[borrowed, "band_method"] = np.where(total >= min_errors, "empirical, pooled, ",
-                                                "normal from MAD, pooled, ") + f"{total} errors"
     if n_classes and total:
         size_text = ", size class " + (out["_size_class"].astype(int) + 1).astype(str) + f" of {n_classes}"
-        out["band_method"] = out["band_method"].astype(object) + np.where(borrowed, "", size_text.astype(object))
+        out["band_method"] = out["band_method"].astype(object) + np.where(borrowed & ~class_pooled, "",
+                                                                          size_text.astype(object))
     if total == 0:
         out.loc[:, band_columns(levels)] = np.nan
         out["band_method"] = "no past errors"
@@ -203,7 +235,9 @@ def empirical_bands(forecast: pd.DataFrame, past_errors: pd.DataFrame, *, levels
     return out.drop(columns=[c for c in helper if c in out.columns])
 
 
-def _check_rule(rule: str, size_classes: int) -> None:
+def _check_rule(rule: str, size_classes: int, few_errors: str = "normal") -> None:
+    if few_errors not in FEW_ERRORS_TEXT:
+        raise InvalidSpec(f"few_errors must be one of {list(FEW_ERRORS_TEXT)}, got {few_errors!r}")
     if rule not in BAND_RULES:
         raise InvalidSpec(f"band rule must be one of {list(BAND_RULES)}, got {rule!r}")
     if not isinstance(size_classes, (int, np.integer)) or size_classes < 1:
@@ -248,9 +282,21 @@ def interval_coverage(lower, upper, actual) -> float:
     return float(np.mean((y[known] >= lo[known]) & (y[known] <= hi[known])))
 
 
-def _rolling_origin_bands(errors: pd.DataFrame, *, levels: tuple[float, ...], by: Sequence[str], min_errors: int,
-                          first_test_cycle: str | None, rule: str, size_classes: int) -> pd.DataFrame:
-    """Each test cycle's forecasts with bands from the errors known at that cycle (period ≤ cycle)."""
+def rolling_origin_bands(errors: pd.DataFrame, *, levels: Sequence[float] = (0.8, 0.95),
+                         by: Sequence[str] = ("lag_bucket",), min_errors: int = 30, first_test_cycle: str | None = None,
+                         rule: str = "relative", size_classes: int = DEFAULT_SIZE_CLASSES,
+                         few_errors: str = "normal") -> pd.DataFrame:
+    """Each test cycle's forecasts with the bands the errors known at that cycle (period ≤ cycle) give.
+
+    The rows of ``errors`` whose cycle is a test cycle (from
+    ``first_test_cycle``, default the second cycle) and whose actual is
+    known, with ``consensus`` = their forecast and the band columns of
+    :func:`empirical_bands`; empty when nothing could be tested.  The
+    scoring functions summarise it; it is public so a breakdown (by size,
+    pattern, family …) can be read from the same rows.
+    """
+    levels = _check_levels(levels)
+    _check_rule(rule, size_classes, few_errors)
     errors = _with_lag_bucket(errors)
     missing = [c for c in ("cycle", "period", "forecast", "actual") if c not in errors.columns]
     if missing:
@@ -267,8 +313,9 @@ def _rolling_origin_bands(errors: pd.DataFrame, *, levels: tuple[float, ...], by
         if known.empty or current.empty:
             continue
         banded = empirical_bands(current.assign(consensus=current["forecast"].astype(float)), known,
-                                 levels=levels, by=by, min_errors=min_errors, rule=rule, size_classes=size_classes)
-        scored.append(banded.assign(_cycle=cycle))
+                                 levels=levels, by=by, min_errors=min_errors, rule=rule, size_classes=size_classes,
+                                 few_errors=few_errors)
+        scored.append(banded)
     return pd.concat(scored, ignore_index=True) if scored else pd.DataFrame()
 
 
@@ -285,8 +332,7 @@ def _coverage_rows(banded: pd.DataFrame, levels: tuple[float, ...], actual: str 
         keep = (lo.notna() & hi.notna() & y.notna()).to_numpy()
         coverage = interval_coverage(lo[keep], hi[keep], y[keep])
         score = winkler_score(lo[keep], hi[keep], y[keep], level=level)
-        cycle_column = "_cycle" if "_cycle" in banded.columns else "cycle"
-        n_cycles = int(banded.loc[keep, cycle_column].nunique()) if cycle_column in banded.columns else 0
+        n_cycles = int(banded.loc[keep, "cycle"].nunique()) if "cycle" in banded.columns else 0
         rows.append({"nominal": level, "n": int(keep.sum()), "coverage": coverage, "coverage_gap": coverage - level,
                      "mean_winkler": float(np.mean(score)) if keep.any() else float("nan"), "n_cycles": n_cycles})
     return rows
@@ -294,22 +340,23 @@ def _coverage_rows(banded: pd.DataFrame, levels: tuple[float, ...], actual: str 
 
 def backtest_bands(errors: pd.DataFrame, *, levels: Sequence[float] = (0.8, 0.95), by: Sequence[str] = ("lag_bucket",),
                    min_errors: int = 30, first_test_cycle: str | None = None, rule: str = "relative",
-                   size_classes: int = DEFAULT_SIZE_CLASSES) -> pd.DataFrame:
+                   size_classes: int = DEFAULT_SIZE_CLASSES, few_errors: str = "normal") -> pd.DataFrame:
     """Rolling-origin check of the bands: build from what was known, score on what came next.
 
     ``errors`` has [cycle, period, forecast, actual] and the ``by`` columns
     (lag_bucket derived if absent).  For each test cycle c (from
     ``first_test_cycle``, default the second cycle), bands for c's forecasts
     come from the errors whose actual was known at c (period ≤ c); they are
-    then scored against c's actuals.  ``rule`` and ``size_classes`` as in
-    :func:`empirical_bands`.  Returns one row per nominal level:
+    then scored against c's actuals.  ``rule``, ``size_classes`` and
+    ``few_errors`` as in :func:`empirical_bands`.  Returns one row per nominal level:
     [level, n, coverage, coverage_gap (coverage − level), mean_winkler,
     n_cycles].
     """
     levels = _check_levels(levels)
-    _check_rule(rule, size_classes)
-    banded = _rolling_origin_bands(errors, levels=levels, by=by, min_errors=min_errors,
-                                   first_test_cycle=first_test_cycle, rule=rule, size_classes=size_classes)
+    _check_rule(rule, size_classes, few_errors)
+    banded = rolling_origin_bands(errors, levels=levels, by=by, min_errors=min_errors,
+                                   first_test_cycle=first_test_cycle, rule=rule, size_classes=size_classes,
+                                   few_errors=few_errors)
     rows = _coverage_rows(banded, levels) if not banded.empty else []
     return pd.DataFrame(rows, columns=["nominal", "n", "coverage", "coverage_gap", "mean_winkler", "n_cycles"]).rename(
         columns={"nominal": "level"})
@@ -380,7 +427,8 @@ def level_errors(errors: pd.DataFrame, *, level: str, items: pd.DataFrame | None
 def level_bands(consensus: pd.DataFrame, past_errors: pd.DataFrame, *, level: str,
                 items: pd.DataFrame | None = None, locations: pd.DataFrame | None = None,
                 levels: Sequence[float] = (0.8, 0.95), by: Sequence[str] = ("lag_bucket",), min_errors: int = 30,
-                rule: str = "relative", size_classes: int = DEFAULT_SIZE_CLASSES) -> pd.DataFrame:
+                rule: str = "relative", size_classes: int = DEFAULT_SIZE_CLASSES,
+                few_errors: str = "normal") -> pd.DataFrame:
     """Bands of a level's total forecast read off that level's own past errors.
 
     The consensus cells [cycle, item, location, period, consensus] (or
@@ -397,7 +445,7 @@ def level_bands(consensus: pd.DataFrame, past_errors: pd.DataFrame, *, level: st
     """
     keys = _level_keys(level)
     levels = _check_levels(levels)
-    _check_rule(rule, size_classes)
+    _check_rule(rule, size_classes, few_errors)
     for column in ("item", "location", "period", "consensus"):
         if column not in consensus.columns:
             raise ValueError(f"consensus lacks column {column}")
@@ -411,7 +459,7 @@ def level_bands(consensus: pd.DataFrame, past_errors: pd.DataFrame, *, level: st
     summed = _with_lag_bucket(summed)
     past = level_errors(past_errors, level=level, items=items, locations=locations)
     banded = empirical_bands(summed, past, levels=levels, by=by, min_errors=min_errors, rule=rule,
-                             size_classes=size_classes)
+                             size_classes=size_classes, few_errors=few_errors)
     return banded.reset_index(drop=True)
 
 
@@ -474,7 +522,7 @@ def backtest_bands_by_level(errors: pd.DataFrame, *, items: pd.DataFrame | None 
                             hierarchy: Sequence[str] = DEFAULT_BAND_LEVELS, levels: Sequence[float] = (0.8, 0.95),
                             by: Sequence[str] = ("lag_bucket",), min_errors: int = 30,
                             first_test_cycle: str | None = None, rule: str = "relative",
-                            size_classes: int = DEFAULT_SIZE_CLASSES) -> pd.DataFrame:
+                            size_classes: int = DEFAULT_SIZE_CLASSES, few_errors: str = "normal") -> pd.DataFrame:
     """Rolling-origin check of bands at each level, each level's bands from its own past errors.
 
     ``errors``: one forecast's cell errors [cycle, item, location, period,
@@ -488,13 +536,14 @@ def backtest_bands_by_level(errors: pd.DataFrame, *, items: pd.DataFrame | None 
     coverage_gap, mean_winkler, n_cycles].
     """
     levels = _check_levels(levels)
-    _check_rule(rule, size_classes)
+    _check_rule(rule, size_classes, few_errors)
     rows = []
     buckets = [label for label in dict.fromkeys(lag_bucket_labels(np.arange(1, 200))) if label]
     for level in hierarchy:
         summed = level_errors(errors, level=level, items=items, locations=locations)
-        banded = _rolling_origin_bands(summed, levels=levels, by=by, min_errors=min_errors,
-                                       first_test_cycle=first_test_cycle, rule=rule, size_classes=size_classes)
+        banded = rolling_origin_bands(summed, levels=levels, by=by, min_errors=min_errors,
+                                       first_test_cycle=first_test_cycle, rule=rule, size_classes=size_classes,
+                                       few_errors=few_errors)
         for bucket in [*buckets, "all"]:
             part = banded if bucket == "all" or banded.empty else banded[banded["lag_bucket"] == bucket]
             if bucket != "all" and part.empty:
