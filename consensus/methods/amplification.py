@@ -156,24 +156,25 @@ def implied_orders(dc_forecasts: pd.DataFrame, actuals: pd.DataFrame, *, locatio
     if dc_forecasts.empty or actuals.empty:
         return pd.DataFrame({c: pd.Series(dtype=object if c in ("item", "location", "period") else float)
                              for c in ORDER_COLUMNS})
-    keys = ["cycle", "item", "location", "period"]
-    duplicated = dc_forecasts.duplicated(keys)
-    if duplicated.any():
-        first = dc_forecasts.loc[duplicated, keys].iloc[0].to_dict()
-        raise ValueError(f"dc_forecasts has more than one row for {first}: pass one source's aligned forecast")
     cycle_m = month_indexes_factorized(dc_forecasts["cycle"])
     lag = (dc_forecasts["lag"].to_numpy(int) if "lag" in dc_forecasts.columns
            else month_indexes_factorized(dc_forecasts["period"]) - cycle_m)
-    lead = _lead_times(pd.Index(dc_forecasts["location"].unique()), locations, lead_time_months)
-    lead_of_row = dc_forecasts["location"].map(lead).to_numpy(int)
-    within = (lag >= 1) & (lag <= lead_of_row)
+    location_codes, location_names = pd.factorize(dc_forecasts["location"])
+    lead = _lead_times(pd.Index(location_names), locations, lead_time_months)
+    lead_of_row = lead.to_numpy(int)[location_codes]
+    within = (lag >= 1) & (lag <= lead_of_row)  # only the lead-time lags enter S_C
     frame = pd.DataFrame({"item": dc_forecasts["item"].to_numpy()[within],
                           "location": dc_forecasts["location"].to_numpy()[within],
-                          "_m": cycle_m[within],
+                          "_m": cycle_m[within], "_lag": lag[within],
                           "quantity": dc_forecasts["quantity"].to_numpy(float)[within]})
+    duplicated = frame.duplicated(["item", "location", "_m", "_lag"])
+    if duplicated.any():
+        first = frame.loc[duplicated, ["item", "location"]].iloc[0].to_dict()
+        raise ValueError(f"dc_forecasts has more than one row for {first} in one cycle and month: "
+                         "pass one source's aligned forecast")
     grouped = frame.groupby(["item", "location", "_m"], sort=True)["quantity"]
     cover = pd.concat([grouped.sum().rename("cover"), grouped.count().rename("n_lags")], axis=1).reset_index()
-    cover["lead_time_months"] = cover["location"].map(lead).to_numpy(int)
+    cover["lead_time_months"] = cover["location"].map(lead).to_numpy(int)  # one row per item, DC and cycle
     cover = cover[cover["n_lags"] == cover["lead_time_months"]].drop(columns="n_lags")
     previous = cover[["item", "location", "_m", "cover"]].assign(_m=cover["_m"] + 1).rename(
         columns={"cover": "previous_cover"})
