@@ -529,11 +529,18 @@ def accuracy_by_pattern(errors: pd.DataFrame, patterns: pd.DataFrame, history: p
         raise InvalidSpec(f"unknown demand patterns {unknown}; expected {list(PATTERN_ORDER)}")
     if patterns.duplicated(["item", "location"]).any():
         raise InvalidSpec("patterns names some item × location more than once")
+    # One table per series (pattern, scale, id), so the error rows are merged once.
+    series = patterns[["item", "location", "pattern"]].merge(
+        series_naive_scale(history, season=MASE_SCALES[scale])[["item", "location", "scale"]],
+        on=["item", "location"], how="outer")
+    series["_series"] = np.arange(len(series))
     frame = errors[["item", "location", "forecast", "actual", *[c for c in by if c not in ("item", "location")]]]
-    frame = frame.merge(patterns[["item", "location", "pattern"]], on=["item", "location"], how="left")
+    frame = frame.merge(series, on=["item", "location"], how="left")
     frame["pattern"] = frame["pattern"].fillna("unclassified")
-    scales = series_naive_scale(history, season=MASE_SCALES[scale])
-    frame = frame.merge(scales[["item", "location", "scale"]], on=["item", "location"], how="left")
+    unnamed = frame["_series"].isna().to_numpy()
+    if unnamed.any():  # series in neither table still count once each
+        codes = frame.loc[unnamed, ["item", "location"]].groupby(["item", "location"], sort=False).ngroup()
+        frame.loc[unnamed, "_series"] = len(series) + codes.to_numpy()
     a = frame["actual"].to_numpy(float)
     e = a - frame["forecast"].to_numpy(float)
     s = frame["scale"].to_numpy(float)
@@ -541,7 +548,7 @@ def accuracy_by_pattern(errors: pd.DataFrame, patterns: pd.DataFrame, history: p
         scaled = np.where(s > 0, np.abs(e) / s, np.nan)
     parts = pd.DataFrame({"n": 1, "n_zero_actual": (a == 0).astype(int), "sum_abs": np.abs(e), "sum_err": e,
                           "sum_actual": a, "sum_scaled": np.nan_to_num(scaled), "n_mase": ~np.isnan(scaled),
-                          "_series": frame.groupby(["item", "location"], sort=False).ngroup().to_numpy()})
+                          "_series": frame["_series"].to_numpy(np.int64)})
     keys = [*by, "pattern"]
     for key in keys:
         parts[key] = frame[key].to_numpy()
