@@ -388,3 +388,25 @@ def test_an_empty_lag_bucket_borrows_its_size_class_first():
     rel = (members["actual"] - members["forecast"]) / members["forecast"]
     assert out["upper_80"].iloc[0] == pytest.approx(point * (1 + np.quantile(rel, 0.9)))
     assert out["band_method"].iloc[0] == f"empirical, pooled, {len(members)} errors, size class 5 of 5"
+
+
+@settings(max_examples=40, deadline=None)
+@given(errors=st.lists(st.tuples(st.floats(0.1, 1e4), st.floats(0, 1e4), st.sampled_from(["1", "2-3", "7+"])),
+                       min_size=1, max_size=80),
+       points=st.lists(st.tuples(st.floats(0, 1e5), st.sampled_from(["1", "2-3", "4-6"])), min_size=1, max_size=10),
+       min_errors=st.integers(1, 40), size_classes=st.integers(1, 6),
+       few_errors=st.sampled_from(["normal", "student_t"]))
+def test_size_rule_bands_hold_the_forecast_and_nest(errors, points, min_errors, size_classes, few_errors):
+    # Invariants of any band (common practice): it holds the point, stays ≥ 0, and the 95 % band holds the
+    # 80 % band (quantiles and t/z factors are monotone in the level).
+    past = pd.DataFrame(errors, columns=["forecast", "actual", "lag_bucket"])
+    forecast = pd.DataFrame(points, columns=["consensus", "lag_bucket"])
+    out = empirical_bands(forecast, past, min_errors=min_errors, rule="relative_by_size", size_classes=size_classes,
+                          few_errors=few_errors)
+    tol = 1e-9 * (1 + out["consensus"])
+    assert len(out) == len(forecast) and out["band_method"].notna().all()
+    for pct in (80, 95):
+        assert (out[f"lower_{pct}"] >= 0).all()
+        assert (out[f"lower_{pct}"] <= out["consensus"] + tol).all()
+        assert (out[f"upper_{pct}"] >= out["consensus"] - tol).all()
+    assert (out["lower_95"] <= out["lower_80"] + tol).all() and (out["upper_95"] >= out["upper_80"] - tol).all()
