@@ -134,3 +134,279 @@ def test_backtest_uses_only_actuals_known_at_each_cycle():
     # MAD = 0.10 → σ = 0.1253, 80% band 100·(1 ± 1.2816·0.1253) = [83.9, 116.1] contains 105.
     assert result.loc[0, "coverage"] == 1.0
     assert result.loc[0, "mean_winkler"] == pytest.approx(2 * 100 * stats.norm.ppf(0.9) * 0.1 * np.sqrt(np.pi / 2))
+
+
+# --- The size-class rule, bands at every level, scores by level -------------------------------------------
+
+from consensus.methods.intervals import (  # noqa: E402
+    backtest_bands_by_level, level_bands, level_errors, score_bands, score_bands_by_level, size_class_edges)
+
+
+def heteroscedastic_errors(n, seed, *, sd_of):
+    """Forecasts spread over two decades of size, actual = F + N(0, sd_of(F)²): the true law is known."""
+    rng = np.random.default_rng(seed)
+    forecast = np.exp(rng.uniform(np.log(50), np.log(5000), size=n))
+    return pd.DataFrame({"lag_bucket": "1", "forecast": forecast,
+                         "actual": forecast + rng.normal(0.0, 1.0, size=n) * sd_of(forecast)})
+
+
+def coverage_by_size_class(banded, edges, pct):
+    size_class = np.searchsorted(edges, banded["consensus"].to_numpy(), side="right")
+    inside = (banded["actual"] >= banded[f"lower_{pct}"]) & (banded["actual"] <= banded[f"upper_{pct}"])
+    return inside.groupby(size_class).agg(["mean", "size"])
+
+
+def test_size_class_band_is_the_quantile_within_its_class():
+    # Oracle numpy.quantile: the class edges are the 1/5 … 4/5 quantiles of the past positive forecasts, and a
+    # forecast's band uses the relative errors of the past forecasts in its class only.
+    past = heteroscedastic_errors(2000, 21, sd_of=lambda f: 3 * np.sqrt(f))
+    edges = size_class_edges(past["forecast"], size_classes=5)
+    np.testing.assert_allclose(edges, np.quantile(past["forecast"], [0.2, 0.4, 0.6, 0.8]))
+    point = float(np.mean(edges[1:3]))  # inside class 3 of 5
+    out = empirical_bands(pd.DataFrame({"lag_bucket": ["1"], "consensus": [point]}), past, rule="relative_by_size")
+    members = past[(past["forecast"] > edges[1]) & (past["forecast"] <= edges[2])]
+    rel = (members["actual"] - members["forecast"]) / members["forecast"]
+    low, high = np.quantile(rel, [0.1, 0.9])
+    assert out["lower_80"].iloc[0] == pytest.approx(point * (1 + low))
+    assert out["upper_80"].iloc[0] == pytest.approx(point * (1 + high))
+    assert out["band_method"].iloc[0] == f"empirical, {len(members)} errors, size class 3 of 5"
+
+
+def test_relative_rule_miscovers_by_size_and_size_classes_fix_it():
+    # Known law: normal errors with sd = 3·√F (a Poisson-like count, variance ∝ level; common practice for
+    # demand).  Then sd(e/F) = 3/√F falls with size, so one pooled relative band is too narrow for small
+    # forecasts and too wide for large ones although it covers 80 % on average.  Within size classes the
+    # empirical quantile is consistent for each class (Mondrian calibration, Vovk et al. 2005, from memory):
+    # each class covers 80 % up to sampling error, here 4,000 test cells a class: SE = √(0.8·0.2/4000) = 0.63
+    # points; we allow 3 points for that and the quantiles' own estimation error.  Invented data, fixed seed.
+    law = lambda f: 3 * np.sqrt(f)  # noqa: E731
+    past = heteroscedastic_errors(20_000, 22, sd_of=law)
+    new = heteroscedastic_errors(20_000, 23, sd_of=law).rename(columns={"forecast": "consensus"})
+    edges = size_class_edges(past["forecast"], size_classes=5)
+    pooled = empirical_bands(new, past, rule="relative")
+    by_size = empirical_bands(new, past, rule="relative_by_size")
+    for pct, nominal in ((80, 0.8), (95, 0.95)):
+        pooled_cover = coverage_by_size_class(pooled, edges, pct)["mean"]
+        assert pooled_cover.iloc[0] < nominal - 0.08 and pooled_cover.iloc[-1] > nominal + 0.03
+        assert interval_coverage(pooled[f"lower_{pct}"], pooled[f"upper_{pct}"], pooled["actual"]) == \
+            pytest.approx(nominal, abs=0.02)
+        classes = coverage_by_size_class(by_size, edges, pct)
+        assert (classes["size"] > 3500).all()
+        assert np.abs(classes["mean"] - nominal).max() < 0.03
+    # The calibrated band is also the better band by the interval score (Gneiting & Raftery 2007: a proper
+    # score, lower is better).
+    for pct, level in ((80, 0.8), (95, 0.95)):
+        score = {name: np.mean(winkler_score(b[f"lower_{pct}"], b[f"upper_{pct}"], b["actual"], level=level))
+                 for name, b in (("pooled", pooled), ("by_size", by_size))}
+        assert score["by_size"] < score["pooled"]
+
+
+def test_both_rules_cover_nominal_when_relative_errors_are_alike():
+    # Normal relative errors, sd(e/F) = 0.2 at every size: the pooled rule is already right, and the size
+    # classes must not spoil it (Williams & Goodman 1971; sampling error as above).
+    law = lambda f: 0.2 * f  # noqa: E731
+    past = heteroscedastic_errors(20_000, 24, sd_of=law)
+    new = heteroscedastic_errors(20_000, 25, sd_of=law).rename(columns={"forecast": "consensus"})
+    for rule in ("relative", "relative_by_size"):
+        out = empirical_bands(new, past, rule=rule)
+        for pct, nominal in ((80, 0.8), (95, 0.95)):
+            assert interval_coverage(out[f"lower_{pct}"], out[f"upper_{pct}"], out["actual"]) == \
+                pytest.approx(nominal, abs=0.015)
+
+
+ITEMS = pd.DataFrame({"item": ["A1", "A2", "B1"], "family": ["FA", "FA", "FB"]})
+
+
+def test_level_errors_sum_cells_before_the_error():
+    # Hand example: FA's two items miss by +5 and −5 in 2026-02 at cycle 2026-01, so the family's own error
+    # is 0; FB's one item misses by +2.  Total: forecast 10 + 20 + 8 = 38, actual 15 + 15 + 10 = 40, error 2.
+    errors = pd.DataFrame({"source": "consensus", "cycle": "2026-01", "period": "2026-02",
+                           "item": ["A1", "A2", "B1"], "location": "L1",
+                           "forecast": [10.0, 20.0, 8.0], "actual": [15.0, 15.0, 10.0]})
+    family = level_errors(errors, level="family", items=ITEMS).set_index("family")
+    assert family.loc["FA", "forecast"] == 30 and family.loc["FA", "error"] == 0 and family.loc["FA", "n_cells"] == 2
+    assert family.loc["FB", "error"] == 2 and family.loc["FB", "lag_bucket"] == "1"
+    total = level_errors(errors, level="total").iloc[0]
+    assert (total["forecast"], total["actual"], total["error"]) == (38.0, 40.0, 2.0)
+
+
+def correlated_family_errors(*, n_families, n_items, cycles, lags_, common_sd, item_sd, seed):
+    """Cell errors with a shock common to each family and cycle: e = F·(common + own), all normal.
+
+    Every item of a family has the same forecast in a cycle, so the family's relative error is
+    common + mean(own), normal with sd √(common_sd² + item_sd²/n_items): the true family law is known.
+    """
+    rng = np.random.default_rng(seed)
+    rows = []
+    base = 2024 * 12
+    for c in range(cycles):
+        for lag in lags_:
+            level = rng.uniform(50, 150, size=n_families)
+            shock = rng.normal(0, common_sd, size=n_families)
+            own = rng.normal(0, item_sd, size=(n_families, n_items))
+            forecast = np.repeat(level, n_items)
+            actual = forecast * (1 + np.repeat(shock, n_items) + own.ravel())
+            rows.append(pd.DataFrame({
+                "source": "consensus", "cycle": f"{(base + c) // 12}-{(base + c) % 12 + 1:02d}",
+                "period": f"{(base + c + lag) // 12}-{(base + c + lag) % 12 + 1:02d}",
+                "item": [f"F{f:02d}-I{i}" for f in range(n_families) for i in range(n_items)],
+                "location": "L1", "forecast": forecast, "actual": actual}))
+    errors = pd.concat(rows, ignore_index=True)
+    items = pd.DataFrame({"item": errors["item"].unique()}).assign(family=lambda d: d["item"].str[:3])
+    return errors, items
+
+
+def test_family_bands_from_family_errors_carry_the_correlation():
+    # Items of a family share a shock (sd 0.10) besides their own error (sd 0.15), so the family's relative
+    # error has sd √(0.10² + 0.15²/8) = 0.1146, not the √(0.10² + 0.15²)/√8 ≈ 0.064 that independence implies.
+    # The family band from the family's own errors must match the normal law (oracle scipy.stats.norm.ppf)
+    # and cover nominal; the independence sum √Σ(item deviation²) must not.  Invented data, fixed seed.
+    common, own, n_items = 0.10, 0.15, 8
+    past, items = correlated_family_errors(n_families=40, n_items=n_items, cycles=100, lags_=(1,), common_sd=common,
+                                           item_sd=own, seed=31)
+    new, _ = correlated_family_errors(n_families=40, n_items=n_items, cycles=100, lags_=(1,), common_sd=common,
+                                      item_sd=own, seed=32)
+    consensus = new.rename(columns={"forecast": "consensus"})
+    family = level_bands(consensus, past, level="family", items=items)
+    true_sd = np.sqrt(common**2 + own**2 / n_items)
+    for pct, level in ((80, 0.8), (95, 0.95)):
+        z = stats.norm.ppf((1 + level) / 2)
+        half = (family[f"upper_{pct}"] - family[f"lower_{pct}"]) / (2 * family["consensus"])
+        assert half.mean() == pytest.approx(z * true_sd, rel=0.05)
+    observed = level_errors(new, level="family", items=items)[["cycle", "period", "family", "actual"]]
+    scored = family.merge(observed, on=["cycle", "period", "family"])
+    assert len(scored) == 4000
+    cells = empirical_bands(consensus, past)
+    dev = cells.assign(family=cells["item"].str[:3], lo=(cells["consensus"] - cells["lower_80"]) ** 2,
+                       hi=(cells["upper_80"] - cells["consensus"]) ** 2)
+    independent = dev.groupby(["cycle", "period", "family"], as_index=False)[["consensus", "lo", "hi", "actual"]].sum()
+    for pct, nominal in ((80, 0.8), (95, 0.95)):
+        assert interval_coverage(scored[f"lower_{pct}"], scored[f"upper_{pct}"], scored["actual"]) == \
+            pytest.approx(nominal, abs=0.025)
+    assert interval_coverage(independent["consensus"] - np.sqrt(independent["lo"]),
+                             independent["consensus"] + np.sqrt(independent["hi"]), independent["actual"]) < 0.65
+
+
+def test_score_bands_by_hand():
+    # Family FA (items A1, A2), bands stored for two months at lag 1 and one at lag 2.
+    # 2026-02: actual 15 + 15 = 30 in [25, 35] → covered, Winkler 80 % = 10.
+    # 2026-03: A1 15, A2 no row (known item, month with actuals → 0), actual 15 < 20 → missed,
+    #          Winkler = (30 − 20) + (2/0.2)·(20 − 15) = 60.
+    # 2026-04 (lag 2): actual 40 in [30, 50] → covered, Winkler 20.   2026-05 has no actuals: not scored.
+    actuals = pd.DataFrame({"item": ["A1", "A2", "A1", "A1", "A2", "B1"], "location": "L1",
+                            "period": ["2026-02", "2026-02", "2026-03", "2026-04", "2026-04", "2026-03"],
+                            "quantity": [15.0, 15.0, 15.0, 20.0, 20.0, 3.0]})
+    bands = pd.DataFrame({"cycle": ["2026-01", "2026-02", "2026-02", "2026-02"], "family": "FA",
+                          "period": ["2026-02", "2026-03", "2026-04", "2026-05"],
+                          "lower_80": [25.0, 20.0, 30.0, 1.0], "upper_80": [35.0, 30.0, 50.0, 2.0]})
+    table = score_bands(bands, actuals, level="family", items=ITEMS, levels=(0.8,)).set_index("lag_bucket")
+    assert table.loc["1", "n"] == 2 and table.loc["1", "coverage"] == 0.5
+    assert table.loc["1", "mean_winkler"] == pytest.approx((10 + 60) / 2)
+    assert table.loc["2-3", "coverage"] == 1.0 and table.loc["2-3", "mean_winkler"] == pytest.approx(20)
+    assert table.loc["all", "n"] == 3 and table.loc["all", "coverage"] == pytest.approx(2 / 3)
+    assert table.loc["all", "coverage_gap"] == pytest.approx(2 / 3 - 0.8) and table.loc["all", "n_cycles"] == 2
+    both = score_bands_by_level({"family": bands, "total": bands.drop(columns="family")}, actuals, items=ITEMS,
+                                levels=(0.8,))
+    total = both[(both["level"] == "total") & (both["lag_bucket"] == "1")].iloc[0]
+    # Total 2026-03 adds B1's 3: 18 < 20, still missed; Winkler (30 − 20) + 10·2 = 30.
+    assert total["coverage"] == 0.5 and total["mean_winkler"] == pytest.approx((10 + 30) / 2)
+
+
+def test_backtest_by_level_holds_nominal_at_every_level():
+    # Stable, correlated errors (as above) over 60 cycles and lags 1-3: a rolling origin reading each level's
+    # bands off its own past errors covers within the planning target of 5 points at item × location, family
+    # and total (Williams & Goodman 1971: empirical quantiles of a stable law are consistent).
+    errors, items = correlated_family_errors(n_families=12, n_items=4, cycles=60, lags_=(1, 2, 3),
+                                             common_sd=0.08, item_sd=0.12, seed=41)
+    table = backtest_bands_by_level(errors, items=items, first_test_cycle="2024-07")
+    overall = table[table["lag_bucket"] == "all"].set_index(["level", "nominal"])
+    assert set(overall.index.get_level_values("level")) == {"item", "family", "total"}
+    for (level, nominal), row in overall.iterrows():
+        assert row["coverage"] == pytest.approx(nominal, abs=0.05), (level, nominal)
+    assert overall.loc[("total", 0.8), "n"] == 54 * 3 and overall.loc[("item", 0.8), "n_cycles"] == 54
+    by_lag = table[(table["level"] == "family") & (table["nominal"] == 0.8)]
+    assert list(by_lag["lag_bucket"]) == ["1", "2-3", "all"]
+
+
+def test_level_options_are_checked():
+    errors = pd.DataFrame({"cycle": ["2026-01"], "period": ["2026-02"], "item": ["A1"], "location": ["L1"],
+                           "forecast": [1.0], "actual": [1.0]})
+    with pytest.raises(InvalidSpec):
+        level_errors(errors, level="galaxy")
+    with pytest.raises(InvalidSpec):
+        level_errors(errors, level="family")  # no items master
+    with pytest.raises(InvalidSpec):
+        empirical_bands(pd.DataFrame({"lag_bucket": ["1"], "consensus": [1.0]}),
+                        errors.assign(lag_bucket="1"), rule="widest")
+    with pytest.raises(InvalidSpec):
+        backtest_bands_by_level(errors, size_classes=0)
+
+
+def test_student_t_widens_bands_from_few_errors_to_nominal():
+    # Known law: 20,000 groups, each with 5 past errors N(0, 10²) about a known centre 0 and one new error.
+    # A new error over σ̂ estimated from n errors is Student-t with n degrees of freedom (common statistical
+    # fact; oracle scipy.stats.t inside the method), so the z band under-covers and the t band covers nominal;
+    # σ̂ from the MAD makes t approximate, hence 2.5 points.  Invented data, fixed seed.
+    rng = np.random.default_rng(51)
+    groups, n = 20_000, 5
+    past = pd.DataFrame({"g": np.repeat(np.arange(groups), n), "forecast": 100.0})
+    past["actual"] = 100 + rng.normal(0, 10, len(past))
+    new = pd.DataFrame({"g": np.arange(groups), "consensus": 100.0, "actual": 100 + rng.normal(0, 10, groups)})
+    normal = empirical_bands(new, past, by=("g",))
+    student = empirical_bands(new, past, by=("g",), few_errors="student_t")
+    assert student["band_method"].iloc[0] == "Student t from MAD, 5 errors"
+    for pct, nominal in ((80, 0.8), (95, 0.95)):
+        assert interval_coverage(normal[f"lower_{pct}"], normal[f"upper_{pct}"], normal["actual"]) < nominal - 0.03
+        assert interval_coverage(student[f"lower_{pct}"], student[f"upper_{pct}"], student["actual"]) == \
+            pytest.approx(nominal, abs=0.025)
+    # Half-width ratio t/z for 5 degrees of freedom at 80 %: t_{0.9,5} / z_{0.9} = 1.4759 / 1.2816.
+    ratio = (student["upper_80"] - 100) / (normal["upper_80"] - 100)
+    np.testing.assert_allclose(ratio, stats.t.ppf(0.9, 5) / stats.norm.ppf(0.9))
+
+
+def test_size_classes_shrink_to_what_the_errors_afford():
+    # 100 errors in one lag bucket with min_errors 30 afford 100 // 30 = 3 classes; 40 errors afford one,
+    # which is the relative rule itself.
+    past = heteroscedastic_errors(100, 52, sd_of=lambda f: 3 * np.sqrt(f))
+    forecast = pd.DataFrame({"lag_bucket": "1", "consensus": [60.0, 4000.0]})
+    out = empirical_bands(forecast, past, rule="relative_by_size")
+    assert out["band_method"].iloc[0].endswith(", size class 1 of 3")
+    assert out["band_method"].iloc[1].endswith(", size class 3 of 3")
+    few = past.iloc[:40]
+    np.testing.assert_allclose(empirical_bands(forecast, few, rule="relative_by_size")[["lower_80", "upper_80"]],
+                               empirical_bands(forecast, few)[["lower_80", "upper_80"]])
+
+
+def test_an_empty_lag_bucket_borrows_its_size_class_first():
+    # Lag bucket "7+" has no past errors: under the size rule it takes its size class's errors over every
+    # lag (oracle numpy.quantile of that class), not the pool of all sizes.
+    past = heteroscedastic_errors(3000, 53, sd_of=lambda f: 3 * np.sqrt(f))
+    edges = size_class_edges(past["forecast"], size_classes=5)
+    point = float(edges[-1] * 1.5)  # the largest class
+    out = empirical_bands(pd.DataFrame({"lag_bucket": ["7+"], "consensus": [point]}), past, rule="relative_by_size")
+    members = past[past["forecast"] > edges[-1]]
+    rel = (members["actual"] - members["forecast"]) / members["forecast"]
+    assert out["upper_80"].iloc[0] == pytest.approx(point * (1 + np.quantile(rel, 0.9)))
+    assert out["band_method"].iloc[0] == f"empirical, pooled, {len(members)} errors, size class 5 of 5"
+
+
+@settings(max_examples=40, deadline=None)
+@given(errors=st.lists(st.tuples(st.floats(0.1, 1e4), st.floats(0, 1e4), st.sampled_from(["1", "2-3", "7+"])),
+                       min_size=1, max_size=80),
+       points=st.lists(st.tuples(st.floats(0, 1e5), st.sampled_from(["1", "2-3", "4-6"])), min_size=1, max_size=10),
+       min_errors=st.integers(1, 40), size_classes=st.integers(1, 6),
+       few_errors=st.sampled_from(["normal", "student_t"]))
+def test_size_rule_bands_hold_the_forecast_and_nest(errors, points, min_errors, size_classes, few_errors):
+    # Invariants of any band (common practice): it holds the point, stays ≥ 0, and the 95 % band holds the
+    # 80 % band (quantiles and t/z factors are monotone in the level).
+    past = pd.DataFrame(errors, columns=["forecast", "actual", "lag_bucket"])
+    forecast = pd.DataFrame(points, columns=["consensus", "lag_bucket"])
+    out = empirical_bands(forecast, past, min_errors=min_errors, rule="relative_by_size", size_classes=size_classes,
+                          few_errors=few_errors)
+    tol = 1e-9 * (1 + out["consensus"])
+    assert len(out) == len(forecast) and out["band_method"].notna().all()
+    for pct in (80, 95):
+        assert (out[f"lower_{pct}"] >= 0).all()
+        assert (out[f"lower_{pct}"] <= out["consensus"] + tol).all()
+        assert (out[f"upper_{pct}"] >= out["consensus"] - tol).all()
+    assert (out["lower_95"] <= out["lower_80"] + tol).all() and (out["upper_95"] >= out["upper_80"] - tol).all()

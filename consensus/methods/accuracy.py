@@ -436,3 +436,133 @@ def _group_tracking_signals(summed: pd.DataFrame, keys: list[str]) -> pd.DataFra
     mad_so_far = last["abs"] / last["n"]
     signal = np.where(mad_so_far > 0, last["sum"] / mad_so_far.where(mad_so_far > 0, 1.0), 0.0)
     return ordered.loc[last.index, keys].assign(tracking_signal=signal)
+
+
+# ---------------------------------------------------------------------------
+# Scoring by demand pattern: slow and lumpy items judged with a scaled error.
+# ---------------------------------------------------------------------------
+
+#: MASE scales of :func:`accuracy_by_pattern` and the season length m each differences over.
+MASE_SCALES: dict[str, int] = {"naive": 1, "seasonal_naive": MONTHS_PER_SEASON}
+
+#: Row order of the pattern table: the Syntetos–Boylan–Croston classes, then series the map did not name.
+PATTERN_ORDER: tuple[str, ...] = ("smooth", "erratic", "intermittent", "lumpy", "no_demand", "unclassified")
+
+
+def series_naive_scale(history: pd.DataFrame, *, season: int = 1) -> pd.DataFrame:
+    """In-sample MAE of the (seasonal) naive forecast of each item × location: the MASE denominator.
+
+    scale_i = 1/(T_i − m) · Σ_{t=m+1..T_i} |y_t − y_{t−m}| (Hyndman & Koehler
+    2006, "Another look at measures of forecast accuracy", IJF 22(4):679–688;
+    m = 1 is their one-step naive scale).  A series runs from its first row
+    to the last month of ``history`` as a whole, months without a row being
+    0 demand: order history lists only what was ordered, and the zeros after
+    an intermittent item's last order are part of its record (the rule of
+    :func:`forecast_errors`).  NaN where a series has no m + 1 months.
+
+    ``history``: [item, location, period, quantity].  Returns [item,
+    location, scale, n_scale] (n_scale = number of differences).
+    """
+    if not isinstance(season, (int, np.integer)) or season < 1:
+        raise InvalidSpec(f"season must be a positive whole number of months, got {season!r}")
+    if history.empty:
+        return pd.DataFrame({"item": pd.Series(dtype=object), "location": pd.Series(dtype=object),
+                             "scale": pd.Series(dtype=float), "n_scale": pd.Series(dtype=int)})
+    frame = history.assign(_m=month_indexes_factorized(history["period"]))
+    totals = frame.groupby(["item", "location", "_m"], sort=True)["quantity"].sum().unstack("_m")
+    months = np.arange(totals.columns.min(), totals.columns.max() + 1)
+    wide = totals.reindex(columns=months).to_numpy(float)
+    first = np.argmax(~np.isnan(wide), axis=1)
+    inside = np.arange(wide.shape[1])[None, :] >= first[:, None]
+    y = np.where(inside, np.nan_to_num(wide, nan=0.0), np.nan)
+    diffs = np.abs(y[:, season:] - y[:, :-season]) if y.shape[1] > season else np.empty((len(y), 0))
+    n_scale = np.sum(~np.isnan(diffs), axis=1)
+    scale = np.where(n_scale > 0, np.nansum(diffs, axis=1) / np.maximum(n_scale, 1), np.nan)
+    out = totals.index.to_frame(index=False)
+    return out.assign(scale=scale, n_scale=n_scale.astype(int))
+
+
+def accuracy_by_pattern(errors: pd.DataFrame, patterns: pd.DataFrame, history: pd.DataFrame, *,
+                        by: tuple[str, ...] = ("source", "lag_bucket"), scale: str = "naive") -> pd.DataFrame:
+    """WAPE, MASE and bias of each source, apart for each demand pattern (smooth, erratic, intermittent, lumpy).
+
+    A slow or lumpy item's WAPE is often above 100 % even for a good
+    forecast (most months are 0, so Σ|e| easily exceeds Σ actual); read with
+    its scaled error and bias, it is judged against what is possible for it.
+
+    * WAPE % = 100 · Σ|e| / Σ actual over the group's cells (e = actual − forecast);
+    * MASE = mean over the group's cells of |e| / scale_i, scale_i the series'
+      in-sample naive MAE (:func:`series_naive_scale`; Hyndman & Koehler 2006:
+      the scaled errors q = e / scale of all series pooled, MASE = mean |q|).
+      ``scale="naive"`` (default) differences one month, their definition and
+      the one that stays defined on sparse series (a seasonal difference of
+      an intermittent item compares one lonely order with another);
+      ``"seasonal_naive"`` differences 12 months, as
+      :func:`accuracy_table` does.  Cells whose series has no usable scale
+      (too short, or a constant history) are left out of MASE only;
+      ``n_mase`` counts the cells that entered it.  MASE < 1: better than the
+      in-sample naive forecast was.
+    * bias = mean e (positive: under-forecast) and bias_pct = 100 · Σe / Σ actual.
+
+    ``errors``: [item, location, forecast, actual] and the ``by`` columns (as
+    from :func:`forecast_errors`); ``patterns``: [item, location, pattern]
+    (e.g. the statistical run's classes from
+    :func:`consensus.methods.demand_pattern.classify_demand`); series it
+    does not name are "unclassified".  ``history``: the order history the
+    scale is measured on, [item, location, period, quantity] — pass what was
+    known before the forecasts, so the scale is in-sample.
+
+    Returns [by…, pattern, n, n_series, n_zero_actual, wape, mase, n_mase,
+    bias, bias_pct], patterns in :data:`PATTERN_ORDER` within each by-group.
+    """
+    if scale not in MASE_SCALES:
+        raise InvalidSpec(f"scale must be one of {sorted(MASE_SCALES)}, got {scale!r}")
+    by = list(by)
+    missing = [c for c in ["item", "location", "forecast", "actual", *by] if c not in errors.columns]
+    if missing:
+        raise InvalidSpec(f"cannot score by pattern: the error table lacks {missing}")
+    missing = [c for c in ("item", "location", "pattern") if c not in patterns.columns]
+    if missing:
+        raise InvalidSpec(f"patterns lacks columns {missing}")
+    unknown = sorted(set(patterns["pattern"].dropna()) - set(PATTERN_ORDER))
+    if unknown:
+        raise InvalidSpec(f"unknown demand patterns {unknown}; expected {list(PATTERN_ORDER)}")
+    if patterns.duplicated(["item", "location"]).any():
+        raise InvalidSpec("patterns names some item × location more than once")
+    # One table per series (pattern, scale, id), so the error rows are merged once.
+    series = patterns[["item", "location", "pattern"]].merge(
+        series_naive_scale(history, season=MASE_SCALES[scale])[["item", "location", "scale"]],
+        on=["item", "location"], how="outer")
+    series["_series"] = np.arange(len(series))
+    frame = errors[["item", "location", "forecast", "actual", *[c for c in by if c not in ("item", "location")]]]
+    frame = frame.merge(series, on=["item", "location"], how="left")
+    frame["pattern"] = frame["pattern"].fillna("unclassified")
+    unnamed = frame["_series"].isna().to_numpy()
+    if unnamed.any():  # series in neither table still count once each
+        codes = frame.loc[unnamed, ["item", "location"]].groupby(["item", "location"], sort=False).ngroup()
+        frame.loc[unnamed, "_series"] = len(series) + codes.to_numpy()
+    a = frame["actual"].to_numpy(float)
+    e = a - frame["forecast"].to_numpy(float)
+    s = frame["scale"].to_numpy(float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        scaled = np.where(s > 0, np.abs(e) / s, np.nan)
+    parts = pd.DataFrame({"n": 1, "n_zero_actual": (a == 0).astype(int), "sum_abs": np.abs(e), "sum_err": e,
+                          "sum_actual": a, "sum_scaled": np.nan_to_num(scaled), "n_mase": ~np.isnan(scaled),
+                          "_series": frame["_series"].to_numpy(np.int64)})
+    keys = [*by, "pattern"]
+    for key in keys:
+        parts[key] = frame[key].to_numpy()
+    grouped = parts.groupby(keys, sort=False)
+    sums = grouped[["n", "n_zero_actual", "sum_abs", "sum_err", "sum_actual", "sum_scaled", "n_mase"]].sum()
+    sums["n_series"] = grouped["_series"].nunique()
+    out = sums.reset_index()
+    with np.errstate(divide="ignore", invalid="ignore"):
+        total = out["sum_actual"].to_numpy(float)
+        out["wape"] = np.where(total != 0, 100.0 * out["sum_abs"] / total, np.nan)
+        out["mase"] = np.where(out["n_mase"] > 0, out["sum_scaled"] / out["n_mase"], np.nan)
+        out["bias"] = out["sum_err"] / out["n"]
+        out["bias_pct"] = np.where(total != 0, 100.0 * out["sum_err"] / total, np.nan)
+    out["_order"] = out["pattern"].map({p: i for i, p in enumerate(PATTERN_ORDER)})
+    out = out.sort_values([*by, "_order"], kind="mergesort").reset_index(drop=True)
+    columns = [*by, "pattern", "n", "n_series", "n_zero_actual", "wape", "mase", "n_mase", "bias", "bias_pct"]
+    return out.astype({"n": int, "n_series": int, "n_zero_actual": int, "n_mase": int})[columns]
