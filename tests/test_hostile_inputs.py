@@ -18,7 +18,7 @@ from consensus.errors import InputRejected
 from consensus.intake.submission import load_actuals_file, load_master_file, submit_file
 from consensus.store import frames
 from consensus.store.db import session_scope
-from consensus.store.models import Actual, BomLine, EventLine, ForecastLine, Item, Location, Submission
+from consensus.store.models import CacheEntry, ConsensusRun, Cycle, Decision, Submission
 
 HOSTILE = Path(__file__).parent / "data" / "hostile"
 ACCEPTED = {"items_no_description.csv", "locations_no_description.csv"}
@@ -29,9 +29,17 @@ REFUSED = sorted(p.name for p in HOSTILE.iterdir()
 
 
 def _counts(url) -> dict:
+    """Records, and what is in force (master data, orders, accepted files), before and after a file."""
     with session_scope(url) as session:
-        return {m.__name__: session.execute(select(func.count()).select_from(m)).scalar_one()
-                for m in (ForecastLine, EventLine, Actual, Item, Location, BomLine, Submission)}
+        out = {m.__name__: session.execute(select(func.count()).select_from(m)).scalar_one()
+               for m in (Submission, Cycle, Decision, ConsensusRun, CacheEntry)}
+        out["accepted"] = session.execute(select(func.count()).select_from(Submission)
+                                          .where(Submission.status == "accepted")).scalar_one()
+        out["items"] = len(frames.load_items(session))
+        out["locations"] = len(frames.load_locations(session))
+        out["bom"] = len(frames.load_bom(session))
+        out["actuals"] = len(frames.load_actuals(session))
+    return out
 
 
 def _feed(path: Path, url: str, *, kind: str | None = None):
@@ -51,7 +59,8 @@ def _assert_refused_and_kept(path: Path, url: str, *, kind: str | None = None) -
     assert path.name in str(caught.value) and caught.value.submission_id
     after = _counts(url)
     assert after["Submission"] == before["Submission"] + 1  # only the rejected file itself is kept
-    assert {k: v for k, v in after.items() if k != "Submission"} == {k: v for k, v in before.items() if k != "Submission"}
+    assert {k: v for k, v in after.items() if k != "Submission"} == \
+        {k: v for k, v in before.items() if k != "Submission"}
     return caught.value
 
 
