@@ -92,6 +92,11 @@ MIN_INTERVAL_ERRORS = 3
 BLOCK_SERIES = 2000
 
 _INTERMITTENT_PATTERNS = ("intermittent", "lumpy")
+#: Methods whose grid fit is polished by Levenberg–Marquardt (smoothing.refine_smoothing):
+#: Holt–Winters, whose seasonal initial states matter most (see the module docstring).
+REFINED_METHODS = ("holt_winters_add", "holt_winters_mul")
+#: Refinement iterations of the whole-span refit, warm-started from the training-window fit.
+FULL_REFINE_ITERATIONS = 2
 _PARAMETER_COLUMNS = ("alpha", "beta", "gamma", "phi")
 
 
@@ -413,6 +418,8 @@ def _select_block(
     scores = np.full((n_series, len(CANDIDATE_METHODS)), np.inf)
     holdout_errors: dict[int, np.ndarray] = {}
     full_params: dict[int, dict[str, np.ndarray]] = {}
+    full_states: dict[int, smoothing.InitialStates] = {}
+    train_fits: dict[int, smoothing.SmoothingFit] = {}
     members: dict[int, np.ndarray] = {}
     for k, method in enumerate(CANDIDATE_METHODS):
         rows = np.flatnonzero(allowed[:, k])
@@ -437,12 +444,15 @@ def _select_block(
             fit = smoothing.fit_smoothing(
                 ys, ss, method=method, fit_ends=(train_end[rows], np.full(len(rows), n_months)),
                 init_available=train_months[rows], season_length=season_length,
+                refine=(0,) if method in REFINED_METHODS else False,
             )
+            train_fits[k] = fit
             fc = smoothing.forecast_smoothing(
                 ys, ss, method=method, params=fit.params[0], available=train_months[rows],
-                origins=origins, horizon=n_lags, season_length=season_length,
+                origins=origins, horizon=n_lags, season_length=season_length, states=fit.states[0],
             )
-            full_params[k] = fit.params[1]
+            full_params[k] = fit.params[-1]
+            full_states[k] = fit.states[-1]
             fc = np.where(np.isfinite(fit.sse[0])[:, None, None], fc, np.nan)
         err = np.where(valid[rows], actual[rows] - np.maximum(fc, 0.0), np.nan)
         broken = (valid[rows] & ~np.isfinite(err)).any(axis=(1, 2))
@@ -476,9 +486,23 @@ def _select_block(
                 origins=final_origin, horizon=horizon,
             )
         else:
+            states = full_states[k].take(pick)
+            if method in REFINED_METHODS:
+                # the whole-span refit starts from the refined training-window
+                # fit (same span start, so its states are valid initial states)
+                fit = train_fits[k]
+                chosen_params, states, _ = smoothing.refine_smoothing(
+                    y[sel], start[sel], method=method,
+                    params={name: values[pick] for name, values in fit.params[0].items()},
+                    states=fit.states[0].take(pick), fit_end=np.full(len(sel), n_months),
+                    season_length=season_length, iterations=FULL_REFINE_ITERATIONS,
+                )
+                for name, values in chosen_params.items():
+                    params[name][sel] = values
             fc = smoothing.forecast_smoothing(
                 y[sel], start[sel], method=method, params=chosen_params, available=train_months[sel],
                 origins=final_origin, horizon=horizon, season_length=season_length,
+                states=states,
             )
         point[sel] = fc[:, 0, :]
     params["phi"][chosen == CANDIDATE_METHODS.index("holt")] = 1.0  # undamped Holt: φ = 1
