@@ -1,7 +1,9 @@
 """Demand patterns, trend and seasonality of many monthly series at once.
 
 Arrays follow :mod:`consensus.methods.smoothing`: ``y`` is ``(n_series,
-n_months)`` and series ``i`` lives in columns ``start[i] … n_months−1``.
+n_months)`` and series ``i`` lives in columns ``start[i] … n_months−1``.  A
+NaN month is unknown: every statistic below leaves it out (it is neither
+demand nor a zero).
 
 * **Pattern** (Syntetos, Boylan & Croston 2005, "On the categorization of
   demand patterns", Journal of the Operational Research Society 56(5)):
@@ -46,10 +48,15 @@ def _span_mask(shape: tuple[int, int], start: np.ndarray) -> np.ndarray:
     return np.arange(shape[1])[None, :] >= np.asarray(start, dtype=int)[:, None]
 
 
+def _known_span(y: np.ndarray, start: np.ndarray) -> np.ndarray:
+    """Months of each span whose quantity is known (not NaN): an unknown month is left out, not counted as zero."""
+    return _span_mask(y.shape, start) & np.isfinite(y)
+
+
 def measure_intermittency(y: np.ndarray, start: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """ADI and CV² of each series' span (NaN where there is no demand; CV² 0 for one demand)."""
     y = np.asarray(y, dtype=float)
-    span = _span_mask(y.shape, start)
+    span = _known_span(y, start)
     demand = span & (y > 0)
     n_span = span.sum(axis=1)
     n_demand = demand.sum(axis=1)
@@ -88,7 +95,7 @@ def mann_kendall_z(y: np.ndarray, start: np.ndarray) -> np.ndarray:
     for lo in range(0, n_series, block):
         hi = min(lo + block, n_series)
         yy = y[lo:hi]
-        span = _span_mask(yy.shape, start[lo:hi])
+        span = _known_span(yy, start[lo:hi])
         both = span[:, :, None] & span[:, None, :]
         diff = yy[:, None, :] - yy[:, :, None]  # [k, i, j] = y_j − y_i
         s = np.where(both & later, np.sign(diff), 0.0).sum(axis=(1, 2))
@@ -120,7 +127,7 @@ def seasonal_f_statistic(y: np.ndarray, start: np.ndarray, *, season_length: int
     y = np.asarray(y, dtype=float)
     start = np.asarray(start, dtype=int)
     m = int(season_length)
-    span = _span_mask(y.shape, start)
+    span = _known_span(y, start)
     t = np.arange(y.shape[1], dtype=float)[None, :]
     n = span.sum(axis=1)
     slot = np.arange(y.shape[1]) % m
@@ -128,7 +135,7 @@ def seasonal_f_statistic(y: np.ndarray, start: np.ndarray, *, season_length: int
         t_mean = np.where(span, t, 0).sum(axis=1) / n
         y_mean = np.where(span, y, 0).sum(axis=1) / n
         dt = np.where(span, t - t_mean[:, None], 0.0)
-        dy = np.where(span, y - y_mean[:, None], 0.0)
+        dy = np.where(span, y - y_mean[:, None], 0.0)  # unknown months drop out here
         slope = (dt * dy).sum(axis=1) / (dt**2).sum(axis=1)
         resid = np.where(span, dy - np.nan_to_num(slope)[:, None] * dt, 0.0)  # mean 0 over the span
         between = np.zeros(y.shape[0])

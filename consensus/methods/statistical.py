@@ -64,7 +64,7 @@ import pandas as pd
 from consensus.errors import InvalidSpec
 from consensus.methods import intermittent, smoothing
 from consensus.methods.demand_pattern import classify_demand, detect_seasonality, detect_trend
-from consensus.periods import is_month, month_index, month_indexes, month_names
+from consensus.periods import is_month, month_index, month_names
 
 #: Methods a series can be fitted with, simplest first (ties go to the earlier one).
 CANDIDATE_METHODS: tuple[str, ...] = (
@@ -140,22 +140,32 @@ def build_demand_matrix(history: pd.DataFrame, *, cycle: str) -> DemandMatrix:
     """Turn long actuals [item, location, period, quantity] into a :class:`DemandMatrix`.
 
     Rows after ``cycle`` are dropped first; duplicate rows of a month are
-    summed; months without a row are zero.  Raises ``InvalidSpec`` when a
-    column is missing, a period is not "YYYY-MM" or a quantity is not a
-    finite number.
+    summed; months without a row inside the history are zero demand.  An
+    unknown quantity (NaN, or an empty cell) is an unknown month, kept as NaN
+    (a month with any unknown row is unknown), and so is every month after
+    the last month that has any row at all, up to the cycle: a cycle opened
+    before its month's orders are in knows nothing of that month yet.
+    Raises ``InvalidSpec`` when a column is missing, a period is not
+    "YYYY-MM" or a quantity is text or infinite.
     """
     missing = {"item", "location", "period", "quantity"} - set(history.columns)
     if missing:
         raise InvalidSpec(f"history lacks column(s) {sorted(missing)}; expected [item, location, period, quantity]")
-    periods = history["period"].astype(str).str.strip()
-    bad = ~periods.str.fullmatch(r"\d{4}-(0[1-9]|1[0-2])")
+    # each distinct period string is checked once, not once per row
+    codes, uniques = pd.factorize(history["period"].astype(str), sort=False)
+    text = pd.Series(uniques, dtype=object).astype(str).str.strip()
+    bad = ~text.str.fullmatch(r"\d{4}-(0[1-9]|1[0-2])")
     if bad.any():
-        raise InvalidSpec(f"history period {periods[bad].iloc[0]!r} is not a month in YYYY-MM form")
-    quantity = pd.to_numeric(history["quantity"], errors="coerce").to_numpy(dtype=float)
-    if not np.isfinite(quantity).all():
-        raise InvalidSpec("history has a quantity that is not a finite number")
+        raise InvalidSpec(f"history period {text[bad].iloc[0]!r} is not a month in YYYY-MM form")
+    unique_month = (text.str.slice(0, 4).astype(int).to_numpy() * 12 + text.str.slice(5, 7).astype(int).to_numpy() - 1
+                    if len(text) else np.zeros(0, dtype=int))
+    month = unique_month[codes] if len(codes) else np.zeros(0, dtype=int)
+    raw = history["quantity"]
+    quantity = pd.to_numeric(raw, errors="coerce").to_numpy(dtype=float)
+    unknown = pd.isna(raw).to_numpy()
+    if (np.isnan(quantity) & ~unknown).any() or np.isinf(quantity).any():
+        raise InvalidSpec("history has a quantity that is not a number (an unknown month is left empty or NaN)")
     cycle_index = month_index(cycle)
-    month = month_indexes(periods)
     known = month <= cycle_index
     frame = pd.DataFrame(
         {
@@ -171,7 +181,11 @@ def build_demand_matrix(history: pd.DataFrame, *, cycle: str) -> DemandMatrix:
     first_month = int(frame["month"].min()) if len(frame) else cycle_index
     n_months = cycle_index - first_month + 1
     y = np.zeros((len(keys), n_months))
-    np.add.at(y, (code, frame["month"].to_numpy() - first_month), frame["quantity"].to_numpy())
+    column = frame["month"].to_numpy() - first_month
+    # a NaN row makes its month NaN: add.at propagates it
+    np.add.at(y, (code, column), frame["quantity"].to_numpy())
+    if len(frame):
+        y[:, int(column.max()) + 1:] = np.nan  # whole trailing months without any row: not in yet
     has_demand = y > 0
     start = np.where(has_demand.any(axis=1), np.argmax(has_demand, axis=1), n_months)
     return DemandMatrix(keys=keys, y=y, start=start.astype(int), first_month=first_month)
@@ -187,13 +201,23 @@ def forecast_benchmark(
       *Forecasting: Principles and Practice*, 3rd ed., section 5.2), naive
       when the span up to ``o`` is shorter than one season;
     * moving average: mean of the last 3 months of the span up to ``o``.
+
+    Unknown (NaN) months: naive uses the latest known month up to ``o``,
+    seasonal naive falls back to that naive value where its month is
+    unknown, and the moving average is over the known months of its window
+    (the naive value when none is known).  NaN only where nothing up to
+    ``o`` is known.
     """
     y = np.asarray(y, dtype=float)
     start = np.asarray(start, dtype=int)
     origins = np.asarray(origins, dtype=int)
-    n_series = y.shape[0]
+    n_series, n_months = y.shape
     rows = np.arange(n_series)[:, None, None]
-    last = y[:, origins][:, :, None]  # (n, K, 1)
+    # latest known month at or before each column (forward fill)
+    known = np.isfinite(y)
+    latest = np.maximum.accumulate(np.where(known, np.arange(n_months)[None, :], -1), axis=1)
+    filled = np.where(latest >= 0, y[np.arange(n_series)[:, None], np.maximum(latest, 0)], np.nan)
+    last = filled[:, origins][:, :, None]  # (n, K, 1)
     if method == "naive":
         return np.broadcast_to(last, (n_series, len(origins), horizon)).copy()
     if method == "seasonal_naive":
@@ -202,13 +226,15 @@ def forecast_benchmark(
         idx = origins[:, None] + back[None, :]  # (K, H)
         full_season = (origins[None, :] - start[:, None] + 1 >= season_length)[:, :, None]
         seasonal = y[rows, np.maximum(idx, 0)[None, :, :]]
-        return np.where(full_season, seasonal, last)
+        return np.where(full_season & np.isfinite(seasonal), seasonal, last)
     if method == "moving_average":
         offsets = np.arange(MOVING_AVERAGE_MONTHS)
         idx = origins[:, None] - offsets[None, :]  # (K, W)
-        inside = idx[None, :, :] >= start[:, None, None]
-        values = np.where(inside, y[rows, np.maximum(idx, 0)[None, :, :]], 0.0)
-        mean = values.sum(axis=2) / np.maximum(inside.sum(axis=2), 1)
+        values = y[rows, np.maximum(idx, 0)[None, :, :]]
+        inside = (idx[None, :, :] >= start[:, None, None]) & np.isfinite(values)
+        count = inside.sum(axis=2)
+        mean = np.where(inside, values, 0.0).sum(axis=2) / np.maximum(count, 1)
+        mean = np.where(count > 0, mean, last[:, :, 0])
         return np.broadcast_to(mean[:, :, None], (n_series, len(origins), horizon)).copy()
     raise InvalidSpec(f"unknown benchmark method {method!r}; expected naive, seasonal_naive or moving_average")
 
@@ -224,7 +250,9 @@ def seasonal_profiles(
     m), averaged per calendar slot and normalised to mean 1.  A group needs
     every slot covered by at least one ratio, i.e. two seasons of history;
     otherwise its profile is flat.  Slot of column t is
-    ``(first_month + t) mod m``.  ``group`` is −1 for series in no group.
+    ``(first_month + t) mod m``.  ``group`` is −1 for series in no group.  A
+    month unknown (NaN) for any member leaves the group's total unknown, and
+    no ratio is taken where the moving average would span it.
     """
     y = np.asarray(y, dtype=float)
     group = np.asarray(group, dtype=int)
@@ -277,7 +305,7 @@ def forecast_new_items(
     ``level = mean_t (y_t / index_{slot(t)})`` over the span, then
     ``ŷ_{T+h} = level · index_{slot(T+h)}``; ``profile`` is each series'
     ``(n_series, m)`` index (ones when its family has none).  Zero for a
-    series without demand.
+    series without demand.  Unknown (NaN) months are left out of the mean.
     """
     y = np.asarray(y, dtype=float)
     n_series, n_months = y.shape
@@ -285,6 +313,7 @@ def forecast_new_items(
     span = np.arange(n_months)[None, :] >= np.asarray(start)[:, None]
     slot = (first_month + np.arange(n_months)) % m
     index = profile[:, slot]
+    span &= np.isfinite(y)  # an unknown month says nothing about the level
     with np.errstate(all="ignore"):
         level = np.where(span, y / index, 0.0).sum(axis=1) / span.sum(axis=1)
     level = np.nan_to_num(level)
@@ -413,6 +442,7 @@ def _select_block(
     target = origins[:, None] + np.arange(1, n_lags + 1)[None, :]  # (K, L)
     valid = (origins[None, :, None] >= (train_end - 1)[:, None, None]) & (target[None, :, :] <= last)
     actual = y[:, np.minimum(target, last)]  # (n, K, L)
+    valid &= np.isfinite(actual)  # an unknown month is not scored
     denominator = np.where(valid, np.abs(actual), 0.0).sum(axis=(1, 2))
 
     scores = np.full((n_series, len(CANDIDATE_METHODS)), np.inf)
@@ -524,7 +554,7 @@ def _allowed_candidates(
     span_months = n_months - start
     train_months = span_months - np.minimum(HOLDOUT_MONTHS, span_months // 2)
     span = np.arange(n_months)[None, :] >= start[:, None]
-    positive = np.where(span, y > 0, True).all(axis=1)
+    positive = np.where(span & np.isfinite(y), y > 0, True).all(axis=1)
     train_end = start + train_months
     demand_in_train = (span & (np.arange(n_months)[None, :] < train_end[:, None]) & (y > 0)).sum(axis=1)
     sparse = np.isin(pattern, _INTERMITTENT_PATTERNS)
@@ -683,7 +713,7 @@ def forecast_statistical(
     seasonal_naive = pd.DataFrame(
         {
             "item": item_rep, "location": location_rep, "period": period_rep, "lag": lag_rep,
-            "quantity": np.maximum(reference, 0.0).ravel(),
+            "quantity": np.maximum(np.nan_to_num(reference), 0.0).ravel(),
         }
     )
     series = pd.DataFrame(
