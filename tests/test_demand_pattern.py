@@ -137,3 +137,17 @@ def test_unknown_months_are_left_out_of_every_statistic():
     groups = [resid[(t[ok] % 12) == s] for s in range(12)]
     assert f[0] == pytest.approx(stats.f_oneway(*groups).statistic, rel=1e-9)
     assert df_within[0] == ok.sum() - 12
+
+
+def test_trend_of_a_long_span_is_tested_on_its_last_ten_years():
+    # A span that falls for 200 months and is then flat for ten years: the flag
+    # is scipy's Kendall tau test (asymptotic) of the last 120 months only.
+    from consensus.methods.demand_pattern import TREND_WINDOW_MONTHS
+
+    rng = np.random.default_rng(2)
+    y = np.r_[np.linspace(100, 10, 200), rng.normal(10, 1, 120)]  # falls, then flat for ten years
+    flag = detect_trend(y[None, :], np.array([0]))[0]
+    recent = y[-TREND_WINDOW_MONTHS:]
+    ref = stats.kendalltau(np.arange(len(recent)), recent, method="asymptotic")
+    assert flag == bool(ref.pvalue < 0.05)
+    assert not flag and detect_trend(y[None, :200], np.array([0]))[0]

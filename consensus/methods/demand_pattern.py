@@ -17,7 +17,8 @@ demand nor a zero).
   ``S = Σ_{i<j} sign(y_j − y_i)``, variance with the tie correction
   ``[n(n−1)(2n+5) − Σ_g t_g(t_g−1)(2t_g+5)] / 18``, ``Z = S/√var`` (no
   continuity correction, as scipy's asymptotic Kendall τ test); trend when
-  |Z| > 1.96 (two-sided 5 %) and the span has at least 12 months.
+  |Z| > 1.96 (two-sided 5 %) and the span has at least 12 months; a span
+  longer than ten years is tested on its last ten.
 * **Seasonality**: one-way analysis of variance of the linearly detrended
   span grouped by season slot (month of year for m = 12), the idea of the
   X-11 test for stable seasonality (Lothian & Morry 1978, Statistics
@@ -39,6 +40,7 @@ CV2_CUTOFF = 0.49
 PATTERNS = ("smooth", "erratic", "intermittent", "lumpy", "no_demand")
 
 TREND_MIN_MONTHS = 12
+TREND_WINDOW_MONTHS = 120
 TREND_Z = 1.96
 SEASONALITY_MIN_SEASONS = 2
 SEASONALITY_P = 0.01
@@ -110,10 +112,18 @@ def mann_kendall_z(y: np.ndarray, start: np.ndarray) -> np.ndarray:
 
 
 def detect_trend(y: np.ndarray, start: np.ndarray) -> np.ndarray:
-    """True where the Mann–Kendall test finds a monotonic trend (|Z| > 1.96, span ≥ 12 months)."""
+    """True where the Mann–Kendall test finds a monotonic trend (|Z| > 1.96, span ≥ 12 months).
+
+    The test looks at the last :data:`TREND_WINDOW_MONTHS` months of a span at
+    most: the trend a forecast extrapolates is the recent one, and the pair
+    count grows with the square of the months.
+    """
+    y = np.asarray(y, dtype=float)
     start = np.asarray(start, dtype=int)
-    z = mann_kendall_z(y, start)
-    n = np.asarray(y).shape[1] - start
+    window = min(TREND_WINDOW_MONTHS, y.shape[1])
+    offset = y.shape[1] - window
+    z = mann_kendall_z(y[:, offset:], np.maximum(start - offset, 0))
+    n = y.shape[1] - start
     return (n >= TREND_MIN_MONTHS) & (np.abs(np.nan_to_num(z)) > TREND_Z)
 
 

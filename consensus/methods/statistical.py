@@ -90,6 +90,8 @@ MOVING_AVERAGE_MONTHS = 3
 MIN_INTERVAL_ERRORS = 3
 #: Series fitted together; bounds memory (grid × series × season arrays).
 BLOCK_SERIES = 2000
+#: ... and series × months fitted together (the refinement keeps a gradient per month).
+BLOCK_CELLS = 2000 * 60
 
 _INTERMITTENT_PATTERNS = ("intermittent", "lumpy")
 #: Methods whose grid fit is polished by Levenberg–Marquardt (smoothing.refine_smoothing):
@@ -572,17 +574,19 @@ def _allowed_candidates(
         & positive,
     }
     # where Holt–Winters can be fitted to a seasonal series, seasonal naive
-    # (HW without smoothing) only adds selection noise on a 12-month holdout
+    # (HW without smoothing) and the methods without a season only add
+    # selection noise on a 12-month holdout (and time)
     seasonal_fit = has_seasonality & fittable["holt_winters_add"] & ("holt_winters_add" in requested)
+    nonseasonal = ~seasonal_fit
     suited = {
-        "naive": ~sparse,
+        "naive": ~sparse & nonseasonal,
         "seasonal_naive": ~sparse & ~seasonal_fit,
-        "moving_average": np.ones(n_series, bool),
-        "ses": np.ones(n_series, bool),
+        "moving_average": nonseasonal,
+        "ses": nonseasonal,
         "croston": sparse,
         "sba": sparse,
-        "holt_damped": ~sparse,
-        "holt": ~sparse & has_trend,
+        "holt_damped": ~sparse & nonseasonal,
+        "holt": ~sparse & has_trend & nonseasonal,
         "holt_winters_add": ~sparse & has_seasonality,
         "holt_winters_mul": ~sparse & has_seasonality,
     }
@@ -590,6 +594,15 @@ def _allowed_candidates(
     can = np.stack([fittable[m] for m in CANDIDATE_METHODS], axis=1) & wanted[None, :]
     preferred = can & np.stack([suited[m] for m in CANDIDATE_METHODS], axis=1)
     return np.where(preferred.any(axis=1)[:, None], preferred, can)
+
+
+def _blocks(rows: np.ndarray, span_months: np.ndarray):
+    """Consecutive slices of ``rows`` (longest span first) of at most BLOCK_SERIES series and BLOCK_CELLS series × months."""
+    lo = 0
+    while lo < len(rows):
+        size = max(1, min(BLOCK_SERIES, BLOCK_CELLS // max(int(span_months[rows[lo]]), 1)))
+        yield rows[lo:lo + size]
+        lo += size
 
 
 def forecast_statistical(
@@ -634,8 +647,10 @@ def forecast_statistical(
         y=y, start=start, season_length=m,
     )
     fit_rows = np.flatnonzero((span_months >= NEW_ITEM_MONTHS) & allowed.any(axis=1))
-    for lo in range(0, len(fit_rows), BLOCK_SERIES):
-        rows = fit_rows[lo:lo + BLOCK_SERIES]
+    # longest spans first, so a block's recursions run over about its own
+    # months only (a series' numbers do not depend on its block)
+    fit_rows = fit_rows[np.argsort(start[fit_rows], kind="stable")]
+    for rows in _blocks(fit_rows, span_months):
         block = _select_block(y[rows], start[rows], allowed[rows], horizon=horizon, season_length=m)
         ok = block.method >= 0
         done = rows[ok]
