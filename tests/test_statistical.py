@@ -24,7 +24,7 @@ from consensus.periods import month_index, month_name
 FORECAST_COLUMNS = ["item", "location", "period", "lag", "quantity", "method"]
 INTERVAL_COLUMNS = ["item", "location", "period", "lower_80", "upper_80", "lower_95", "upper_95"]
 SERIES_COLUMNS = ["item", "location", "pattern", "has_trend", "has_seasonality", "method", "alpha", "beta",
-                  "gamma", "phi", "holdout_wape", "n_months", "fallback"]
+                  "gamma", "phi", "holdout_wape", "n_months", "fallback", "combined"]
 
 
 def long_history(series: dict[tuple[str, str], np.ndarray], first: str = "2021-01") -> pd.DataFrame:
@@ -398,3 +398,37 @@ def test_a_family_forecast_alone_is_bit_for_bit_its_rows_in_the_whole_store():
             theirs = getattr(whole, name)
             theirs = theirs[theirs["item"].isin(items)].reset_index(drop=True)
             pd.testing.assert_frame_equal(mine, theirs, check_exact=True)
+
+
+# --- Theta and the combination (on request) ---------------------------------------
+
+def test_theta_on_request_is_the_theta_method_refitted_on_the_whole_span():
+    # methods=["theta"]: the forecast is fit_theta/forecast_theta (checked
+    # against statsmodels' ThetaModel in test_theta.py) on the whole span,
+    # deseasonalised because the series is seasonal; alpha is reported.
+    from consensus.methods.theta import fit_theta, forecast_theta
+
+    y = orders(60)
+    history = long_history({("A", "X"): y}, first="2020-01")
+    res = forecast_statistical(history, cycle="2024-12", horizon=8, methods=["theta"])
+    assert res.series["method"].iloc[0] == "theta" and res.series["has_seasonality"].iloc[0]
+    fit = fit_theta(y[None, :], np.array([0]), end=np.array([60]), seasonal=np.array([True]))
+    expected = forecast_theta(y[None, :], np.array([0]), fit, origins=np.array([59]), horizon=8)[0, 0]
+    np.testing.assert_allclose(res.forecast["quantity"], np.maximum(expected, 0), rtol=1e-12)
+    assert res.series["alpha"].iloc[0] == fit.alpha[0]
+
+
+def test_combination_is_the_mean_of_its_members_each_forecast_alone():
+    # A combination requested alone averages every member it could fit (they
+    # are fitted for it, not chosen on their own); each member's forecast is
+    # what that member gives when it is the only method requested.
+    y = orders(60)
+    history = long_history({("A", "X"): y}, first="2020-01")
+    res = forecast_statistical(history, cycle="2024-12", horizon=6, methods=["combination"])
+    assert res.series["method"].iloc[0] == "combination"
+    assert res.series["combined"].iloc[0] == "theta+holt_winters_add+holt_winters_mul"
+    alone = [forecast_statistical(history, cycle="2024-12", horizon=6, methods=[m]).forecast["quantity"].to_numpy()
+             for m in ("theta", "holt_winters_add", "holt_winters_mul")]
+    np.testing.assert_allclose(res.forecast["quantity"], np.mean(alone, axis=0), rtol=1e-12)
+    for m, fc in zip(("theta", "holt_winters_add", "holt_winters_mul"), alone):
+        assert forecast_statistical(history, cycle="2024-12", horizon=6, methods=[m]).series["method"].iloc[0] == m
