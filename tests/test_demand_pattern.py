@@ -113,3 +113,41 @@ def test_short_spans_are_never_flagged():
     assert not detect_seasonality(y[:, 1:], np.array([0]))[0]
     assert not detect_trend(np.arange(11.0)[None, :], np.array([0]))[0]  # 11 months < 12
     assert detect_trend(np.arange(12.0)[None, :], np.array([0]))[0]
+
+
+def test_unknown_months_are_left_out_of_every_statistic():
+    # NaN is an unknown month: ADI/CV² count known months only (by hand with
+    # numpy), Mann-Kendall is scipy's Kendall tau of the known months against
+    # their times, the seasonal F is scipy's one-way ANOVA of the known months.
+    y = elec_equip.load().data.iloc[:60, 0].to_numpy().copy()
+    y[[5, 17, 18, 40]] = np.nan
+    sparse = np.array([0, 3, np.nan, 0, 0, 5, 0, np.nan, 2, 0, 0, 4, 0, 0, 6, 0], dtype=float)
+    adi, cv2 = measure_intermittency(sparse[None, :], np.array([1]))
+    known = sparse[1:][np.isfinite(sparse[1:])]
+    sizes = known[known > 0]
+    assert adi[0] == pytest.approx(len(known) / len(sizes))
+    assert cv2[0] == pytest.approx(sizes.var() / sizes.mean() ** 2)
+    t = np.arange(60)
+    ok = np.isfinite(y)
+    z = mann_kendall_z(y[None, :], np.array([0]))[0]
+    ref = stats.kendalltau(t[ok], y[ok], method="asymptotic")
+    assert 2 * stats.norm.sf(abs(z)) == pytest.approx(ref.pvalue, rel=1e-9)
+    f, _, df_within = seasonal_f_statistic(y[None, :], np.array([0]))
+    resid = y[ok] - np.polyval(np.polyfit(t[ok], y[ok], 1), t[ok])
+    groups = [resid[(t[ok] % 12) == s] for s in range(12)]
+    assert f[0] == pytest.approx(stats.f_oneway(*groups).statistic, rel=1e-9)
+    assert df_within[0] == ok.sum() - 12
+
+
+def test_trend_of_a_long_span_is_tested_on_its_last_ten_years():
+    # A span that falls for 200 months and is then flat for ten years: the flag
+    # is scipy's Kendall tau test (asymptotic) of the last 120 months only.
+    from consensus.methods.demand_pattern import TREND_WINDOW_MONTHS
+
+    rng = np.random.default_rng(2)
+    y = np.r_[np.linspace(100, 10, 200), rng.normal(10, 1, 120)]  # falls, then flat for ten years
+    flag = detect_trend(y[None, :], np.array([0]))[0]
+    recent = y[-TREND_WINDOW_MONTHS:]
+    ref = stats.kendalltau(np.arange(len(recent)), recent, method="asymptotic")
+    assert flag == bool(ref.pvalue < 0.05)
+    assert not flag and detect_trend(y[None, :200], np.array([0]))[0]

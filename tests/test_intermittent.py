@@ -98,3 +98,18 @@ def test_single_demand_is_not_fittable():
     y = np.array([[0, 5, 0, 0, 0, 0]], dtype=float)
     fit = fit_croston(y, np.array([1]), method="croston", fit_ends=(np.array([6]),), init_available=np.array([5]))
     assert np.isinf(fit.sse[0][0])
+
+
+def test_unknown_month_updates_nothing_and_is_not_scored_by_hand():
+    # The series of test_croston_and_sba_by_hand with month 4 unknown (it was 0):
+    # a month without demand updates nothing either, so the states, forecasts
+    # and SSE over the known months are the same as there, less month 4's error.
+    with_gap = SERIES.copy()
+    with_gap[0, 4] = np.nan
+    p0 = first_interval(with_gap, np.array([0]), np.array([10]))
+    run = run_croston(with_gap, np.array([0]), alpha=0.2, method="croston", interval0=p0,
+                      fit_ends=(np.array([10]),), origins=np.array([9]), horizon=2)
+    np.testing.assert_allclose(run.forecasts[0, 0, 0], [1.0842105263] * 2, atol=1e-9)
+    f = np.array([1, 1, 1, 3.4 / 3, 3.4 / 3, 3.12 / 2.8, 3.12 / 2.8, 3.12 / 2.8, 3.12 / 2.8])
+    err2 = (SERIES[0, 1:] - f) ** 2
+    assert run.sse[0][0, 0] == pytest.approx(err2.sum() - err2[3])

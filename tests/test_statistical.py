@@ -24,7 +24,7 @@ from consensus.periods import month_index, month_name
 FORECAST_COLUMNS = ["item", "location", "period", "lag", "quantity", "method"]
 INTERVAL_COLUMNS = ["item", "location", "period", "lower_80", "upper_80", "lower_95", "upper_95"]
 SERIES_COLUMNS = ["item", "location", "pattern", "has_trend", "has_seasonality", "method", "alpha", "beta",
-                  "gamma", "phi", "holdout_wape", "n_months", "fallback"]
+                  "gamma", "phi", "holdout_wape", "n_months", "fallback", "combined"]
 
 
 def long_history(series: dict[tuple[str, str], np.ndarray], first: str = "2021-01") -> pd.DataFrame:
@@ -293,3 +293,142 @@ def test_reruns_and_row_order_give_identical_results(rows):
     for name in ("forecast", "intervals", "series", "seasonal_naive"):
         pd.testing.assert_frame_equal(getattr(a, name), getattr(b, name))
         pd.testing.assert_frame_equal(getattr(a, name), getattr(c, name), check_exact=False, rtol=1e-9)
+
+
+# --- unknown months ------------------------------------------------------------
+
+def test_unknown_quantities_and_trailing_months_are_nan_in_the_matrix():
+    # NaN (or an empty cell) is an unknown month; a month with any unknown row
+    # is unknown; absent rows inside the history are zero; whole trailing
+    # months with no row at all (orders not in yet) are unknown.
+    history = pd.DataFrame({
+        "item": ["A", "A", "A", "A", "B", "B"],
+        "location": ["X"] * 6,
+        "period": ["2024-01", "2024-02", "2024-03", "2024-03", "2024-01", "2024-04"],
+        "quantity": [5.0, None, 2.0, 1.0, 3.0, np.nan],
+    })
+    matrix = build_demand_matrix(history, cycle="2024-06")
+    np.testing.assert_array_equal(matrix.y[0], [5.0, np.nan, 3.0, 0.0, np.nan, np.nan])
+    np.testing.assert_array_equal(matrix.y[1], [3.0, 0.0, 0.0, np.nan, np.nan, np.nan])
+    for bad in ("many", np.inf):
+        broken = history.assign(quantity=history["quantity"].astype(object))
+        broken.loc[0, "quantity"] = bad
+        with pytest.raises(InvalidSpec):
+            build_demand_matrix(broken, cycle="2024-06")
+
+
+def test_unknown_months_are_left_out_of_the_holdout_by_hand():
+    # methods=["naive"]: the holdout errors are y[o+h] - (latest known y up to o)
+    # over the 12 origins, skipping every target month that is unknown.
+    y = orders(48).copy()
+    y[[40, 44]] = np.nan
+    history = long_history({("A", "X"): y}, first="2021-01")
+    res = forecast_statistical(history, cycle="2024-12", horizon=3, methods=["naive"])
+    filled = pd.Series(y).ffill().to_numpy()
+    errors, actuals = [], []
+    for o in range(35, 47):
+        for h in (1, 2, 3):
+            if o + h <= 47 and np.isfinite(y[o + h]):
+                errors.append(y[o + h] - filled[o])
+                actuals.append(y[o + h])
+    assert res.series["holdout_wape"].iloc[0] == pytest.approx(np.abs(errors).sum() / np.abs(actuals).sum())
+    assert (res.forecast["quantity"] == y[-1]).all()
+
+
+def test_a_cycle_opened_before_its_orders_are_in_forecasts_through_the_unknown_months():
+    # History through 2024-10, cycle 2024-12: months 11 and 12 are unknown,
+    # the forecast for 2025-01 is the model's 3-step forecast from October.
+    # With SES that is the October level (flat forecast), recomputed with
+    # statsmodels at the alpha we report.
+    y = orders(46)
+    history = long_history({("A", "X"): y}, first="2021-01")
+    res = forecast_statistical(history, cycle="2024-12", horizon=2, methods=["ses"])
+    alpha = res.series["alpha"].iloc[0]
+    reference = ExponentialSmoothing(y, initialization_method="known", initial_level=y[0]).fit(
+        smoothing_level=alpha, optimized=False).forecast(3)
+    np.testing.assert_allclose(res.forecast["quantity"], reference[1:], rtol=1e-9)
+    assert res.series["n_months"].iloc[0] == 48
+    matrix = build_demand_matrix(history, cycle="2024-12")
+    assert np.isnan(matrix.y[0, -2:]).all()
+
+
+# --- partitions ------------------------------------------------------------------
+
+def test_a_family_forecast_alone_is_bit_for_bit_its_rows_in_the_whole_store():
+    # The run spreads families over processes: every row of a family's result
+    # must equal, exactly, its rows when all families are forecast together.
+    rng = np.random.default_rng(11)
+    base = orders(60)
+    t = np.arange(60)
+    series, families = {}, {}
+    for k in range(36):
+        family = f"F{k % 4}"
+        kind = k % 6
+        if kind == 0:
+            values = np.round(base * rng.uniform(0.3, 3.0) + rng.normal(0, 3, 60))
+        elif kind == 1:
+            values = np.round(50 + 2 * t + rng.normal(0, 5, 60))
+        elif kind == 2:
+            values = (rng.random(60) < 0.3) * np.round(rng.gamma(2, 5, 60))
+        elif kind == 3:
+            values = np.r_[np.zeros(57), [4, 6, 5]]
+        elif kind == 4:
+            values = np.round(base[:60] * rng.uniform(0.5, 2))
+            values[:rng.integers(1, 30)] = 0  # later start
+        else:
+            values = np.round(rng.normal(100, 10, 60))
+            values[rng.integers(20, 59)] = np.nan  # an unknown month
+        if family == "F3":
+            values[:18] = 0  # this family's matrix starts later than the store's
+        item = f"I{k:02d}"
+        series[(item, f"L{k % 3}")] = np.maximum(values, 0) if kind != 5 else values
+        families[item] = family
+    history = long_history(series, first="2020-01")
+    history = history[history["quantity"] != 0]  # absent rows are zero demand
+    families = pd.Series(families)
+    whole = forecast_statistical(history, cycle="2024-12", horizon=12, families=families)
+    for family in ("F1", "F3"):
+        items = families.index[families == family]
+        subset = history[history["item"].isin(items)]
+        part = forecast_statistical(subset, cycle="2024-12", horizon=12, families=families[items])
+        if family == "F3":  # a partition whose matrix has fewer months than the store's
+            assert build_demand_matrix(subset, cycle="2024-12").first_month > month_index("2020-01")
+        for name in ("forecast", "intervals", "series", "seasonal_naive"):
+            mine = getattr(part, name).reset_index(drop=True)
+            theirs = getattr(whole, name)
+            theirs = theirs[theirs["item"].isin(items)].reset_index(drop=True)
+            pd.testing.assert_frame_equal(mine, theirs, check_exact=True)
+
+
+# --- Theta and the combination (on request) ---------------------------------------
+
+def test_theta_on_request_is_the_theta_method_refitted_on_the_whole_span():
+    # methods=["theta"]: the forecast is fit_theta/forecast_theta (checked
+    # against statsmodels' ThetaModel in test_theta.py) on the whole span,
+    # deseasonalised because the series is seasonal; alpha is reported.
+    from consensus.methods.theta import fit_theta, forecast_theta
+
+    y = orders(60)
+    history = long_history({("A", "X"): y}, first="2020-01")
+    res = forecast_statistical(history, cycle="2024-12", horizon=8, methods=["theta"])
+    assert res.series["method"].iloc[0] == "theta" and res.series["has_seasonality"].iloc[0]
+    fit = fit_theta(y[None, :], np.array([0]), end=np.array([60]), seasonal=np.array([True]))
+    expected = forecast_theta(y[None, :], np.array([0]), fit, origins=np.array([59]), horizon=8)[0, 0]
+    np.testing.assert_allclose(res.forecast["quantity"], np.maximum(expected, 0), rtol=1e-12)
+    assert res.series["alpha"].iloc[0] == fit.alpha[0]
+
+
+def test_combination_is_the_mean_of_its_members_each_forecast_alone():
+    # A combination requested alone averages every member it could fit (they
+    # are fitted for it, not chosen on their own); each member's forecast is
+    # what that member gives when it is the only method requested.
+    y = orders(60)
+    history = long_history({("A", "X"): y}, first="2020-01")
+    res = forecast_statistical(history, cycle="2024-12", horizon=6, methods=["combination"])
+    assert res.series["method"].iloc[0] == "combination"
+    assert res.series["combined"].iloc[0] == "theta+holt_winters_add+holt_winters_mul"
+    alone = [forecast_statistical(history, cycle="2024-12", horizon=6, methods=[m]).forecast["quantity"].to_numpy()
+             for m in ("theta", "holt_winters_add", "holt_winters_mul")]
+    np.testing.assert_allclose(res.forecast["quantity"], np.mean(alone, axis=0), rtol=1e-12)
+    for m, fc in zip(("theta", "holt_winters_add", "holt_winters_mul"), alone):
+        assert forecast_statistical(history, cycle="2024-12", horizon=6, methods=[m]).series["method"].iloc[0] == m

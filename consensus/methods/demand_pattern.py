@@ -1,7 +1,9 @@
 """Demand patterns, trend and seasonality of many monthly series at once.
 
 Arrays follow :mod:`consensus.methods.smoothing`: ``y`` is ``(n_series,
-n_months)`` and series ``i`` lives in columns ``start[i] … n_months−1``.
+n_months)`` and series ``i`` lives in columns ``start[i] … n_months−1``.  A
+NaN month is unknown: every statistic below leaves it out (it is neither
+demand nor a zero).
 
 * **Pattern** (Syntetos, Boylan & Croston 2005, "On the categorization of
   demand patterns", Journal of the Operational Research Society 56(5)):
@@ -15,7 +17,8 @@ n_months)`` and series ``i`` lives in columns ``start[i] … n_months−1``.
   ``S = Σ_{i<j} sign(y_j − y_i)``, variance with the tie correction
   ``[n(n−1)(2n+5) − Σ_g t_g(t_g−1)(2t_g+5)] / 18``, ``Z = S/√var`` (no
   continuity correction, as scipy's asymptotic Kendall τ test); trend when
-  |Z| > 1.96 (two-sided 5 %) and the span has at least 12 months.
+  |Z| > 1.96 (two-sided 5 %) and the span has at least 12 months; a span
+  longer than ten years is tested on its last ten.
 * **Seasonality**: one-way analysis of variance of the linearly detrended
   span grouped by season slot (month of year for m = 12), the idea of the
   X-11 test for stable seasonality (Lothian & Morry 1978, Statistics
@@ -37,6 +40,7 @@ CV2_CUTOFF = 0.49
 PATTERNS = ("smooth", "erratic", "intermittent", "lumpy", "no_demand")
 
 TREND_MIN_MONTHS = 12
+TREND_WINDOW_MONTHS = 120
 TREND_Z = 1.96
 SEASONALITY_MIN_SEASONS = 2
 SEASONALITY_P = 0.01
@@ -46,10 +50,15 @@ def _span_mask(shape: tuple[int, int], start: np.ndarray) -> np.ndarray:
     return np.arange(shape[1])[None, :] >= np.asarray(start, dtype=int)[:, None]
 
 
+def _known_span(y: np.ndarray, start: np.ndarray) -> np.ndarray:
+    """Months of each span whose quantity is known (not NaN): an unknown month is left out, not counted as zero."""
+    return _span_mask(y.shape, start) & np.isfinite(y)
+
+
 def measure_intermittency(y: np.ndarray, start: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """ADI and CV² of each series' span (NaN where there is no demand; CV² 0 for one demand)."""
     y = np.asarray(y, dtype=float)
-    span = _span_mask(y.shape, start)
+    span = _known_span(y, start)
     demand = span & (y > 0)
     n_span = span.sum(axis=1)
     n_demand = demand.sum(axis=1)
@@ -88,7 +97,7 @@ def mann_kendall_z(y: np.ndarray, start: np.ndarray) -> np.ndarray:
     for lo in range(0, n_series, block):
         hi = min(lo + block, n_series)
         yy = y[lo:hi]
-        span = _span_mask(yy.shape, start[lo:hi])
+        span = _known_span(yy, start[lo:hi])
         both = span[:, :, None] & span[:, None, :]
         diff = yy[:, None, :] - yy[:, :, None]  # [k, i, j] = y_j − y_i
         s = np.where(both & later, np.sign(diff), 0.0).sum(axis=(1, 2))
@@ -103,10 +112,18 @@ def mann_kendall_z(y: np.ndarray, start: np.ndarray) -> np.ndarray:
 
 
 def detect_trend(y: np.ndarray, start: np.ndarray) -> np.ndarray:
-    """True where the Mann–Kendall test finds a monotonic trend (|Z| > 1.96, span ≥ 12 months)."""
+    """True where the Mann–Kendall test finds a monotonic trend (|Z| > 1.96, span ≥ 12 months).
+
+    The test looks at the last :data:`TREND_WINDOW_MONTHS` months of a span at
+    most: the trend a forecast extrapolates is the recent one, and the pair
+    count grows with the square of the months.
+    """
+    y = np.asarray(y, dtype=float)
     start = np.asarray(start, dtype=int)
-    z = mann_kendall_z(y, start)
-    n = np.asarray(y).shape[1] - start
+    window = min(TREND_WINDOW_MONTHS, y.shape[1])
+    offset = y.shape[1] - window
+    z = mann_kendall_z(y[:, offset:], np.maximum(start - offset, 0))
+    n = y.shape[1] - start
     return (n >= TREND_MIN_MONTHS) & (np.abs(np.nan_to_num(z)) > TREND_Z)
 
 
@@ -120,7 +137,7 @@ def seasonal_f_statistic(y: np.ndarray, start: np.ndarray, *, season_length: int
     y = np.asarray(y, dtype=float)
     start = np.asarray(start, dtype=int)
     m = int(season_length)
-    span = _span_mask(y.shape, start)
+    span = _known_span(y, start)
     t = np.arange(y.shape[1], dtype=float)[None, :]
     n = span.sum(axis=1)
     slot = np.arange(y.shape[1]) % m
@@ -128,7 +145,7 @@ def seasonal_f_statistic(y: np.ndarray, start: np.ndarray, *, season_length: int
         t_mean = np.where(span, t, 0).sum(axis=1) / n
         y_mean = np.where(span, y, 0).sum(axis=1) / n
         dt = np.where(span, t - t_mean[:, None], 0.0)
-        dy = np.where(span, y - y_mean[:, None], 0.0)
+        dy = np.where(span, y - y_mean[:, None], 0.0)  # unknown months drop out here
         slope = (dt * dy).sum(axis=1) / (dt**2).sum(axis=1)
         resid = np.where(span, dy - np.nan_to_num(slope)[:, None] * dt, 0.0)  # mean 0 over the span
         between = np.zeros(y.shape[0])

@@ -9,6 +9,9 @@ the intervals between them separately, updating only in months with demand:
   demand; otherwise ``z`` and ``p`` carry over;
 * forecast for every future month: ``z_t / p_t``.
 
+An unknown month (NaN) updates nothing and is not scored; the months-since
+counter runs on through it (time passes whether or not its orders are known).
+
 Syntetos & Boylan (2005, "The accuracy of intermittent demand estimates",
 International Journal of Forecasting 21(2)) showed that ratio is biased
 upwards and multiply it by ``1 − α/2`` (SBA).
@@ -101,10 +104,11 @@ def run_croston(
             started = (t >= start)[:, None]
             updating = (t > start)[:, None]
             obs = y[:, t][:, None]
+            known = np.isfinite(obs)
             pred = factor * size / interval
             err2 = (obs - pred) ** 2
             for acc, end in zip(sse, ends):
-                acc += np.where(updating & (t < end)[:, None], err2, 0.0)
+                acc += np.where(updating & known & (t < end)[:, None], err2, 0.0)
             since = np.where(updating, since + 1, since)
             demand = updating & (obs > 0)
             size = np.where(demand, a * obs + (1 - a) * size, size)

@@ -86,6 +86,14 @@ def _as_grid(p, shape, default: float) -> np.ndarray:
     return np.broadcast_to(np.asarray(default if p is None else p, dtype=float), shape)
 
 
+def _initial_grid(value, shape, n_series: int) -> np.ndarray:
+    """An initial state given per series ``(n,)`` or per series and grid point ``(n, G)``, as ``shape``."""
+    arr = np.asarray(value, dtype=float)
+    if arr.ndim == 1:
+        arr = arr[:, None]
+    return np.broadcast_to(arr, shape).copy()
+
+
 def run_smoothing(
     y: np.ndarray,
     start: np.ndarray,
@@ -110,36 +118,44 @@ def run_smoothing(
     Parameters are scalars, ``(n_grid,)`` arrays shared by all series, or
     ``(n_series, n_grid)`` arrays.  Initial states are those *before* the first
     month of each span (statsmodels' ``initialization_method="known"``):
-    ``level0`` and ``trend0`` have shape ``(n_series,)``; ``season0[i, j]`` is
-    the seasonal term applied to the j-th month of series i's span.
-    ``phi=None`` means no damping (φ = 1).  See the module docstring for the
-    recursions.
+    ``level0`` and ``trend0`` have shape ``(n_series,)`` or ``(n_series,
+    n_grid)``; ``season0[i, j]`` (or ``season0[i, g, j]``) is the seasonal term
+    applied to the j-th month of series i's span.  ``phi=None`` means no
+    damping (φ = 1).  See the module docstring for the recursions.
+
+    A NaN in ``y`` is an unknown month (not zero): the state is updated with
+    the one-step forecast in its place, so level, trend and season carry on
+    as forecast (the usual state-space treatment of a missing observation,
+    Durbin & Koopman, *Time Series Analysis by State Space Methods*, 2nd ed.,
+    section 4.10; Hyndman et al. 2008, section 2.5), and the month adds
+    nothing to the squared errors.
     """
     if seasonal not in (None, "add", "mul"):
         raise InvalidSpec(f"seasonal must be None, 'add' or 'mul', got {seasonal!r}")
     y = np.asarray(y, dtype=float)
     start = np.asarray(start, dtype=int)
     n_series, n_months = y.shape
-    shape = _grid_shape(n_series, alpha, beta, gamma, phi)
+    shape = _grid_shape(n_series, alpha, beta, gamma, phi, level0 if np.ndim(level0) == 2 else None)
     a = _as_grid(alpha, shape, 0.0)
     b_ = _as_grid(beta, shape, 0.0)
     g_ = _as_grid(gamma, shape, 0.0)
     ph = _as_grid(phi, shape, 1.0) if trend else np.zeros(shape)
     m = int(season_length)
 
-    level = np.broadcast_to(np.asarray(level0, dtype=float)[:, None], shape).copy()
-    slope = (
-        np.broadcast_to(np.asarray(trend0, dtype=float)[:, None], shape).copy() if trend else np.zeros(shape)
-    )
+    level = _initial_grid(level0, shape, n_series)
+    slope = _initial_grid(trend0, shape, n_series) if trend else np.zeros(shape)
     seasons = None
     if seasonal is not None:
         # slot (t mod m) holds the latest seasonal term for month t, so a
         # series' initial terms go where its span's first months fall
-        seasons = np.empty((m,) + shape)
         season0 = np.asarray(season0, dtype=float)
-        slots = (start[:, None] + np.arange(m)) % m
-        rows = np.repeat(np.arange(n_series), m)
-        seasons[slots.ravel(), rows, :] = season0.reshape(-1)[:, None]
+        if season0.ndim == 2:
+            season0 = season0[:, None, :]
+        season0 = np.broadcast_to(season0, shape + (m,))
+        seasons = np.empty((m,) + shape)
+        slots = (start[:, None] + np.arange(m)) % m  # (n, m)
+        rows = np.arange(n_series)[:, None]
+        seasons[slots, rows, :] = np.moveaxis(season0, 2, 1)
 
     ends = [np.asarray(e, dtype=int) for e in fit_ends]
     sse = [np.zeros(shape) for _ in ends]
@@ -151,28 +167,36 @@ def run_smoothing(
         steps = np.arange(1, horizon + 1)
         damp_sums = np.cumsum(ph[..., None] ** steps, axis=-1)  # φ + … + φ^h
     first = int(start.min()) if n_series else n_months
+    observed = np.isfinite(y)
 
     with np.errstate(all="ignore"):
         for t in range(max(first, 0), n_months):
             active = (t >= start)[:, None]
-            obs = y[:, t][:, None]
+            known = observed[:, t][:, None]
             base = level + ph * slope
             if seasonal == "add":
                 s_old = seasons[t % m]
                 pred = base + s_old
-                new_level = a * (obs - s_old) + (1 - a) * base
-                new_season = g_ * (obs - base) + (1 - g_) * s_old
             elif seasonal == "mul":
                 s_old = seasons[t % m]
                 pred = base * s_old
+            else:
+                pred = base
+            # an unknown month is updated with its own forecast
+            obs = np.where(known, y[:, t][:, None], pred)
+            if seasonal == "add":
+                new_level = a * (obs - s_old) + (1 - a) * base
+                new_season = g_ * (obs - base) + (1 - g_) * s_old
+            elif seasonal == "mul":
                 new_level = a * (obs / s_old) + (1 - a) * base
                 new_season = g_ * (obs / base) + (1 - g_) * s_old
             else:
-                pred = base
                 new_level = a * obs + (1 - a) * base
-            err2 = (obs - pred) ** 2
-            for acc, end in zip(sse, ends):
-                acc += np.where(active & (t < end)[:, None], err2, 0.0)
+            if ends:
+                err2 = (obs - pred) ** 2
+                scored = active & known
+                for acc, end in zip(sse, ends):
+                    acc += np.where(scored & (t < end)[:, None], err2, 0.0)
             if fitted is not None:
                 fitted[..., t] = np.where(active, pred, np.nan)
             if trend:
@@ -201,6 +225,26 @@ def _span_window(y: np.ndarray, start: np.ndarray, length: int) -> np.ndarray:
     return np.where(inside, out, np.nan)
 
 
+def _nan_mean(values: np.ndarray, axis: int) -> np.ndarray:
+    """Mean of the finite values along ``axis`` (NaN where there are none), without numpy's warning."""
+    finite = np.isfinite(values)
+    count = finite.sum(axis=axis)
+    with np.errstate(all="ignore"):
+        return np.where(count > 0, np.where(finite, values, 0.0).sum(axis=axis) / count, np.nan)
+
+
+@dataclass(frozen=True)
+class InitialStates:
+    """States before the first month of each span: level ``(n,)``, trend ``(n,)``, season ``(n, m)`` or None."""
+
+    level: np.ndarray
+    trend: np.ndarray
+    season: np.ndarray | None
+
+    def take(self, rows) -> "InitialStates":
+        return InitialStates(self.level[rows], self.trend[rows], None if self.season is None else self.season[rows])
+
+
 def estimate_initial_states(
     y: np.ndarray,
     start: np.ndarray,
@@ -213,10 +257,12 @@ def estimate_initial_states(
     """Heuristic initial level, trend and season from the first months of each span.
 
     Only the first ``available[i]`` months of series i are used, so a backcast
-    never initialises from its own holdout.
+    never initialises from its own holdout.  Unknown (NaN) months are left
+    out of every mean and of the line.
 
     * no trend: ``l_0 = y_1`` (the NIST/SEMATECH e-Handbook 6.4.3.1 convention,
-      first smoothed value = first observation);
+      first smoothed value = first observation; the first known month when
+      the first is unknown);
     * trend, no season: a least-squares line through the first
       ``min(10, available)`` observations, ``y_j ≈ l_0 + b_0·j``
       (Hyndman et al. 2008, section 2.6.1);
@@ -236,28 +282,33 @@ def estimate_initial_states(
         window = _span_window(y, start, 2 * m)
         enough = (available >= 2 * m)[:, None]
         window = np.where(enough, window, np.nan)
-        first_mean = window[:, :m].mean(axis=1)
-        second_mean = window[:, m:].mean(axis=1)
+        first_mean = _nan_mean(window[:, :m], axis=1)
+        second_mean = _nan_mean(window[:, m:], axis=1)
         slope0 = (second_mean - first_mean) / m
         level0 = first_mean - slope0 * (m + 1) / 2
         line = level0[:, None] + slope0[:, None] * np.arange(1, 2 * m + 1)
         with np.errstate(all="ignore"):
             if seasonal == "add":
-                season = (window - line).reshape(n_series, 2, m).mean(axis=1)
+                season = _nan_mean((window - line).reshape(n_series, 2, m), axis=1)
                 season = season - season.mean(axis=1, keepdims=True)
             else:
-                season = (window / line).reshape(n_series, 2, m).mean(axis=1)
+                season = _nan_mean((window / line).reshape(n_series, 2, m), axis=1)
                 season = season / season.mean(axis=1, keepdims=True)
         return level0, slope0, season
     if not trend:
-        return _span_window(y, start, 1)[:, 0], np.zeros(n_series), None
+        window = _span_window(y, start, max(int(available.max()) if len(available) else 1, 1))
+        usable = np.isfinite(window) & (np.arange(window.shape[1])[None, :] < available[:, None])
+        first_known = np.argmax(usable, axis=1)
+        level0 = np.where(usable.any(axis=1), window[np.arange(n_series), first_known], np.nan)
+        return level0, np.zeros(n_series), None
     k = np.clip(available, 1, TREND_INIT_MONTHS)
     window = _span_window(y, start, TREND_INIT_MONTHS)
     j = np.arange(1, TREND_INIT_MONTHS + 1, dtype=float)
-    use = j[None, :] <= k[:, None]
+    use = (j[None, :] <= k[:, None]) & np.isfinite(window)
     count = use.sum(axis=1)
-    jm = np.where(use, j, 0).sum(axis=1) / count
-    ym = np.where(use, window, 0).sum(axis=1) / count
+    with np.errstate(all="ignore"):
+        jm = np.where(use, j, 0).sum(axis=1) / count
+        ym = np.where(use, window, 0).sum(axis=1) / count
     dj = np.where(use, j - jm[:, None], 0.0)
     sxx = (dj**2).sum(axis=1)
     sxy = (dj * np.where(use, window - ym[:, None], 0.0)).sum(axis=1)
@@ -306,6 +357,17 @@ GRID_PARAMETERS: dict[str, tuple[str, ...]] = {
     "holt_winters_mul": ("alpha", "beta", "gamma", "phi"),
 }
 
+#: Bounds the refinement keeps: α in [ALPHA_MIN, 1], β in [0, α], γ in [0, 1 − α]
+#: (Hyndman et al. 2008, section 10.1, the "usual" region), φ in PHI_BOUNDS
+#: (the range of the grids; Gardner & McKenzie 1985 damp with φ < 1).
+ALPHA_MIN = 1e-4
+PHI_BOUNDS = (0.8, 1.0)
+#: Smallest multiplicative seasonal index the refinement allows (a season can't flip sign).
+SEASON_MIN = 1e-3
+#: Levenberg–Marquardt iterations after the grid, and the damping tried in each.
+REFINE_ITERATIONS = 3
+REFINE_DAMPING = (1e-3, 1e-1, 1e1)
+
 
 def minimum_months(method: str, *, season_length: int = 12) -> int:
     """Fewest span months a smoothing method is fitted on (two seasons for Holt–Winters)."""
@@ -317,18 +379,314 @@ def minimum_months(method: str, *, season_length: int = 12) -> int:
     return 4 if has_trend else 2
 
 
+def _parameter_layout(method: str, season_length: int) -> dict[str, slice]:
+    """Columns of each free quantity in the refinement's parameter vector (smoothing, then initial states)."""
+    has_trend, damped, seasonal = SMOOTHING_METHODS[method]
+    names = ["alpha"] + (["beta"] if has_trend else []) + (["gamma"] if seasonal else []) + (["phi"] if damped else [])
+    names += ["level0"] + (["trend0"] if has_trend else [])
+    layout = {name: slice(k, k + 1) for k, name in enumerate(names)}
+    if seasonal:
+        layout["season0"] = slice(len(names), len(names) + season_length)
+    return layout
+
+
+def _pack(method, params, states, layout, n_series) -> np.ndarray:
+    width = max(s.stop for s in layout.values())
+    theta = np.zeros((n_series, width))
+    for name, cols in layout.items():
+        if name == "level0":
+            theta[:, cols] = states.level[:, None]
+        elif name == "trend0":
+            theta[:, cols] = states.trend[:, None]
+        elif name == "season0":
+            theta[:, cols] = states.season
+        else:
+            theta[:, cols] = np.asarray(params[name], dtype=float)[:, None]
+    return theta
+
+
+def _unpack(theta, layout, method) -> tuple[dict[str, np.ndarray], InitialStates]:
+    """Parameters and states from ``theta`` (..., P); leading axes kept."""
+    has_trend, damped, seasonal = SMOOTHING_METHODS[method]
+    params = {name: theta[..., layout[name]][..., 0] for name in GRID_PARAMETERS[method]}
+    level = theta[..., layout["level0"]][..., 0]
+    slope = theta[..., layout["trend0"]][..., 0] if has_trend else np.zeros_like(level)
+    season = theta[..., layout["season0"]] if seasonal else None
+    return params, InitialStates(level, slope, season)
+
+
+def _project(theta, layout, method) -> np.ndarray:
+    """Clip ``theta`` into the admissible region and renormalise the season (level absorbs the shift).
+
+    Adding c to the additive seasonal terms and subtracting it from the
+    level (or scaling the multiplicative terms by 1/c and level and trend by
+    c) leaves every one-step forecast unchanged, so renormalising to sum 0 /
+    mean 1 changes no error and keeps the solution unique.
+    """
+    theta = theta.copy()
+    _, _, seasonal = SMOOTHING_METHODS[method]
+    a = np.clip(theta[..., layout["alpha"]], ALPHA_MIN, 1.0)
+    theta[..., layout["alpha"]] = a
+    if "beta" in layout:
+        theta[..., layout["beta"]] = np.clip(theta[..., layout["beta"]], 0.0, a)
+    if "gamma" in layout:
+        theta[..., layout["gamma"]] = np.clip(theta[..., layout["gamma"]], 0.0, 1.0 - a)
+    if "phi" in layout:
+        theta[..., layout["phi"]] = np.clip(theta[..., layout["phi"]], *PHI_BOUNDS)
+    if seasonal == "add":
+        shift = theta[..., layout["season0"]].mean(axis=-1, keepdims=True)
+        theta[..., layout["season0"]] -= shift
+        theta[..., layout["level0"]] += shift
+    elif seasonal == "mul":
+        s = np.maximum(theta[..., layout["season0"]], SEASON_MIN)
+        scale = s.mean(axis=-1, keepdims=True)
+        theta[..., layout["season0"]] = s / scale
+        theta[..., layout["level0"]] *= scale
+        theta[..., layout["trend0"]] *= scale
+    return theta
+
+
+def _held_at_bounds(theta: np.ndarray, jte: np.ndarray, layout: dict[str, slice]) -> np.ndarray:
+    """(n, P) True where a bounded parameter sits on a bound and the descent direction ``Jᵀe`` points out of it."""
+    held = np.zeros(theta.shape, dtype=bool)
+    a = theta[:, layout["alpha"].start]
+    bounds = {"alpha": (ALPHA_MIN, 1.0), "beta": (0.0, a), "gamma": (0.0, 1.0 - a), "phi": PHI_BOUNDS}
+    for name, (low, high) in bounds.items():
+        if name not in layout:
+            continue
+        k = layout[name].start
+        value, push = theta[:, k], jte[:, k]
+        tol = 1e-9
+        held[:, k] = ((value <= np.asarray(low) + tol) & (push < 0)) | ((value >= np.asarray(high) - tol) & (push > 0))
+    return held
+
+
+def _jacobian_pass(y, start, fit_end, theta, *, method, layout, season_length):
+    """SSE, JᵀJ and Jᵀe of the one-step errors at ``theta`` (one parameter set per series).
+
+    Forward-mode derivatives of the recursion of the module docstring: with
+    ``d·`` the gradient of a state with respect to the parameter vector,
+    ``d base = d l + φ·d b (+ b at φ)`` and, additive season,
+    ``d l' = α(d y − d s) + (1−α) d base (+ (y − s − base) at α)``,
+    ``d s' = γ(d y − d base) + (1−γ) d s (+ (y − base − s) at γ)``;
+    multiplicative, ``d l' = α(d y/s − y·d s/s²) + (1−α) d base (+ (y/s − base) at α)``,
+    ``d s' = γ(d y/base − y·d base/base²) + (1−γ) d s (+ (y/base − s) at γ)``;
+    trend ``d b' = β(d l' − d l) + (1−β)(φ d b + b at φ) (+ (l' − l − φb) at β)``.
+    ``d y`` is zero for a known month and the forecast's gradient for an
+    unknown one (it is updated with its forecast).  Only the season slot of
+    the current month changes, so a month costs O(P), not O(P²); the
+    products JᵀJ are formed once at the end.
+    """
+    has_trend, damped, seasonal = SMOOTHING_METHODS[method]
+    m = int(season_length)
+    n_series, n_months = y.shape
+    width = theta.shape[1]
+    params, states = _unpack(theta, layout, method)
+    a = params["alpha"][:, None]
+    bb = params["beta"][:, None] if has_trend else None
+    gg = params["gamma"][:, None] if seasonal else None
+    ph = params["phi"][:, None] if damped else (np.ones((n_series, 1)) if has_trend else np.zeros((n_series, 1)))
+    ia = layout["alpha"].start
+    ib = layout["beta"].start if has_trend else None
+    ig = layout["gamma"].start if seasonal else None
+    ip = layout["phi"].start if damped else None
+    level = states.level[:, None].copy()
+    slope = states.trend[:, None].copy() if has_trend else np.zeros((n_series, 1))
+    d_level = np.zeros((n_series, width))
+    d_level[:, layout["level0"].start] = 1.0
+    d_slope = np.zeros((n_series, width))
+    if has_trend:
+        d_slope[:, layout["trend0"].start] = 1.0
+    rows = np.arange(n_series)
+    if seasonal:
+        seasons = np.empty((m, n_series, 1))
+        d_seasons = np.zeros((m, n_series, width))
+        s0 = layout["season0"].start
+        for j in range(m):
+            slot = (start + j) % m
+            seasons[slot, rows, 0] = states.season[:, j]
+            d_seasons[slot, rows, s0 + j] = 1.0
+    sse = np.zeros(n_series)
+    observed = np.isfinite(y)
+    grads = np.zeros((n_series, n_months, width))
+    errs = np.zeros((n_series, n_months))
+    first = int(start.min()) if n_series else n_months
+    with np.errstate(all="ignore"):
+        for t in range(max(first, 0), n_months):
+            active = (t >= start)[:, None]
+            known = observed[:, t][:, None]
+            base = level + ph * slope
+            d_base = d_level + ph * d_slope
+            if damped:
+                d_base[:, ip] += slope[:, 0]
+            if seasonal:
+                s_old = seasons[t % m]
+                d_s = d_seasons[t % m]
+            if seasonal == "add":
+                pred = base + s_old
+                d_pred = d_base + d_s
+            elif seasonal == "mul":
+                pred = base * s_old
+                d_pred = d_base * s_old + base * d_s
+            else:
+                pred = base
+                d_pred = d_base
+            obs = np.where(known, y[:, t][:, None], pred)
+            d_obs = np.where(known, 0.0, d_pred)
+            scored = active & known & (t < fit_end)[:, None]
+            err = np.where(scored, obs - pred, 0.0)
+            sse += err[:, 0] ** 2
+            grads[:, t] = np.where(scored, d_pred, 0.0)
+            errs[:, t] = err[:, 0]
+            if seasonal == "add":
+                new_level = a * (obs - s_old) + (1 - a) * base
+                d_new_level = a * (d_obs - d_s) + (1 - a) * d_base
+                d_new_level[:, ia] += (obs - s_old - base)[:, 0]
+                new_season = gg * (obs - base) + (1 - gg) * s_old
+                d_new_season = gg * (d_obs - d_base) + (1 - gg) * d_s
+                d_new_season[:, ig] += (obs - base - s_old)[:, 0]
+            elif seasonal == "mul":
+                new_level = a * obs / s_old + (1 - a) * base
+                d_new_level = a * (d_obs / s_old - obs * d_s / s_old**2) + (1 - a) * d_base
+                d_new_level[:, ia] += (obs / s_old - base)[:, 0]
+                new_season = gg * obs / base + (1 - gg) * s_old
+                d_new_season = gg * (d_obs / base - obs * d_base / base**2) + (1 - gg) * d_s
+                d_new_season[:, ig] += (obs / base - s_old)[:, 0]
+            else:
+                new_level = a * obs + (1 - a) * base
+                d_new_level = a * d_obs + (1 - a) * d_base
+                d_new_level[:, ia] += (obs - base)[:, 0]
+            if has_trend:
+                d_damped = ph * d_slope
+                if damped:
+                    d_damped[:, ip] += slope[:, 0]
+                new_slope = bb * (new_level - level) + (1 - bb) * ph * slope
+                d_new_slope = bb * (d_new_level - d_level) + (1 - bb) * d_damped
+                d_new_slope[:, ib] += (new_level - level - ph * slope)[:, 0]
+                slope = np.where(active, new_slope, slope)
+                d_slope = np.where(active, d_new_slope, d_slope)
+            level = np.where(active, new_level, level)
+            d_level = np.where(active, d_new_level, d_level)
+            if seasonal:
+                seasons[t % m] = np.where(active, new_season, s_old)
+                d_seasons[t % m] = np.where(active, d_new_season, d_s)
+    # JᵀJ and Jᵀe per series over its own span only, series of one span
+    # length at a time: each product then has the same operands and shape
+    # whichever other series share the block (or how many months the matrix
+    # has before the span), so a series' numbers are the same bits in any
+    # partition of the series
+    jtj = np.zeros((n_series, width, width))
+    jte = np.zeros((n_series, width))
+    span_months = n_months - start
+    for length in np.unique(span_months):
+        if length <= 0:
+            continue
+        rows = np.flatnonzero(span_months == length)
+        g = np.ascontiguousarray(grads[rows, n_months - length:])  # (r, length, P)
+        e = np.ascontiguousarray(errs[rows, n_months - length:])[:, :, None]
+        gt = np.ascontiguousarray(np.swapaxes(g, 1, 2))
+        jtj[rows] = np.matmul(gt, g)
+        jte[rows] = np.matmul(gt, e)[:, :, 0]
+    return sse, jtj, jte
+
+
+def _sse_of(y, start, fit_end, theta, *, method, layout, season_length) -> np.ndarray:
+    """In-sample one-step SSE ``(n, K)`` of candidate parameter vectors ``theta`` ``(n, K, P)``."""
+    has_trend, _, seasonal = SMOOTHING_METHODS[method]
+    params, states = _unpack(theta, layout, method)
+    run = run_smoothing(
+        y, start, alpha=params["alpha"], beta=params.get("beta"), gamma=params.get("gamma"), phi=params.get("phi"),
+        trend=has_trend, seasonal=seasonal, season_length=season_length, level0=states.level,
+        trend0=states.trend if has_trend else None, season0=states.season, fit_ends=(fit_end,),
+    )
+    return run.sse[0]
+
+
+def refine_smoothing(
+    y: np.ndarray,
+    start: np.ndarray,
+    *,
+    method: str,
+    params: dict[str, np.ndarray],
+    states: InitialStates,
+    fit_end: np.ndarray,
+    season_length: int = 12,
+    iterations: int | None = None,
+) -> tuple[dict[str, np.ndarray], InitialStates, np.ndarray]:
+    """Polish grid parameters and heuristic initial states jointly by Levenberg–Marquardt on the one-step SSE.
+
+    The grid point and heuristic states are the start; each iteration solves
+    ``(JᵀJ + λ·diag JᵀJ) δ = Jᵀe`` (Levenberg 1944; Marquardt 1963) for the
+    smoothing parameters *and* the initial level, trend and seasonal terms
+    together (the estimated initial states of Hyndman et al. 2008, section
+    2.6.2, and of statsmodels' ``initialization_method="estimated"``), for
+    each of :data:`REFINE_DAMPING` λ at once, and keeps the best step only
+    if it lowers the SSE, so the result is never worse than the grid.  The
+    Jacobian comes from :func:`_jacobian_pass`.  Steps are clipped to the
+    admissible region (:func:`_project`).  All series at once; each
+    series' numbers depend on its own data only.
+    """
+    iterations = REFINE_ITERATIONS if iterations is None else int(iterations)
+    y = np.asarray(y, dtype=float)
+    start = np.asarray(start, dtype=int)
+    fit_end = np.asarray(fit_end, dtype=int)
+    n_series = y.shape[0]
+    layout = _parameter_layout(method, season_length)
+    theta = _project(_pack(method, params, states, layout, n_series), layout, method)
+    width = theta.shape[1]
+    eye = np.eye(width)
+    damping = np.array(REFINE_DAMPING)
+    scale = np.ones(n_series)  # per-series multiplier of the damping, adapted as steps fail or succeed
+    sse, jtj, jte = _jacobian_pass(y, start, fit_end, theta, method=method, layout=layout,
+                                   season_length=season_length)
+    for iteration in range(iterations):
+        usable = np.isfinite(sse) & np.isfinite(jtj).all(axis=(1, 2)) & np.isfinite(jte).all(axis=1)
+        diag = np.where(usable[:, None], np.diagonal(jtj, axis1=1, axis2=2), 1.0)
+        # a column without gradient (a state no scored month depends on) still gets a pivot
+        ridge = 1e-10 * np.maximum(diag.max(axis=1, initial=0.0), 1e-12)
+        lam = scale[:, None] * damping[None, :]  # (n, K)
+        system = (np.where(usable[:, None, None], jtj, eye)[:, None, :, :]
+                  + (lam[:, :, None, None] * (diag + ridge[:, None])[:, None, None, :]) * eye)
+        # a parameter on a bound whose descent direction points outwards is
+        # held there for this step (an active-set projection), so clipping
+        # does not bend the step of the others
+        held = _held_at_bounds(theta, jte, layout)
+        keep = ~held
+        rhs = np.where(usable[:, None] & keep, jte, 0.0)
+        system = np.where((keep[:, :, None] & keep[:, None, :])[:, None, :, :], system, 0.0) + (
+            held[:, None, :, None] * eye)
+        step = np.linalg.solve(system, np.broadcast_to(rhs[:, None, :, None], system.shape[:3] + (1,)))[..., 0]
+        candidates = _project(theta[:, None, :] + step, layout, method)  # (n, K, P)
+        trial = _sse_of(y, start, fit_end, candidates, method=method, layout=layout, season_length=season_length)
+        trial = np.where(np.isfinite(trial), trial, np.inf)
+        best = np.argmin(trial, axis=1)
+        best_sse = trial[np.arange(n_series), best]
+        better = usable & (best_sse < sse)
+        theta = np.where(better[:, None], candidates[np.arange(n_series), best], theta)
+        scale = np.clip(np.where(better, scale * damping[best] / damping[1], scale * 100.0), 1e-6, 1e6)
+        sse = np.where(better, best_sse, sse)
+        if iteration < iterations - 1:
+            new_sse, new_jtj, new_jte = _jacobian_pass(y, start, fit_end, theta, method=method, layout=layout,
+                                                       season_length=season_length)
+            jtj, jte = new_jtj, new_jte
+    refined, new_states = _unpack(theta, layout, method)
+    return refined, new_states, sse
+
+
 @dataclass(frozen=True)
 class SmoothingFit:
-    """Best grid parameters of one method for each series and each fitting window.
+    """Best parameters and initial states of one method for each series and each fitting window.
 
-    ``params[k][name]`` is an ``(n_series,)`` array for window ``fit_ends[k]``;
-    ``sse[k]`` the matching minimal in-sample one-step SSE (inf where the
-    recursion broke down for every grid point).
+    ``params[k][name]`` is an ``(n_series,)`` array for window ``fit_ends[k]``,
+    ``states[k]`` the matching initial states; ``sse[k]`` the minimal
+    in-sample one-step SSE (inf where the recursion broke down for every grid
+    point).
     """
 
     method: str
     params: tuple[dict[str, np.ndarray], ...]
     sse: tuple[np.ndarray, ...]
+    states: tuple[InitialStates, ...]
 
 
 def fit_smoothing(
@@ -339,16 +697,19 @@ def fit_smoothing(
     fit_ends: Sequence[np.ndarray],
     init_available: np.ndarray,
     season_length: int = 12,
+    refine: bool | Sequence[int] = True,
 ) -> SmoothingFit:
-    """Fit one smoothing method to every series by grid search on in-sample one-step SSE.
+    """Fit one smoothing method to every series: grid search on in-sample one-step SSE, then refinement.
 
     One recursion pass evaluates the whole grid (``PARAMETER_GRIDS[method]``)
     for all series, accumulating the SSE over each window ``start …
-    fit_ends[k]−1``; the arg-min per series and window is kept.  Initial
-    states come from :func:`estimate_initial_states` using only the first
-    ``init_available`` months of each span (pass the shortest window's length
-    so that a fit on a training window never sees later months and all
-    windows share one pass).
+    fit_ends[k]−1``; the arg-min per series and window is kept.  Heuristic
+    initial states come from :func:`estimate_initial_states` using only the
+    first ``init_available`` months of each span (pass the shortest window's
+    length so that a fit on a training window never sees later months and
+    all windows share one pass).  With ``refine`` (True, or the indexes of
+    the windows to refine) each window's grid point and states are then
+    polished by :func:`refine_smoothing` on that window alone.
     """
     if method not in SMOOTHING_METHODS:
         raise InvalidSpec(f"unknown smoothing method {method!r}; expected one of {sorted(SMOOTHING_METHODS)}")
@@ -360,6 +721,7 @@ def fit_smoothing(
     level0, trend0, season0 = estimate_initial_states(
         y, start, available=init_available, trend=has_trend, seasonal=seasonal, season_length=season_length
     )
+    heuristic = InitialStates(level0, trend0, season0)
     run = run_smoothing(
         y, start, alpha=values["alpha"], beta=values.get("beta"), gamma=values.get("gamma"),
         phi=values.get("phi"), trend=has_trend, seasonal=seasonal, season_length=season_length,
@@ -367,13 +729,38 @@ def fit_smoothing(
     )
     params_out: list[dict[str, np.ndarray]] = []
     sse_out: list[np.ndarray] = []
+    states_out: list[InitialStates] = []
     rows = np.arange(y.shape[0])
-    for window_sse in run.sse:
+    refined_windows = range(len(fit_ends)) if refine is True else (() if refine is False else tuple(refine))
+    for window, (end, window_sse) in enumerate(zip(fit_ends, run.sse)):
         sse = np.where(np.isfinite(window_sse), window_sse, np.inf)
         best = np.argmin(sse, axis=1)
-        params_out.append({name: grid[k][best] for k, name in enumerate(names)})
-        sse_out.append(sse[rows, best])
-    return SmoothingFit(method=method, params=tuple(params_out), sse=tuple(sse_out))
+        params = {name: grid[k][best] for k, name in enumerate(names)}
+        best_sse = sse[rows, best]
+        states = heuristic
+        if window in refined_windows:
+            ok = np.flatnonzero(np.isfinite(best_sse))
+            if len(ok):
+                polished, polished_states, polished_sse = refine_smoothing(
+                    y[ok], start[ok], method=method, params={k: v[ok] for k, v in params.items()},
+                    states=heuristic.take(ok), fit_end=np.asarray(end)[ok], season_length=season_length,
+                )
+                params = {k: v.copy() for k, v in params.items()}
+                for k in params:
+                    params[k][ok] = polished[k]
+                level, slope = heuristic.level.copy(), heuristic.trend.copy()
+                level[ok], slope[ok] = polished_states.level, polished_states.trend
+                season = None
+                if heuristic.season is not None:
+                    season = heuristic.season.copy()
+                    season[ok] = polished_states.season
+                states = InitialStates(level, slope, season)
+                best_sse = best_sse.copy()
+                best_sse[ok] = polished_sse
+        params_out.append(params)
+        sse_out.append(best_sse)
+        states_out.append(states)
+    return SmoothingFit(method=method, params=tuple(params_out), sse=tuple(sse_out), states=tuple(states_out))
 
 
 def forecast_smoothing(
@@ -386,18 +773,21 @@ def forecast_smoothing(
     origins: np.ndarray,
     horizon: int,
     season_length: int = 12,
+    states: InitialStates | None = None,
 ) -> np.ndarray:
     """Forecasts ``(n_series, len(origins), horizon)`` of a fitted method from each origin month.
 
-    Initial states use the first ``available`` months (as in the fit); the
-    recursion then runs with the fixed per-series parameters through every
-    month, so a forecast from origin ``o`` uses data up to ``o`` only
-    (rolling origin with fixed parameters, Tashman 2000).
+    Initial states are ``states`` (a fit's) or, when None, the heuristic ones
+    from the first ``available`` months; the recursion then runs with the
+    fixed per-series parameters through every month, so a forecast from
+    origin ``o`` uses data up to ``o`` only (rolling origin with fixed
+    parameters, Tashman 2000).
     """
     has_trend, _, seasonal = SMOOTHING_METHODS[method]
-    level0, trend0, season0 = estimate_initial_states(
-        y, start, available=available, trend=has_trend, seasonal=seasonal, season_length=season_length
-    )
+    if states is None:
+        states = InitialStates(*estimate_initial_states(
+            y, start, available=available, trend=has_trend, seasonal=seasonal, season_length=season_length
+        ))
 
     def column(name):
         return None if name not in params else np.asarray(params[name], dtype=float)[:, None]
@@ -405,6 +795,6 @@ def forecast_smoothing(
     run = run_smoothing(
         y, start, alpha=column("alpha"), beta=column("beta"), gamma=column("gamma"), phi=column("phi"),
         trend=has_trend, seasonal=seasonal, season_length=season_length,
-        level0=level0, trend0=trend0, season0=season0, origins=origins, horizon=horizon,
+        level0=states.level, trend0=states.trend, season0=states.season, origins=origins, horizon=horizon,
     )
     return run.forecasts[:, 0]

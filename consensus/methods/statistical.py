@@ -8,28 +8,47 @@ first, so a backcast made at a past cycle cannot peek), and forecasts
 How each series is forecast
 ---------------------------
 1. **Span.**  A series starts at its first month with demand (> 0); months
-   from then to ``C`` without a row are zero demand.  ``n_months`` is the
-   span length.
+   from then to ``C`` without a row are zero demand.  A NaN quantity is an
+   *unknown* month, not zero, and so is every month after the last month
+   with any row at all (a cycle opened before its month's orders are in):
+   fits update through it with the one-step forecast in its place and leave
+   it out of their squared errors, the holdout does not score it, and the
+   profile statistics skip it.  ``n_months`` is the span length.
 2. **Profile.**  Pattern (smooth / erratic / intermittent / lumpy), trend
    and seasonality from :mod:`consensus.methods.demand_pattern`.
 3. **New items.**  A span shorter than :data:`NEW_ITEM_MONTHS` (6) months is
    too short to fit or hold out anything: the forecast is the family's
    seasonal profile scaled to the item's own demand so far (see
    :func:`forecast_new_items`); a series with no demand at all gets zero.
-4. **Candidates.**  Smooth and erratic series: naive, moving average (3
-   months), SES, damped Holt, plus Holt when a trend was found, and, when
-   seasonality was found, Holt–Winters (damped or not; additive, and
-   multiplicative when the span is strictly positive).  Seasonal naive is a
-   candidate unless Holt–Winters can be fitted to a seasonal series (it is
-   Holt–Winters without smoothing, and choosing between them on a 12-month
-   holdout mostly adds selection noise).  Intermittent and lumpy series:
-   Croston, SBA, SES, moving average.  ``methods=`` restricts the set; when
-   the restriction leaves nothing that suits a series' profile, any
-   requested method its data allow is used, and failing that the new-item
-   fallback.
+4. **Candidates** (:data:`DEFAULT_METHODS`).  Seasonal series that
+   Holt–Winters can be fitted to: Holt–Winters only (damped or not;
+   additive, and multiplicative when the span is strictly positive), since
+   on a 12-month holdout seasonal naive (Holt–Winters without smoothing) and
+   the methods without a season mostly add selection noise.  Other smooth
+   and erratic series: naive, moving average (3 months), SES, damped Holt,
+   Holt when a trend was found, seasonal naive when seasonal.  Intermittent
+   and lumpy series: Croston, SBA, SES, moving average.  On request
+   (``methods=``): ``theta`` (:mod:`consensus.methods.theta`) and
+   ``combination``, the equal-weight mean of whichever of
+   :data:`COMBINED_METHODS` a series can be fitted with (at least two; the
+   series table's ``combined`` column names them); equal weights because
+   estimated ones rarely beat them (Clemen 1989; the M3 and M4 competitions,
+   Makridakis & Hibon 2000, Makridakis et al. 2020).  Neither is in the
+   default set: on the real-series bench they were picked by the holdout
+   about as often as they helped.  When the restriction leaves nothing that
+   suits a series' profile, any requested method its data allow is used,
+   and failing that the new-item fallback.
 5. **Fit.**  Smoothing parameters by grid search minimising in-sample
    one-step squared error, all series at once (see
    :func:`consensus.methods.smoothing.fit_smoothing`); Croston/SBA likewise.
+   Holt–Winters fits (:data:`REFINED_METHODS`) are then refined:
+   Levenberg–Marquardt on the smoothing parameters and the initial level,
+   trend and seasonal terms together
+   (:func:`consensus.methods.smoothing.refine_smoothing`), 3 iterations on
+   the training window and :data:`FULL_REFINE_ITERATIONS` more on the whole
+   span starting from there.  The grid alone trailed statsmodels'
+   optimiser, because heuristic seasonal states from the first two years
+   are poor and the grid then favours large γ.
 6. **Rolling-origin holdout.**  The last ``K = min(12, n_months // 2)``
    months are held out.  Parameters fitted on the months before them are
    kept fixed while the state rolls forward month by month; from every
@@ -40,7 +59,10 @@ How each series is forecast
    lags, is chosen; ties go to the simpler method (earlier in
    :data:`CANDIDATE_METHODS`).
 7. **Forecast.**  The chosen method is refitted on the whole span and
-   forecasts the horizon; negative values are set to zero.
+   forecasts the horizon; negative values are set to zero.  Series are
+   fitted in blocks, but every number of a series depends on its own
+   history only (no sum runs across series), so any partition of the
+   series gives the same bits.
 8. **Intervals.**  Empirical quantiles of the chosen method's holdout errors
    (actual − forecast) at each lag (Williams & Goodman 1971; Lee & Scholtes
    2014), added to the forecast and floored at zero: the 80 % interval is
@@ -62,9 +84,9 @@ import numpy as np
 import pandas as pd
 
 from consensus.errors import InvalidSpec
-from consensus.methods import intermittent, smoothing
+from consensus.methods import intermittent, smoothing, theta
 from consensus.methods.demand_pattern import classify_demand, detect_seasonality, detect_trend
-from consensus.periods import is_month, month_index, month_indexes, month_names
+from consensus.periods import is_month, month_index, month_names
 
 #: Methods a series can be fitted with, simplest first (ties go to the earlier one).
 CANDIDATE_METHODS: tuple[str, ...] = (
@@ -76,9 +98,18 @@ CANDIDATE_METHODS: tuple[str, ...] = (
     "sba",
     "holt_damped",
     "holt",
+    "theta",
     "holt_winters_add",
     "holt_winters_mul",
+    "combination",
 )
+#: Methods the "combination" candidate averages (those of them a series could be fitted with).
+COMBINED_METHODS: tuple[str, ...] = ("theta", "holt_winters_add", "holt_winters_mul")
+#: Candidates when ``methods`` is not given.  Theta and the combination are
+#: offered on request only: on the ten-series real bench and the synthetic one
+#: they were chosen on a 12-month holdout about as often as they helped
+#: (bench/bench_statistical_real.py --methods ...; see the module docstring).
+DEFAULT_METHODS: tuple[str, ...] = tuple(m for m in CANDIDATE_METHODS if m not in ("theta", "combination"))
 #: Methods the tool falls back to when no candidate can be fitted.
 FALLBACK_METHODS: tuple[str, ...] = ("new_item_profile", "zero_demand")
 #: The closed set of names that can appear in the ``method`` columns.
@@ -90,8 +121,15 @@ MOVING_AVERAGE_MONTHS = 3
 MIN_INTERVAL_ERRORS = 3
 #: Series fitted together; bounds memory (grid × series × season arrays).
 BLOCK_SERIES = 2000
+#: ... and series × months fitted together (the refinement keeps a gradient per month).
+BLOCK_CELLS = 2000 * 60
 
 _INTERMITTENT_PATTERNS = ("intermittent", "lumpy")
+#: Methods whose grid fit is polished by Levenberg–Marquardt (smoothing.refine_smoothing):
+#: Holt–Winters, whose seasonal initial states matter most (see the module docstring).
+REFINED_METHODS = ("holt_winters_add", "holt_winters_mul")
+#: Refinement iterations of the whole-span refit, warm-started from the training-window fit.
+FULL_REFINE_ITERATIONS = 2
 _PARAMETER_COLUMNS = ("alpha", "beta", "gamma", "phi")
 
 
@@ -135,22 +173,32 @@ def build_demand_matrix(history: pd.DataFrame, *, cycle: str) -> DemandMatrix:
     """Turn long actuals [item, location, period, quantity] into a :class:`DemandMatrix`.
 
     Rows after ``cycle`` are dropped first; duplicate rows of a month are
-    summed; months without a row are zero.  Raises ``InvalidSpec`` when a
-    column is missing, a period is not "YYYY-MM" or a quantity is not a
-    finite number.
+    summed; months without a row inside the history are zero demand.  An
+    unknown quantity (NaN, or an empty cell) is an unknown month, kept as NaN
+    (a month with any unknown row is unknown), and so is every month after
+    the last month that has any row at all, up to the cycle: a cycle opened
+    before its month's orders are in knows nothing of that month yet.
+    Raises ``InvalidSpec`` when a column is missing, a period is not
+    "YYYY-MM" or a quantity is text or infinite.
     """
     missing = {"item", "location", "period", "quantity"} - set(history.columns)
     if missing:
         raise InvalidSpec(f"history lacks column(s) {sorted(missing)}; expected [item, location, period, quantity]")
-    periods = history["period"].astype(str).str.strip()
-    bad = ~periods.str.fullmatch(r"\d{4}-(0[1-9]|1[0-2])")
+    # each distinct period string is checked once, not once per row
+    codes, uniques = pd.factorize(history["period"].astype(str), sort=False)
+    text = pd.Series(uniques, dtype=object).astype(str).str.strip()
+    bad = ~text.str.fullmatch(r"\d{4}-(0[1-9]|1[0-2])")
     if bad.any():
-        raise InvalidSpec(f"history period {periods[bad].iloc[0]!r} is not a month in YYYY-MM form")
-    quantity = pd.to_numeric(history["quantity"], errors="coerce").to_numpy(dtype=float)
-    if not np.isfinite(quantity).all():
-        raise InvalidSpec("history has a quantity that is not a finite number")
+        raise InvalidSpec(f"history period {text[bad].iloc[0]!r} is not a month in YYYY-MM form")
+    unique_month = (text.str.slice(0, 4).astype(int).to_numpy() * 12 + text.str.slice(5, 7).astype(int).to_numpy() - 1
+                    if len(text) else np.zeros(0, dtype=int))
+    month = unique_month[codes] if len(codes) else np.zeros(0, dtype=int)
+    raw = history["quantity"]
+    quantity = pd.to_numeric(raw, errors="coerce").to_numpy(dtype=float)
+    unknown = pd.isna(raw).to_numpy()
+    if (np.isnan(quantity) & ~unknown).any() or np.isinf(quantity).any():
+        raise InvalidSpec("history has a quantity that is not a number (an unknown month is left empty or NaN)")
     cycle_index = month_index(cycle)
-    month = month_indexes(periods)
     known = month <= cycle_index
     frame = pd.DataFrame(
         {
@@ -166,7 +214,11 @@ def build_demand_matrix(history: pd.DataFrame, *, cycle: str) -> DemandMatrix:
     first_month = int(frame["month"].min()) if len(frame) else cycle_index
     n_months = cycle_index - first_month + 1
     y = np.zeros((len(keys), n_months))
-    np.add.at(y, (code, frame["month"].to_numpy() - first_month), frame["quantity"].to_numpy())
+    column = frame["month"].to_numpy() - first_month
+    # a NaN row makes its month NaN: add.at propagates it
+    np.add.at(y, (code, column), frame["quantity"].to_numpy())
+    if len(frame):
+        y[:, int(column.max()) + 1:] = np.nan  # whole trailing months without any row: not in yet
     has_demand = y > 0
     start = np.where(has_demand.any(axis=1), np.argmax(has_demand, axis=1), n_months)
     return DemandMatrix(keys=keys, y=y, start=start.astype(int), first_month=first_month)
@@ -182,13 +234,23 @@ def forecast_benchmark(
       *Forecasting: Principles and Practice*, 3rd ed., section 5.2), naive
       when the span up to ``o`` is shorter than one season;
     * moving average: mean of the last 3 months of the span up to ``o``.
+
+    Unknown (NaN) months: naive uses the latest known month up to ``o``,
+    seasonal naive falls back to that naive value where its month is
+    unknown, and the moving average is over the known months of its window
+    (the naive value when none is known).  NaN only where nothing up to
+    ``o`` is known.
     """
     y = np.asarray(y, dtype=float)
     start = np.asarray(start, dtype=int)
     origins = np.asarray(origins, dtype=int)
-    n_series = y.shape[0]
+    n_series, n_months = y.shape
     rows = np.arange(n_series)[:, None, None]
-    last = y[:, origins][:, :, None]  # (n, K, 1)
+    # latest known month at or before each column (forward fill)
+    known = np.isfinite(y)
+    latest = np.maximum.accumulate(np.where(known, np.arange(n_months)[None, :], -1), axis=1)
+    filled = np.where(latest >= 0, y[np.arange(n_series)[:, None], np.maximum(latest, 0)], np.nan)
+    last = filled[:, origins][:, :, None]  # (n, K, 1)
     if method == "naive":
         return np.broadcast_to(last, (n_series, len(origins), horizon)).copy()
     if method == "seasonal_naive":
@@ -197,13 +259,15 @@ def forecast_benchmark(
         idx = origins[:, None] + back[None, :]  # (K, H)
         full_season = (origins[None, :] - start[:, None] + 1 >= season_length)[:, :, None]
         seasonal = y[rows, np.maximum(idx, 0)[None, :, :]]
-        return np.where(full_season, seasonal, last)
+        return np.where(full_season & np.isfinite(seasonal), seasonal, last)
     if method == "moving_average":
         offsets = np.arange(MOVING_AVERAGE_MONTHS)
         idx = origins[:, None] - offsets[None, :]  # (K, W)
-        inside = idx[None, :, :] >= start[:, None, None]
-        values = np.where(inside, y[rows, np.maximum(idx, 0)[None, :, :]], 0.0)
-        mean = values.sum(axis=2) / np.maximum(inside.sum(axis=2), 1)
+        values = y[rows, np.maximum(idx, 0)[None, :, :]]
+        inside = (idx[None, :, :] >= start[:, None, None]) & np.isfinite(values)
+        count = inside.sum(axis=2)
+        mean = np.where(inside, values, 0.0).sum(axis=2) / np.maximum(count, 1)
+        mean = np.where(count > 0, mean, last[:, :, 0])
         return np.broadcast_to(mean[:, :, None], (n_series, len(origins), horizon)).copy()
     raise InvalidSpec(f"unknown benchmark method {method!r}; expected naive, seasonal_naive or moving_average")
 
@@ -219,7 +283,9 @@ def seasonal_profiles(
     m), averaged per calendar slot and normalised to mean 1.  A group needs
     every slot covered by at least one ratio, i.e. two seasons of history;
     otherwise its profile is flat.  Slot of column t is
-    ``(first_month + t) mod m``.  ``group`` is −1 for series in no group.
+    ``(first_month + t) mod m``.  ``group`` is −1 for series in no group.  A
+    month unknown (NaN) for any member leaves the group's total unknown, and
+    no ratio is taken where the moving average would span it.
     """
     y = np.asarray(y, dtype=float)
     group = np.asarray(group, dtype=int)
@@ -272,7 +338,7 @@ def forecast_new_items(
     ``level = mean_t (y_t / index_{slot(t)})`` over the span, then
     ``ŷ_{T+h} = level · index_{slot(T+h)}``; ``profile`` is each series'
     ``(n_series, m)`` index (ones when its family has none).  Zero for a
-    series without demand.
+    series without demand.  Unknown (NaN) months are left out of the mean.
     """
     y = np.asarray(y, dtype=float)
     n_series, n_months = y.shape
@@ -280,6 +346,7 @@ def forecast_new_items(
     span = np.arange(n_months)[None, :] >= np.asarray(start)[:, None]
     slot = (first_month + np.arange(n_months)) % m
     index = profile[:, slot]
+    span &= np.isfinite(y)  # an unknown month says nothing about the level
     with np.errstate(all="ignore"):
         level = np.where(span, y / index, 0.0).sum(axis=1) / span.sum(axis=1)
     level = np.nan_to_num(level)
@@ -361,7 +428,7 @@ def _validate(cycle, horizon, methods, season_length, levels) -> tuple[str, ...]
     if len(set(round(100 * float(v), 6) for v in levels)) != len(levels):
         raise InvalidSpec(f"interval levels must be distinct, got {list(levels)!r}")
     if methods is None:
-        return CANDIDATE_METHODS
+        return DEFAULT_METHODS
     if isinstance(methods, str):
         raise InvalidSpec("methods must be a sequence of method names, not one string")
     chosen = tuple(methods)
@@ -383,19 +450,28 @@ class _BlockResult:
     point: np.ndarray  # (n, horizon)
     errors: np.ndarray  # (n, n_origins, n_lags) holdout errors of the chosen method
     wape: np.ndarray
+    members: np.ndarray  # (n, n_candidates) methods the chosen combination averaged
+
+
+_BENCHMARKS = ("naive", "seasonal_naive", "moving_average")
 
 
 def _select_block(
     y: np.ndarray,
     start: np.ndarray,
     allowed: np.ndarray,
+    seasonal: np.ndarray,
     *,
+    choosable: np.ndarray,
     horizon: int,
     season_length: int,
 ) -> _BlockResult:
     """Fit, hold out, choose and forecast every allowed candidate for a block of series.
 
-    ``allowed`` is ``(n, n_candidates)``: which methods each series may use.
+    ``allowed`` is ``(n, n_candidates)``: which methods each series is fitted
+    with; ``choosable`` ``(n_candidates,)`` which may be chosen on their own
+    (a combination member that was not requested alone is only averaged);
+    ``seasonal`` which series Theta deseasonalises.
     """
     n_series, n_months = y.shape
     last = n_months - 1
@@ -408,20 +484,31 @@ def _select_block(
     target = origins[:, None] + np.arange(1, n_lags + 1)[None, :]  # (K, L)
     valid = (origins[None, :, None] >= (train_end - 1)[:, None, None]) & (target[None, :, :] <= last)
     actual = y[:, np.minimum(target, last)]  # (n, K, L)
+    valid &= np.isfinite(actual)  # an unknown month is not scored
     denominator = np.where(valid, np.abs(actual), 0.0).sum(axis=(1, 2))
+    n_candidates = len(CANDIDATE_METHODS)
+    combination = CANDIDATE_METHODS.index("combination")
 
-    scores = np.full((n_series, len(CANDIDATE_METHODS)), np.inf)
-    holdout_errors: dict[int, np.ndarray] = {}
-    full_params: dict[int, dict[str, np.ndarray]] = {}
-    members: dict[int, np.ndarray] = {}
+    scores = np.full((n_series, n_candidates), np.inf)
+    holdout_forecasts = np.full((n_series, n_candidates, len(origins), n_lags), np.nan)
+    croston_fits: dict[int, intermittent.CrostonFit] = {}
+    smoothing_fits: dict[int, smoothing.SmoothingFit] = {}
+    member_rows: dict[int, np.ndarray] = {}
+
+    def score(k: int, rows: np.ndarray, fc: np.ndarray) -> None:
+        fc = np.maximum(fc, 0.0)
+        err = np.where(valid[rows], actual[rows] - fc, np.nan)
+        broken = (valid[rows] & ~np.isfinite(err)).any(axis=(1, 2))
+        scores[rows, k] = np.where(broken, np.inf, np.nansum(np.abs(err), axis=(1, 2)))
+        holdout_forecasts[rows, k] = fc
+
     for k, method in enumerate(CANDIDATE_METHODS):
         rows = np.flatnonzero(allowed[:, k])
-        if not len(rows):
+        if not len(rows) or k == combination:
             continue
         ys, ss = y[rows], start[rows]
-        if method in ("naive", "seasonal_naive", "moving_average"):
+        if method in _BENCHMARKS:
             fc = forecast_benchmark(ys, ss, method=method, origins=origins, horizon=n_lags, season_length=season_length)
-            full_params[k] = {}
         elif method in intermittent.INTERMITTENT_METHODS:
             fit = intermittent.fit_croston(
                 ys, ss, method=method, fit_ends=(train_end[rows], np.full(len(rows), n_months)),
@@ -431,64 +518,111 @@ def _select_block(
                 ys, ss, method=method, alpha=fit.alpha[0], init_available=train_months[rows],
                 origins=origins, horizon=n_lags,
             )
-            full_params[k] = {"alpha": fit.alpha[1]}
+            croston_fits[k] = fit
             fc = np.where(np.isfinite(fit.sse[0])[:, None, None], fc, np.nan)
+        elif method == "theta":
+            fit = theta.fit_theta(ys, ss, end=train_end[rows], seasonal=seasonal[rows], season_length=season_length)
+            fc = theta.forecast_theta(ys, ss, fit, origins=origins, horizon=n_lags, season_length=season_length)
+            fc = np.where(np.isfinite(fit.sse)[:, None, None], fc, np.nan)
         else:
             fit = smoothing.fit_smoothing(
                 ys, ss, method=method, fit_ends=(train_end[rows], np.full(len(rows), n_months)),
                 init_available=train_months[rows], season_length=season_length,
+                refine=(0,) if method in REFINED_METHODS else False,
             )
+            smoothing_fits[k] = fit
             fc = smoothing.forecast_smoothing(
                 ys, ss, method=method, params=fit.params[0], available=train_months[rows],
-                origins=origins, horizon=n_lags, season_length=season_length,
+                origins=origins, horizon=n_lags, season_length=season_length, states=fit.states[0],
             )
-            full_params[k] = fit.params[1]
             fc = np.where(np.isfinite(fit.sse[0])[:, None, None], fc, np.nan)
-        err = np.where(valid[rows], actual[rows] - np.maximum(fc, 0.0), np.nan)
-        broken = (valid[rows] & ~np.isfinite(err)).any(axis=(1, 2))
-        scores[rows, k] = np.where(broken, np.inf, np.nansum(np.abs(err), axis=(1, 2)))
-        holdout_errors[k] = err
-        members[k] = rows
+        score(k, rows, fc)
+        member_rows[k] = rows
 
-    chosen = np.argmin(scores, axis=1)
-    fitted_any = np.isfinite(scores[np.arange(n_series), chosen])
+    # the combination: the mean of its members' forecasts (floored at zero),
+    # for series where at least two members gave a usable holdout forecast
+    members = np.zeros((n_series, n_candidates), dtype=bool)
+    in_combination = np.array([m in COMBINED_METHODS for m in CANDIDATE_METHODS])
+    members[:, in_combination] = np.isfinite(scores[:, in_combination])
+    can_combine = allowed[:, combination] & (members.sum(axis=1) >= 2)
+    if can_combine.any():
+        rows = np.flatnonzero(can_combine)
+        picked = members[rows][:, :, None, None]
+        mean = np.where(picked, holdout_forecasts[rows], 0.0).sum(axis=1) / members[rows].sum(axis=1)[:, None, None]
+        score(combination, rows, mean)
+    members &= can_combine[:, None]
+
+    chosen = np.argmin(np.where(choosable[None, :], scores, np.inf), axis=1)
+    fitted_any = np.isfinite(scores[np.arange(n_series), chosen]) & choosable[chosen]
     chosen = np.where(fitted_any, chosen, -1)
     point = np.full((n_series, horizon), np.nan)
-    errors = np.full((n_series, len(origins), n_lags), np.nan)
     params = {name: np.full(n_series, np.nan) for name in _PARAMETER_COLUMNS}
     final_origin = np.array([last])
-    for k, rows in members.items():
-        pick = chosen[rows] == k
-        if not pick.any():
-            continue
-        sel = rows[pick]
-        errors[sel] = holdout_errors[k][pick]
+
+    def final(k: int, sel: np.ndarray) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+        """Whole-span forecasts (len(sel), horizon) of method k, and the parameters it used."""
         method = CANDIDATE_METHODS[k]
-        chosen_params = {name: values[pick] for name, values in full_params[k].items()}
-        for name, values in chosen_params.items():
-            params[name][sel] = values
-        if method in ("naive", "seasonal_naive", "moving_average"):
-            fc = forecast_benchmark(y[sel], start[sel], method=method, origins=final_origin, horizon=horizon,
+        ys, ss = y[sel], start[sel]
+        if method in _BENCHMARKS:
+            fc = forecast_benchmark(ys, ss, method=method, origins=final_origin, horizon=horizon,
                                     season_length=season_length)
-        elif method in intermittent.INTERMITTENT_METHODS:
-            fc = intermittent.forecast_croston(
-                y[sel], start[sel], method=method, alpha=chosen_params["alpha"], init_available=train_months[sel],
-                origins=final_origin, horizon=horizon,
+            return fc[:, 0], {}
+        position = np.searchsorted(member_rows[k], sel)
+        if method in intermittent.INTERMITTENT_METHODS:
+            alpha = croston_fits[k].alpha[1][position]
+            fc = intermittent.forecast_croston(ys, ss, method=method, alpha=alpha, init_available=train_months[sel],
+                                               origins=final_origin, horizon=horizon)
+            return fc[:, 0], {"alpha": alpha}
+        if method == "theta":
+            fit = theta.fit_theta(ys, ss, end=np.full(len(sel), n_months), seasonal=seasonal[sel],
+                                  season_length=season_length)
+            fc = theta.forecast_theta(ys, ss, fit, origins=final_origin, horizon=horizon, season_length=season_length)
+            return np.where(np.isfinite(fit.sse)[:, None], fc[:, 0], np.nan), {"alpha": fit.alpha}
+        fit = smoothing_fits[k]
+        if method in REFINED_METHODS:
+            # the whole-span refit starts from the refined training-window fit
+            # (same span start, so its states are valid initial states)
+            chosen_params, states, _ = smoothing.refine_smoothing(
+                ys, ss, method=method, params={name: values[position] for name, values in fit.params[0].items()},
+                states=fit.states[0].take(position), fit_end=np.full(len(sel), n_months),
+                season_length=season_length, iterations=FULL_REFINE_ITERATIONS,
             )
         else:
-            fc = smoothing.forecast_smoothing(
-                y[sel], start[sel], method=method, params=chosen_params, available=train_months[sel],
-                origins=final_origin, horizon=horizon, season_length=season_length,
-            )
-        point[sel] = fc[:, 0, :]
+            chosen_params = {name: values[position] for name, values in fit.params[1].items()}
+            states = fit.states[1].take(position)
+        fc = smoothing.forecast_smoothing(
+            ys, ss, method=method, params=chosen_params, available=train_months[sel], origins=final_origin,
+            horizon=horizon, season_length=season_length, states=states,
+        )
+        return fc[:, 0], chosen_params
+
+    for k in range(n_candidates):
+        sel = np.flatnonzero(chosen == k)
+        if not len(sel):
+            continue
+        if k == combination:
+            total = np.zeros((len(sel), horizon))
+            for j in np.flatnonzero(members[sel].any(axis=0)):
+                part = sel[members[sel, j]]
+                fc, _ = final(j, part)
+                total[np.searchsorted(sel, part)] += np.maximum(fc, 0.0)
+            point[sel] = total / members[sel].sum(axis=1)[:, None]
+            continue
+        fc, used = final(k, sel)
+        point[sel] = fc
+        for name, values in used.items():
+            params[name][sel] = values
     params["phi"][chosen == CANDIDATE_METHODS.index("holt")] = 1.0  # undamped Holt: φ = 1
     # a whole-span refit whose recursion broke down leaves the series to the fallback
     usable = fitted_any & np.isfinite(point).all(axis=1)
     chosen = np.where(usable, chosen, -1)
+    rows = np.arange(n_series)
+    errors = np.where(valid, actual - holdout_forecasts[rows, np.maximum(chosen, 0)], np.nan)
     with np.errstate(all="ignore"):
-        best = scores[np.arange(n_series), np.maximum(chosen, 0)]
+        best = scores[rows, np.maximum(chosen, 0)]
         wape = np.where(usable & (denominator > 0), best / denominator, np.nan)
-    return _BlockResult(method=chosen, params=params, point=point, errors=errors, wape=wape)
+    members &= (chosen == combination)[:, None]
+    return _BlockResult(method=chosen, params=params, point=point, errors=errors, wape=wape, members=members)
 
 
 def _allowed_candidates(
@@ -500,7 +634,7 @@ def _allowed_candidates(
     span_months = n_months - start
     train_months = span_months - np.minimum(HOLDOUT_MONTHS, span_months // 2)
     span = np.arange(n_months)[None, :] >= start[:, None]
-    positive = np.where(span, y > 0, True).all(axis=1)
+    positive = np.where(span & np.isfinite(y), y > 0, True).all(axis=1)
     train_end = start + train_months
     demand_in_train = (span & (np.arange(n_months)[None, :] < train_end[:, None]) & (y > 0)).sum(axis=1)
     sparse = np.isin(pattern, _INTERMITTENT_PATTERNS)
@@ -516,26 +650,41 @@ def _allowed_candidates(
         "holt_winters_add": train_months >= smoothing.minimum_months("holt_winters_add", season_length=season_length),
         "holt_winters_mul": (train_months >= smoothing.minimum_months("holt_winters_mul", season_length=season_length))
         & positive,
+        "theta": train_months >= np.where(has_seasonality, 2 * season_length, 4),
+        "combination": np.ones(n_series, bool),  # usable where two members are (see _select_block)
     }
     # where Holt–Winters can be fitted to a seasonal series, seasonal naive
-    # (HW without smoothing) only adds selection noise on a 12-month holdout
+    # (HW without smoothing) and the methods without a season only add
+    # selection noise on a 12-month holdout (and time)
     seasonal_fit = has_seasonality & fittable["holt_winters_add"] & ("holt_winters_add" in requested)
+    nonseasonal = ~seasonal_fit
     suited = {
-        "naive": ~sparse,
+        "naive": ~sparse & nonseasonal,
         "seasonal_naive": ~sparse & ~seasonal_fit,
-        "moving_average": np.ones(n_series, bool),
-        "ses": np.ones(n_series, bool),
+        "moving_average": nonseasonal,
+        "ses": nonseasonal,
         "croston": sparse,
         "sba": sparse,
-        "holt_damped": ~sparse,
-        "holt": ~sparse & has_trend,
+        "holt_damped": ~sparse & nonseasonal,
+        "holt": ~sparse & has_trend & nonseasonal,
         "holt_winters_add": ~sparse & has_seasonality,
         "holt_winters_mul": ~sparse & has_seasonality,
+        "theta": ~sparse,
+        "combination": ~sparse,
     }
     wanted = np.array([m in requested for m in CANDIDATE_METHODS])
     can = np.stack([fittable[m] for m in CANDIDATE_METHODS], axis=1) & wanted[None, :]
     preferred = can & np.stack([suited[m] for m in CANDIDATE_METHODS], axis=1)
     return np.where(preferred.any(axis=1)[:, None], preferred, can)
+
+
+def _blocks(rows: np.ndarray, span_months: np.ndarray):
+    """Consecutive slices of ``rows`` (longest span first) of at most BLOCK_SERIES series and BLOCK_CELLS series × months."""
+    lo = 0
+    while lo < len(rows):
+        size = max(1, min(BLOCK_SERIES, BLOCK_CELLS // max(int(span_months[rows[lo]]), 1)))
+        yield rows[lo:lo + size]
+        lo += size
 
 
 def forecast_statistical(
@@ -573,16 +722,28 @@ def forecast_statistical(
     point = np.zeros((n_series, horizon))
     wape = np.full(n_series, np.nan)
     fallback = np.full(n_series, "", dtype=object)
+    combined = np.full(n_series, "", dtype=object)
     bounds = {level: (np.full((n_series, horizon), np.nan), np.full((n_series, horizon), np.nan)) for level in levels}
 
     allowed = _allowed_candidates(
         requested=requested, pattern=pattern, has_trend=has_trend, has_seasonality=has_seasonality,
         y=y, start=start, season_length=m,
     )
+    # a requested combination needs its members fitted, asked for or not
+    with_members = requested + (COMBINED_METHODS if "combination" in requested else ())
+    fitted = _allowed_candidates(
+        requested=tuple(m for m in CANDIDATE_METHODS if m in with_members), pattern=pattern, has_trend=has_trend,
+        has_seasonality=has_seasonality, y=y, start=start, season_length=m,
+    ) & (allowed.any(axis=1)[:, None])
+    fitted |= allowed
+    choosable = np.array([name in requested for name in CANDIDATE_METHODS])
     fit_rows = np.flatnonzero((span_months >= NEW_ITEM_MONTHS) & allowed.any(axis=1))
-    for lo in range(0, len(fit_rows), BLOCK_SERIES):
-        rows = fit_rows[lo:lo + BLOCK_SERIES]
-        block = _select_block(y[rows], start[rows], allowed[rows], horizon=horizon, season_length=m)
+    # longest spans first, so a block's recursions run over about its own
+    # months only (a series' numbers do not depend on its block)
+    fit_rows = fit_rows[np.argsort(start[fit_rows], kind="stable")]
+    for rows in _blocks(fit_rows, span_months):
+        block = _select_block(y[rows], start[rows], fitted[rows], has_seasonality[rows], choosable=choosable,
+                              horizon=horizon, season_length=m)
         ok = block.method >= 0
         done = rows[ok]
         method_name[done] = np.array(CANDIDATE_METHODS, dtype=object)[block.method[ok]]
@@ -590,6 +751,8 @@ def forecast_statistical(
             params[name][done] = block.params[name][ok]
         point[done] = np.maximum(block.point[ok], 0.0)
         wape[done] = block.wape[ok]
+        names = np.array(CANDIDATE_METHODS, dtype=object)
+        combined[done] = ["+".join(names[used]) for used in block.members[ok]]
         for level, (low, high) in empirical_intervals(point[done], block.errors[ok], levels=levels).items():
             bounds[level][0][done] = low
             bounds[level][1][done] = high
@@ -659,7 +822,7 @@ def forecast_statistical(
     seasonal_naive = pd.DataFrame(
         {
             "item": item_rep, "location": location_rep, "period": period_rep, "lag": lag_rep,
-            "quantity": np.maximum(reference, 0.0).ravel(),
+            "quantity": np.maximum(np.nan_to_num(reference), 0.0).ravel(),
         }
     )
     series = pd.DataFrame(
@@ -674,6 +837,7 @@ def forecast_statistical(
             "holdout_wape": wape,
             "n_months": span_months.astype(int),
             "fallback": fallback,
+            "combined": combined,
         }
     )
     return StatisticalResult(forecast=forecast, intervals=intervals, series=series, seasonal_naive=seasonal_naive)
