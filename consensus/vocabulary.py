@@ -195,6 +195,7 @@ SUBMISSION_STATES: tuple[Term, ...] = (
     Term("covered", "Covered by a file for all scopes", "no file of its own, but one for the whole source"),
     Term("superseded", "Replaced by a later file", "a file a later one for the same scope replaced"),
     Term("rejected", "Rejected", "a file that failed the checks; nothing of it was used"),
+    Term("duplicate", "Already received", "the same file (same SHA-256) arrived before; nothing changed"),
 )
 #: Column heading over a submission state, on every page and in the terminal.
 STATE_HEADING = "State"
@@ -226,10 +227,10 @@ class ExceptionKind:
 
 EXCEPTION_KINDS: tuple[ExceptionKind, ...] = (
     ExceptionKind("disagreement", "Sources disagree", ("item", "items"),
-                  "highest minus lowest source above {disagreement_pct} of the consensus in a month{min_units}",
+                  "highest minus lowest source {disagreement}{min_units}",
                   "Which source should the plan follow for {scope}?"),
     ExceptionKind("tracking", "Persistent bias", ("source", "sources"),
-                  "|tracking signal| above {ts_limit} at some level and lag",
+                  "|tracking signal| above {ts_limit} for a source the consensus weighs, at some level and lag",
                   "Correct {scope} for its persistent bias, or give it less weight?"),
     ExceptionKind("missing", "Missing submissions", ("submission", "submissions"),
                   "an expected submission not received{due}",
@@ -258,13 +259,13 @@ def describe_exception_rule(
 ) -> str:
     """The rule of an exception kind with its thresholds as numbers, e.g. "|tracking signal| above 4"."""
     if disagreement_threshold is None:
-        disagreement_pct = "the run's threshold (not recorded)"
+        disagreement = "above the run's threshold, which the run did not record"
     else:
-        disagreement_pct = format_percent_plain(100 * disagreement_threshold)
+        disagreement = f"above {format_percent_plain(100 * disagreement_threshold)} of the consensus in a month"
     min_units = ("" if not disagreement_min_units
                  else f", and at least {disagreement_min_units:,.0f} {quantity_unit}")
     return exception_kind(key).rule.format(
-        disagreement_pct=disagreement_pct, min_units=min_units, ts_limit=format_number(ts_limit),
+        disagreement=disagreement, min_units=min_units, ts_limit=format_number(ts_limit),
         change_pct=format_percent_plain(change_threshold_pct), band_pct=format_percent_plain(100 * band_ratio_threshold),
         band_months=int(band_months), due=f" by its due date, {due_date}" if due_date else "",
     )
@@ -375,8 +376,11 @@ MEASURES: tuple[Term, ...] = (
     Term("mape", "MAPE", "average of absolute errors as % of each actual; months with zero actual left out",
          "common practice"),
     Term("mad", "MAD", "mean absolute error", "common practice"),
+    Term("mse", "MSE", "mean squared error", "common practice"),
+    Term("rmse", "RMSE", "square root of the mean squared error, in the quantity unit", "common practice"),
     Term("bias", "Bias", "sum of errors (actual minus forecast) as % of actuals: negative means the source "
          "forecast too high, positive too low", "common practice"),
+    Term("bias_pct", "Bias %", "bias as a share of actual demand", "common practice"),
     Term("tracking_signal", "Tracking signal", "cumulative error divided by the mean absolute error",
          "Brown 1959"),
     Term("mase", "MASE", "mean absolute error scaled by that of same-month-last-year", "Hyndman & Koehler 2006"),

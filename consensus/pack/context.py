@@ -616,8 +616,11 @@ def _exceptions(inputs, cons, sources, items, changes_flagged, *, exception_rows
         }))
 
     # Biased sources: tracking signal beyond the limit.
+    # Only sources the consensus weighs can be corrected or down-weighted; the consensus's own lean and the
+    # yardsticks' show on the scorecard.
     score = _as_numeric(inputs.scorecard, ["tracking_signal", "bias_pct", "wape"])
-    biased = score[score["tracking_signal"].abs() > ts_limit].copy()
+    weighed = score["source"].astype(str).map(lambda k: vocabulary.source(k).combined)
+    biased = score[(score["tracking_signal"].abs() > ts_limit) & weighed].copy()
     plan_value = (
         sources.assign(value=sources["quantity"] * sources["unit_price"]).groupby("source")["value"].sum()
         if not sources.empty else pd.Series(dtype=float)
