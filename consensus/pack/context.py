@@ -810,10 +810,9 @@ def _family_pages(
         .to_numpy(dtype=float).reshape(len(family_order), len(hist_months))
     )
     col = {name: i for i, name in enumerate(plan_cols)}
-    weight_lookup = {
-        key: [None if pd.isna(v) else float(v) for v in weights_wide.loc[key, bucket_labels]]
-        for key in weights_wide.index
-    }
+    weight_values = weights_wide.reindex(columns=bucket_labels).astype(float)
+    weight_lookup = dict(zip(weights_wide.index, weight_values.where(weight_values.notna(), None)
+                             .astype(object).to_numpy().tolist()))
     lag_lookup = _weights_per_lag(per_lag, bucket_labels)
     month_grid = _month_grid(plan_cube, plan_cols, plan_months, source_names)
     lines_per_family = len(plan_months)
@@ -898,27 +897,33 @@ def _weights_per_lag(per_lag: pd.DataFrame, bucket_labels: list[str]) -> dict[st
 
     Cycles are the fewest of any source at that lag, since ψ = n/(n + κ)
     grows with them; rows whose values are all unknown are left out, and so
-    is the history row when every lag used its own.
+    is the history row when every lag used its own.  Each row is formatted
+    for all segments at once.
     """
     if per_lag.empty:
         return {}
-    table = per_lag.unstack("lag_bucket").reindex(columns=bucket_labels, level=1)
+    table = per_lag.unstack("lag_bucket")
+    cycles = table["n_cycles"].reindex(columns=bucket_labels)
+    psi = table["psi"].reindex(columns=bucket_labels)
+    basis = table["basis"].reindex(columns=bucket_labels)
+    basis_names = {b: vocabulary.label(vocabulary.WEIGHT_BASES, b) for b in pd.unique(basis.to_numpy().ravel())
+                   if isinstance(b, str)}
+    texts = {
+        "Past cycles measured": cycles.apply(lambda c: c.map(lambda v: "–" if pd.isna(v) else f"{int(v)}")),
+        "Weight on measured accuracy (ψ)": psi.apply(lambda c: c.map(format_share)),
+        # "History used" only matters where some lag did not have its own: say so only then.
+        "History used": basis.apply(lambda c: c.map(lambda v: basis_names.get(v, "–"))),
+    }
+    shown = {
+        "Past cycles measured": cycles.notna().any(axis=1),
+        "Weight on measured accuracy (ψ)": psi.notna().any(axis=1),
+        "History used": (basis.notna() & basis.ne("segment")).any(axis=1),
+    }
+    cells = {name: dict(zip(frame.index, frame.to_numpy().tolist())) for name, frame in texts.items()}
     out = {}
     for segment in table.index:
-        cycles = [table.loc[segment, ("n_cycles", b)] for b in bucket_labels]
-        psi = [table.loc[segment, ("psi", b)] for b in bucket_labels]
-        basis = [table.loc[segment, ("basis", b)] for b in bucket_labels]
-        rows = [
-            {"label": "Past cycles measured", "cells": ["–" if pd.isna(v) else f"{int(v)}" for v in cycles]},
-            {"label": "Weight on measured accuracy (ψ)", "cells": [format_share(v) for v in psi]},
-            {"label": "History used", "cells": ["–" if pd.isna(v) else vocabulary.label(vocabulary.WEIGHT_BASES, v)
-                                                for v in basis]},
-        ]
-        # "History used" only matters where some lag did not have its own: say so only then.
-        own = vocabulary.label(vocabulary.WEIGHT_BASES, "segment")
-        if all(c in (own, "–") for c in rows[2]["cells"]):
-            rows = rows[:2]
-        out[str(segment)] = [r for r in rows if any(c != "–" for c in r["cells"])]
+        out[str(segment)] = [{"label": name, "cells": cells[name][segment]} for name in texts
+                             if shown[name][segment]]
     return out
 
 
