@@ -16,6 +16,7 @@ sources are proper names and keep their capital letter mid-sentence
 from __future__ import annotations
 
 import math
+import zlib
 from dataclasses import dataclass
 
 # --------------------------------------------------------------------------- sources
@@ -89,8 +90,17 @@ def source(key: str) -> SourceKind:
     for found in SOURCES:
         if found.key == key:
             return found
+    # A stable pick per key, so two unregistered sources still draw apart.
+    colour, dashes = _UNREGISTERED_STYLES[zlib.crc32(key.encode("utf-8")) % len(_UNREGISTERED_STYLES)]
     return SourceKind(key, _humanise(key).capitalize(), key[:5], 90, submitted=True, combined=True,
-                      answers_for="all", colour="#7a6a00", dashes=(0, (4, 1, 1, 1)), description=_humanise(key))
+                      answers_for="all", colour=colour, dashes=dashes, description=_humanise(key))
+
+
+#: Lines for sources not (yet) in the registry: hues and dashes none of the registered sources use.
+_UNREGISTERED_STYLES: tuple[tuple[str, tuple], ...] = (
+    ("#7a6a00", (0, (4, 1, 1, 1))), ("#4d7ab3", (0, (2, 1, 2, 3))), ("#a05a2c", (0, (6, 1, 1, 1, 1, 1))),
+    ("#3f7f3f", (0, (1, 1, 4, 1))),
+)
 
 
 def source_label(key: str) -> str:

@@ -470,3 +470,12 @@ def test_a_new_source_kind_is_one_registry_entry(monkeypatch):
     # Sorted by the registry: after what people send (marketing's order is 30, finance's 35), before consensus.
     assert steps.index("Finance plan") == steps.index("Marketing") + 1
     assert steps[-1] == "Consensus"
+
+
+def test_a_source_missing_from_the_registry_still_prints_in_words():
+    base = example_pack_inputs()
+    extra = base.sources[base.sources["source"] == "sales"].assign(source="field_sales")
+    html = build_html(dataclasses.replace(base, sources=pd.concat([base.sources, extra], ignore_index=True)))
+    reader = read_page(html)
+    assert "Field sales" in [e.strip() for e in reader.legend]
+    assert "field_sales" not in " ".join(reader.text)
