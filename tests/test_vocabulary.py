@@ -172,7 +172,7 @@ def store_shaped_inputs():
     submissions["scope"] = ["all", "all", "region North", "region South"]
     submissions.loc[len(submissions)] = {
         "source": "statistical", "scope": "all", "filename": "statistical-2027-03.csv (computed)",
-        "sha256": "ab" * 32, "submitted_by": "consensus", "submitted_at": "2027-04-05 07:00",
+        "sha256": "ab" * 32, "submitted_by": "consensus", "submitted_at": pd.Timestamp("2027-04-05 07:00"),
         "status": "accepted", "rows": 9999}
     weights = base.weights.copy()
     weights["basis"] = np.where(weights["n_cycles"] < 10, "all", np.where(weights["n_cycles"] < 7, "equal",
