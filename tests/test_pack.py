@@ -12,7 +12,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from consensus.errors import InvalidSpec
-from consensus.pack.charts import SOURCE_STYLES, legend_entries
+from consensus import vocabulary
+from consensus.pack.charts import legend_entries
 from consensus.pack.context import (
     MONO_ADVANCE_EM,
     build_pack_context,
@@ -79,7 +80,7 @@ def test_pdf_shows_the_twelve_month_total_of_the_inputs(draft_inputs, draft_pack
     months = horizon_months(draft_inputs.cycle, 12)
     frame = draft_inputs.consensus
     expected = format_quantity(frame.loc[frame["period"].isin(months), "consensus"].sum())
-    summary_pages = [t for t in pdf_pages_text(draft_pack.pdf_path) if "Decisions for this meeting" in t]
+    summary_pages = [t for t in pdf_pages_text(draft_pack.pdf_path) if "Questions for this meeting" in t]
     assert summary_pages, "no executive summary page in the PDF"
     assert expected in summary_pages[0]
     assert draft_pack.html.count(expected) >= 2  # headline and total row
@@ -119,7 +120,7 @@ def test_page_numbers_and_contents_resolve(draft_pack):
     assert n == draft_pack.n_pages
     assert f"Page {n} of {n}" in pages[-1]
     contents = next(t for t in pages if re.search(r"^Contents$", t, re.M))
-    summary_page = next(i for i, t in enumerate(pages, start=1) if "Decisions for this meeting" in t)
+    summary_page = next(i for i, t in enumerate(pages, start=1) if "Questions for this meeting" in t)
     # target-counter filled the contents line with the summary's real page number.
     assert re.search(rf"Executive summary[ .]*{summary_page}\b", contents)
 
@@ -231,10 +232,12 @@ def test_svg_ids_are_unique_across_the_page(draft_pack):
 
 def test_every_source_line_differs_by_dash_pattern_not_only_colour():
     # Common practice for colour-blind-safe charts: a second cue besides hue.
-    dashes = [style[1] for style in SOURCE_STYLES.values()]
+    keys = [s.key for s in vocabulary.SOURCES]
+    dashes = [s.dashes for s in vocabulary.SOURCES]
     assert len(set(dashes)) == len(dashes)
-    entries = legend_entries(list(SOURCE_STYLES))
-    assert len({e["css"] for e in entries if e["label"] in SOURCE_STYLES}) == len(SOURCE_STYLES)
+    entries = legend_entries(keys)
+    swatches = {e["css"] for e in entries if e.get("source") in keys}
+    assert len(swatches) == len(keys)
 
 
 # --------------------------------------------------------------------------- numbers and context
@@ -301,7 +304,7 @@ def test_biggest_change_names_the_source_that_moved(draft_inputs):
     changed = dataclasses.replace(inputs, consensus=consensus, previous=previous, sources=sources)
     top = build_pack_context(changed, with_charts=False)["top_changes"]
     assert top[0]["item"] == item
-    assert top[0]["why"].startswith("sales moved ▲")
+    assert top[0]["why"].startswith(f"{vocabulary.source_label('sales')} moved ▲")
 
 
 def test_exceptions_are_ranked_by_money_at_stake(draft_inputs):
@@ -403,7 +406,7 @@ def test_family_pages_show_each_items_pattern_method_and_fallback(draft_inputs, 
     for item in series.loc[series["family"] == fallback["family"], "item"].unique():
         assert item in page
     assert "†" in page and squash(f"{fallback['item']}at{fallback['location']}") in squash(page)
-    start = max(i for i, t in enumerate(pages) if "How these numbers are made" in t and "Terms" in " ".join(pages[i:]))
+    start = next(i for i, t in enumerate(pages) if "The methods behind this pack" in t)
     methods = " ".join(pages[start:])
     # The class cut-offs of Syntetos, Boylan & Croston (2005), as in consensus.methods.demand_pattern.
     assert "1.32" in methods and "0.49" in methods and "Syntetos" in methods

@@ -22,24 +22,21 @@ from matplotlib.backends.backend_svg import FigureCanvasSVG
 from matplotlib.figure import Figure
 from matplotlib.ticker import FuncFormatter, MaxNLocator
 
+from consensus import vocabulary
 from consensus.periods import month_indexes
 
 #: Colours chosen for this pack: a dark neutral for history, a deep blue for the
-#: consensus, and source hues spread in lightness as well as hue (orange, reddish
-#: purple, teal, grey) so they stay apart for the common colour-vision deficiencies;
-#: every source also has its own dash pattern, so colour is never the only cue.
+#: consensus, and each source's own hue and dash pattern from the registry
+#: (:data:`consensus.vocabulary.SOURCES`), spread in lightness as well as hue so
+#: they stay apart for the common colour-vision deficiencies.
 ACTUAL_COLOUR = "#1d1d1f"
-CONSENSUS_COLOUR = "#0b4f8a"
 PREVIOUS_COLOUR = "#9a9a9a"
-SOURCE_STYLES: dict[str, tuple[str, tuple]] = {
-    "sales": ("#d97a00", (0, (5, 2))),
-    "marketing": ("#b3467f", (0, (1.5, 1.5))),
-    "dc": ("#1f9a8a", (0, (6, 1.5, 1.5, 1.5))),
-    "statistical": ("#5f5f5f", (0, (3, 1.2, 1, 1.2, 1, 1.2))),
-}
-_FALLBACK_SOURCE_COLOURS = ("#7a6a00", "#4d7ab3", "#a05a2c", "#3f7f3f")
-STEP_IMPROVES_COLOUR = "#0b4f8a"
-STEP_WORSENS_COLOUR = "#d97a00"
+#: One meaning per colour wherever a direction is good or bad (error, bias):
+#: deep blue is better, dark amber worse (amber is also the pack's flag colour:
+#: both ask for attention); plain ups and downs stay neutral.
+TONE_COLOURS = {"better": "#0b4f8a", "worse": "#9c4f00", "neutral": "#8a8a8a"}
+ACTUAL_LABEL = "Actual"
+PREVIOUS_LABEL = "Last cycle's plan"
 
 _RC = {
     "svg.fonttype": "none",
@@ -61,11 +58,14 @@ _ID_OR_REFERENCE = re.compile(r'(id="|url\(#|href="#)([^")]+)')
 _PLAIN_GROUP = re.compile(r'<g id="[^"]*">')
 
 
-def source_style(source: str, position: int = 0) -> tuple[str, tuple]:
-    """Colour and dash pattern of a source's line (known sources first, others from a fallback set)."""
-    if source in SOURCE_STYLES:
-        return SOURCE_STYLES[source]
-    return _FALLBACK_SOURCE_COLOURS[position % len(_FALLBACK_SOURCE_COLOURS)], (0, (4, 1, 1, 1))
+def source_style(source: str) -> tuple[str, tuple | None]:
+    """Colour and dash pattern of a source's line, from the sources registry."""
+    kind = vocabulary.source(source)
+    return kind.colour, kind.dashes
+
+
+def _consensus_colour() -> str:
+    return vocabulary.source("consensus").colour
 
 
 def _thousands(value: float, _pos=None) -> str:
@@ -119,20 +119,23 @@ def _figure_to_svg(figure: Figure, salt: str) -> str:
 def legend_entries(source_names: Sequence[str], *, with_previous: bool = True) -> list[dict[str, str]]:
     """The family chart's legend as HTML swatches: label plus a CSS background drawing the same dashes.
 
-    The legend sits in the page, not in each SVG, because it is identical on
-    every family page and text inside SVG is the costliest thing to render.
+    Labels come from the sources registry, in the order given.  The legend
+    sits in the page, not in each SVG, because it is identical on every family
+    page and text inside SVG is the costliest thing to render.
     """
+    blue = _consensus_colour()
     entries = [
-        {"label": "actual", "kind": "line", "css": _dash_css(ACTUAL_COLOUR, None, 1.3)},
-        {"label": "consensus", "kind": "line strong", "css": _dash_css(CONSENSUS_COLOUR, None, 2.6)},
-        {"label": "80% band", "kind": "band", "css": f"background: {CONSENSUS_COLOUR}; opacity: 0.34"},
-        {"label": "95% band", "kind": "band", "css": f"background: {CONSENSUS_COLOUR}; opacity: 0.14"},
+        {"label": ACTUAL_LABEL, "kind": "line", "css": _dash_css(ACTUAL_COLOUR, None, 1.3)},
+        {"label": vocabulary.source_label("consensus"), "kind": "line strong", "css": _dash_css(blue, None, 2.6)},
+        {"label": "80% band", "kind": "band", "css": f"background: {blue}; opacity: 0.34"},
+        {"label": "95% band", "kind": "band", "css": f"background: {blue}; opacity: 0.14"},
     ]
     if with_previous:
-        entries.append({"label": "last cycle", "kind": "line", "css": _dash_css(PREVIOUS_COLOUR, (0, (1, 1.2)), 0.9)})
-    for position, name in enumerate(source_names):
-        colour, dashes = source_style(name, position)
-        entries.append({"label": name, "kind": "line", "css": _dash_css(colour, dashes, 1.0)})
+        entries.append({"label": PREVIOUS_LABEL, "kind": "line", "css": _dash_css(PREVIOUS_COLOUR, (0, (1, 1.2)), 0.9)})
+    for name in source_names:
+        colour, dashes = source_style(name)
+        entries.append({"label": vocabulary.source_label(name), "kind": "line", "source": name,
+                        "css": _dash_css(colour, dashes, 1.0)})
     return entries
 
 
@@ -184,27 +187,30 @@ class FamilyChartPainter:
         self.plan_x = month_indexes(_series(plan_months)) if len(plan_months) else np.array([], dtype=int)
         self.source_names = list(source_names)
         nan_plan = np.full(len(self.plan_x), np.nan)
+        blue = _consensus_colour()
         with rc_context(_RC):
-            figure = Figure(figsize=(7.0, 2.7 if with_legend else 2.05))
+            figure = Figure(figsize=(7.0, 2.6 if with_legend else 1.95))
             ax = figure.add_axes((0.085, 0.3, 0.9, 0.64))
-            self.band_95 = ax.fill_between(self.plan_x, nan_plan, nan_plan, color=CONSENSUS_COLOUR, alpha=0.12,
+            self.band_95 = ax.fill_between(self.plan_x, nan_plan, nan_plan, color=blue, alpha=0.12,
                                            linewidth=0, label="95% band")
-            self.band_80 = ax.fill_between(self.plan_x, nan_plan, nan_plan, color=CONSENSUS_COLOUR, alpha=0.26,
+            self.band_80 = ax.fill_between(self.plan_x, nan_plan, nan_plan, color=blue, alpha=0.26,
                                            linewidth=0, label="80% band")
             self.previous_line = None
             if with_previous:
                 (self.previous_line,) = ax.plot(self.plan_x, nan_plan, color=PREVIOUS_COLOUR, linewidth=0.9,
-                                                linestyle=(0, (1, 1.2)), label="last cycle")
+                                                linestyle=(0, (1, 1.2)), label=PREVIOUS_LABEL)
             self.source_lines = {}
-            for position, name in enumerate(self.source_names):
-                colour, dashes = source_style(name, position)
+            for name in self.source_names:
+                colour, dashes = source_style(name)
                 (self.source_lines[name],) = ax.plot(self.plan_x, nan_plan, color=colour, linewidth=1.0,
-                                                     linestyle=dashes, label=name)
+                                                     linestyle=dashes if dashes is not None else "-",
+                                                     label=vocabulary.source_label(name))
             (self.actual_line,) = ax.plot(self.hist_x, np.full(len(self.hist_x), np.nan), color=ACTUAL_COLOUR,
-                                          linewidth=1.3, label="actual")
+                                          linewidth=1.3, label=ACTUAL_LABEL)
             join_x = np.concatenate([self.hist_x[-1:], self.plan_x])
-            (self.consensus_line,) = ax.plot(join_x, np.full(len(join_x), np.nan), color=CONSENSUS_COLOUR,
-                                             linewidth=2.6, label="consensus", solid_capstyle="round", zorder=5)
+            (self.consensus_line,) = ax.plot(join_x, np.full(len(join_x), np.nan), color=blue, linewidth=2.6,
+                                             label=vocabulary.source_label("consensus"), solid_capstyle="round",
+                                             zorder=5)
             _style_axes(ax, y_label=f"{quantity_unit} per month")
             ax.yaxis.set_major_locator(MaxNLocator(nbins=4, min_n_ticks=3))
             all_x = np.concatenate([self.hist_x, self.plan_x])
@@ -300,7 +306,7 @@ def draw_family_chart(
 
 
 def _legend_order(labels: list[str]) -> list[int]:
-    first = ["actual", "consensus", "80% band", "95% band", "last cycle"]
+    first = [ACTUAL_LABEL, vocabulary.source_label("consensus"), "80% band", "95% band", PREVIOUS_LABEL]
     ranked = [labels.index(name) for name in first if name in labels]
     return ranked + [i for i, name in enumerate(labels) if name not in first]
 
@@ -308,28 +314,29 @@ def _legend_order(labels: list[str]) -> list[int]:
 def draw_accuracy_history(
     *, cycles: Sequence[str], wape_by_source: Mapping[str, np.ndarray], salt: str = "history"
 ) -> str:
-    """SVG line chart of each source's WAPE (%) over recent cycles."""
+    """SVG line chart of each source's WAPE (%) over recent cycles, keyed by source; labels from the registry."""
     with rc_context(_RC):
         figure = Figure(figsize=(7.0, 2.1))
-        ax = figure.add_axes((0.085, 0.2, 0.72, 0.74))
+        ax = figure.add_axes((0.085, 0.2, 0.68, 0.74))
         x = np.arange(len(cycles))
         ends = []
-        for position, (name, values) in enumerate(wape_by_source.items()):
-            colour, dashes = source_style(name, position)
-            ax.plot(x, values, color=colour, linewidth=1.4, linestyle=dashes, marker="o", markersize=2.5,
-                    label=name)
+        for name, values in wape_by_source.items():
+            colour, dashes = source_style(name)
+            label = vocabulary.source_label(name)
+            ax.plot(x, values, color=colour, linewidth=1.4, linestyle=dashes if dashes is not None else "-",
+                    marker="o", markersize=2.5, label=label)
             if len(values) and np.isfinite(values[-1]):
-                ends.append((float(values[-1]), name, colour))
+                ends.append((float(values[-1]), label, colour))
         finite = np.concatenate([np.asarray(v, dtype=float) for v in wape_by_source.values()] or [np.zeros(1)])
         top = float(np.nanmax(finite)) if np.isfinite(finite).any() else 1.0
         ax.set_ylim(0, top * 1.1)
         # Direct labels at the right end, pushed apart so close lines stay readable.
         gap = top * 1.1 * 0.075
         placed: list[float] = []
-        for value, name, colour in sorted(ends):
+        for value, label, colour in sorted(ends):
             y = max(value, placed[-1] + gap) if placed else value
             placed.append(y)
-            ax.annotate(f"{name} {value:.1f}%", (x[-1], value), xytext=(x[-1] + 0.35, y), textcoords="data",
+            ax.annotate(f"{label} {value:.1f}%", (x[-1], value), xytext=(x[-1] + 0.35, y), textcoords="data",
                         va="center", fontsize=6.8, color=colour, annotation_clip=False)
         _style_axes(ax, y_label="WAPE, %")
         ax.set_xticks(x, list(cycles))
@@ -338,33 +345,47 @@ def draw_accuracy_history(
     return _figure_to_svg(figure, salt)
 
 
-def draw_value_added_steps(*, steps: Sequence[str], wape: np.ndarray, salt: str = "fva") -> str:
-    """SVG stairstep of forecast value added: WAPE (%) after each step, with the change from the step before."""
+def draw_value_added_steps(
+    *, steps: Sequence[str], wape: np.ndarray, change: np.ndarray, tones: Sequence[str], salt: str = "fva"
+) -> str:
+    """SVG bars of forecast value added: WAPE (%) of each step, and its change against the step it should beat.
+
+    ``steps`` are the labels printed under the bars (wrapped to two lines),
+    ``change`` the difference in points against each step's baseline (NaN for
+    none) and ``tones`` "better", "worse" or "neutral" for each bar's colour;
+    a worse bar is also hatched, so the tone never rests on colour alone.
+    """
     wape = np.asarray(wape, dtype=float)
+    change = np.asarray(change, dtype=float)
     with rc_context(_RC):
-        figure = Figure(figsize=(7.0, 2.4))
-        ax = figure.add_axes((0.085, 0.17, 0.9, 0.76))
+        figure = Figure(figsize=(7.0, 2.5))
+        ax = figure.add_axes((0.085, 0.22, 0.9, 0.72))
         x = np.arange(len(steps))
-        change = np.diff(wape, prepend=np.nan)
-        colours = [
-            "#8a8a8a" if not np.isfinite(c) else (STEP_IMPROVES_COLOUR if c <= 0 else STEP_WORSENS_COLOUR)
-            for c in change
-        ]
-        hatches = ["" if not np.isfinite(c) or c <= 0 else "////" for c in change]
+        colours = [TONE_COLOURS.get(tone, TONE_COLOURS["neutral"]) for tone in tones]
         bars = ax.bar(x, wape, color=colours, width=0.62, edgecolor="white", linewidth=0.6)
-        for bar, hatch in zip(bars, hatches):
-            bar.set_hatch(hatch)
-        ax.step(np.append(x - 0.31, x[-1] + 0.31) if len(x) else x,
-                np.append(wape, wape[-1:]) if len(x) else wape, where="post", color="#333333",
-                linewidth=0.7)
+        for bar, tone in zip(bars, tones):
+            bar.set_hatch("////" if tone == "worse" else "")
         for xi, w, c in zip(x, wape, change):
-            label = f"{w:.1f}%" if not np.isfinite(c) else f"{w:.1f}%\n{'▼' if c <= 0 else '▲'} {c:+.1f} pt"
-            ax.text(xi, w, label, ha="center", va="bottom", fontsize=6.8, color="#222222")
+            if not np.isfinite(w):
+                continue
+            text = f"{w:.1f}%" if not np.isfinite(c) else f"{w:.1f}%\n{'▼' if c < 0 else '▲' if c > 0 else ''} {_signed(c)} pt"
+            ax.text(xi, w, text, ha="center", va="bottom", fontsize=6.8, color="#222222")
         _style_axes(ax, y_label="WAPE, % (lower is better)")
-        ax.set_ylim(0, (np.nanmax(wape) if len(wape) else 1) * 1.35)
-        ax.set_xticks(x, list(steps))
-        ax.set_xlabel("forecast step", labelpad=1)
+        ax.set_ylim(0, (np.nanmax(wape) if np.isfinite(wape).any() else 1) * 1.35)
+        ax.set_xticks(x, [_wrap(step, 16) for step in steps])
+        ax.tick_params(axis="x", labelsize=6.8)
     return _figure_to_svg(figure, salt)
+
+
+def _signed(value: float) -> str:
+    return f"{value:+.1f}".replace("-", "\u2212")
+
+
+def _wrap(text: str, width: int) -> str:
+    """A label broken into lines of about ``width`` characters at spaces, so neighbours never run together."""
+    import textwrap
+
+    return "\n".join(textwrap.wrap(str(text), width=width, break_long_words=False)) or str(text)
 
 
 def _series(values):

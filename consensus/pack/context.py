@@ -15,8 +15,10 @@ import numpy as np
 import pandas as pd
 from markupsafe import Markup
 
+from consensus import vocabulary
 from consensus.errors import InvalidSpec
 from consensus.methods.demand_pattern import ADI_CUTOFF, CV2_CUTOFF
+from consensus.methods.weights import WeightSpec
 from consensus.pack import charts
 from consensus.pack.inputs import PackInputs
 from consensus.pack.textgrid import GridColumn, lay_out_text_grid
@@ -39,18 +41,6 @@ UNCERTAINTY_CAUTION = (
 TS_LIMIT_DEFAULT = 4.0
 _MINUS = "\u2212"
 _UP, _DOWN = "▲", "▼"
-_SOURCE_ORDER = ("statistical", "sales", "marketing", "dc")
-#: How the pack names the statistical forecast's demand patterns and methods (unknown names print as given).
-PATTERN_LABELS = {
-    "smooth": "smooth", "erratic": "erratic", "intermittent": "intermittent", "lumpy": "lumpy",
-    "no_demand": "no demand",
-}
-METHOD_LABELS = {
-    "naive": "naive", "seasonal_naive": "seasonal naive", "moving_average": "moving average", "ses": "SES",
-    "croston": "Croston", "sba": "SBA", "holt_damped": "damped Holt", "holt": "Holt",
-    "holt_winters_add": "Holt–Winters add", "holt_winters_mul": "Holt–Winters mul",
-    "new_item_profile": "new-item profile", "zero_demand": "zero demand",
-}
 FALLBACK_MARK = "†"
 #: Advance of every glyph of DejaVu Sans Mono in em (1233 of 2048 font units), and the text width of an
 #: A4 page with the pack's 14 mm side margins (182 mm) in points.
@@ -58,13 +48,9 @@ MONO_ADVANCE_EM = 1233 / 2048
 TEXT_WIDTH_PT = 182 / 25.4 * 72
 #: Months of actuals that weight each location's holdout WAPE in an item's figure (the holdout's length).
 HOLDOUT_WEIGHT_MONTHS = 12
-_EXCEPTION_KINDS = {
-    "disagreement": "Sources disagree",
-    "tracking": "Biased source",
-    "missing": "Missing input",
-    "change": "Large change vs last cycle",
-    "band": "Unusually wide band",
-}
+#: Past cycles with actuals before the methods page prints figures measured on them: the fewest cycles
+#: the weights themselves accept before falling back (methods.weights.WeightSpec.min_cycles).
+MIN_HISTORY_CYCLES = WeightSpec().min_cycles
 
 
 # --------------------------------------------------------------------------- number formatting
@@ -140,21 +126,39 @@ def _as_numeric(frame: pd.DataFrame, columns) -> pd.DataFrame:
     return frame.assign(**{c: pd.to_numeric(frame[c], errors="coerce") for c in columns})
 
 
-def _source_order(names) -> list[str]:
-    names = list(dict.fromkeys(str(n) for n in names))
-    known = [s for s in _SOURCE_ORDER if s in names]
-    return known + sorted(n for n in names if n not in known)
-
-
 def _scope_mask(scope: str, cells: pd.DataFrame) -> pd.Series:
-    """Cells covered by a submission scope: "all", a region, a location, a family or an item."""
-    scope = str(scope)
+    """Cells covered by a submission scope: "all", or a region, location, family or item.
+
+    The store words a scope with its kind ("region NORTH", "location DC-N1");
+    a bare code is looked for among regions, locations, families and items.
+    """
+    scope = str(scope).strip()
     if scope.lower() in ("all", "*", ""):
         return pd.Series(True, index=cells.index)
+    kind, _, code = scope.partition(" ")
+    if kind in ("region", "location", "family", "item") and code:
+        return cells[kind].astype(str) == code
     return (
         (cells["region"] == scope) | (cells["location"] == scope)
         | (cells["family"] == scope) | (cells["item"] == scope)
     )
+
+
+def _tone(change_in_error: Any) -> str:
+    """"better" when an error measure fell, "worse" when it rose, "" when flat or unknown (lower is better)."""
+    try:
+        value = round(float(change_in_error), 1)
+    except (TypeError, ValueError):
+        return ""
+    if not math.isfinite(value) or value == 0:
+        return ""
+    return "better" if value < 0 else "worse"
+
+
+def _labels(keys: pd.Series) -> pd.Series:
+    """Source keys as the registry's labels (one lookup per distinct key)."""
+    keys = keys.astype(str)
+    return keys.map({k: vocabulary.source_label(k) for k in keys.unique()})
 
 
 # --------------------------------------------------------------------------- the context
@@ -204,7 +208,7 @@ def build_pack_context(
     previous = _with_master(_as_numeric(inputs.previous, ["consensus"]), items)
     actuals = _with_master(_as_numeric(inputs.actuals, ["quantity"]), items)
     sources = _with_master(_as_numeric(inputs.sources, ["quantity"]), items)
-    source_names = _source_order(sources["source"].unique()) if not sources.empty else []
+    source_names = vocabulary.ordered(sources["source"].unique()) if not sources.empty else []
 
     # One family × month table for the whole cycle: consensus, band deviations, last cycle, last year.
     cons["dev_lo80"] = (cons["consensus"] - cons["lower_80"]) ** 2
@@ -230,12 +234,19 @@ def build_pack_context(
     family_order = list(family_value.index)
 
     summary = _summary_tables(fam_plan, plan_months, summary_windows, family_order, summary_family_rows)
+    total_12 = next((w for w in summary["windows"] if w["months"] == 12), None)
     changes_top, changes_flagged = _changes_vs_last_cycle(
         cons, previous, sources, inputs, top_changes, change_threshold_pct, source_names
     )
+    thresholds = {
+        "disagreement_threshold": inputs.disagreement_threshold, "disagreement_min_units": inputs.disagreement_min_units,
+        "ts_limit": ts_limit, "change_threshold_pct": change_threshold_pct,
+        "band_ratio_threshold": band_ratio_threshold, "band_months": band_months,
+        "quantity_unit": inputs.quantity_unit, "due_date": _due_date(inputs),
+    }
     exceptions = _exceptions(
-        inputs, cons, sources, items, changes_flagged, exception_rows=exception_rows, ts_limit=ts_limit,
-        band_ratio_threshold=band_ratio_threshold, band_months=band_months, plan_months=plan_months,
+        inputs, cons, sources, items, changes_flagged, exception_rows=exception_rows, thresholds=thresholds,
+        plan_months=plan_months,
     )
     families = _family_pages(
         inputs, fam_plan, fam_act, sources, cons, family_order, source_names, plan_months,
@@ -246,24 +257,12 @@ def build_pack_context(
     scorecard = _scorecard(inputs, ts_limit=ts_limit, source_names=source_names, with_charts=with_charts)
     fva = _value_added(inputs.fva, with_charts=with_charts)
 
-    decisions = inputs.decisions.copy()
-    if not decisions.empty:
-        decisions = decisions.sort_values("at", kind="stable")
-        decisions["at"] = decisions["at"].map(_format_when)
-
-    submissions = inputs.submissions.copy()
-    if not submissions.empty:
-        submissions = submissions.sort_values(["source", "scope"], kind="stable")
-        submissions["submitted_at"] = submissions["submitted_at"].map(_format_when)
-        submissions["sha_short"] = submissions["sha256"].astype(str).str.slice(0, 12)
-        submissions["is_late"] = submissions["status"].astype(str).str.lower().eq("late")
-
-    total_12 = next((w for w in summary["windows"] if w["months"] == 12), None)
+    plan_state = vocabulary.label(vocabulary.PLAN_STATES, inputs.status)
     meta = {
         "company": inputs.company,
         "cycle": inputs.cycle,
         "status": inputs.status,
-        "status_label": inputs.status.upper(),
+        "status_label": plan_state.upper(),
         "is_draft": inputs.status == "draft",
         "generated_at": _format_when(inputs.generated_at),
         "horizon": int(inputs.horizon),
@@ -277,13 +276,16 @@ def build_pack_context(
         "n_locations": int(locations["location"].nunique()),
         "n_cells": int(cons[["item", "location"]].drop_duplicates().shape[0]) if not cons.empty else 0,
         "sources": source_names,
+        "due_date": thresholds["due_date"],
+        "state_heading": vocabulary.STATE_HEADING,
     }
+    band_coverage = _band_coverage(inputs.band_coverage)
     return {
         "meta": meta,
         "caution_text": UNCERTAINTY_CAUTION,
         "top_decisions": int(top_decisions),
-        "submissions": _records(submissions),
-        "missing": _records(inputs.missing),
+        "submissions": _submission_rows(inputs.submissions),
+        "missing": exceptions["missing"],
         "summary": summary,
         "headline_total_12": total_12["total"]["consensus"] if total_12 else None,
         "top_changes": changes_top,
@@ -292,14 +294,85 @@ def build_pack_context(
         "family_legend": charts.legend_entries(source_names, with_previous=not inputs.previous.empty),
         "scorecard": scorecard,
         "fva": fva,
-        "decisions": _records(decisions),
+        "decisions": _decision_rows(inputs.decisions),
         "components": _components(inputs.components, plan_months, component_rows),
-        "method_notes": [{"title": k, "text": v} for k, v in inputs.method_notes.items()],
-        "band_coverage": _band_coverage(inputs.band_coverage),
+        "band_coverage": band_coverage,
         "by_family_grid": _by_family_grid(summary, family_order),
         "pattern_note": {"adi": ADI_CUTOFF, "cv2": CV2_CUTOFF, "shown": not inputs.series.empty,
                          "weight_months": HOLDOUT_WEIGHT_MONTHS},
+        "methods": _methods_page(inputs, scorecard=scorecard, band_coverage=band_coverage,
+                                 thresholds=thresholds),
     }
+
+
+def _due_date(inputs: PackInputs) -> str | None:
+    """The cycle's due date for submissions as "YYYY-MM-DD", when the store records one.
+
+    PackInputs gains ``due_date`` with the store's due dates; until then
+    there is none, and the pack promises no lateness check.
+    """
+    due = getattr(inputs, "due_date", None)
+    if due is None or (not isinstance(due, str) and pd.isna(due)):
+        return None
+    return pd.Timestamp(due).strftime("%Y-%m-%d")
+
+
+def _days_late(frame: pd.DataFrame) -> pd.Series:
+    """Days late per row from an optional ``days_late`` column (NaN where unknown or absent)."""
+    if "days_late" not in frame.columns:
+        return pd.Series(np.nan, index=frame.index)
+    return pd.to_numeric(frame["days_late"], errors="coerce")
+
+
+def _submission_rows(submissions: pd.DataFrame) -> list[dict]:
+    """The cover's inputs table: each file in force with its source and state in the registry's words.
+
+    A row is late when its status says so or its optional ``days_late`` is
+    above zero (the store's due dates); the state then says how late.
+    """
+    if submissions.empty:
+        return []
+    frame = submissions.copy()
+    frame["_order"] = frame["source"].map(lambda k: vocabulary.source(k).order)
+    frame = frame.sort_values(["_order", "source", "scope"], kind="stable")
+    days = _days_late(frame)
+    status = frame["status"].astype(str).str.lower()
+    frame["is_late"] = status.eq("late") | days.gt(0)
+    frame["state"] = [vocabulary.describe_submission_state(st, days_late=d) for st, d in zip(status, days)]
+    frame["source_label"] = _labels(frame["source"])
+    frame["scope_label"] = frame["scope"].map(vocabulary.describe_scope)
+    frame["submitted_at"] = frame["submitted_at"].map(_format_when)
+    frame["sha_short"] = frame["sha256"].astype(str).str.slice(0, 12)
+    return _records(frame.drop(columns="_order"))
+
+
+def _worded_decisions(decisions: pd.DataFrame) -> pd.DataFrame:
+    """Decisions with their change in the vocabulary's words and the item or family code they touch.
+
+    A decision that carries ``kind`` and ``amount`` (as the store's do) is
+    worded by :func:`consensus.vocabulary.describe_change` ("set to 240");
+    otherwise its ``change`` text is kept.  ``scope_code`` is the scope without
+    its kind word or location part ("item TM-HUB-4 × DC-N1" → "TM-HUB-4").
+    """
+    frame = decisions.copy()
+    if frame.empty:
+        return frame.assign(scope_code=pd.Series(dtype=object))
+    if {"kind", "amount"} <= set(frame.columns):
+        amounts = pd.to_numeric(frame["amount"], errors="coerce")
+        worded = [vocabulary.describe_change(k, a) if pd.notna(a) else None for k, a in zip(frame["kind"], amounts)]
+        frame["change"] = [w if w is not None else c for w, c in zip(worded, frame["change"])]
+    scope = frame["scope"].astype(str)
+    frame["scope_code"] = scope.str.replace(r"^(item|family) ", "", regex=True).str.split(" × ").str[0]
+    return frame
+
+
+def _decision_rows(decisions: pd.DataFrame) -> list[dict]:
+    """The decisions log, oldest first, each change worded by the vocabulary where it can be."""
+    if decisions.empty:
+        return []
+    frame = _worded_decisions(decisions.sort_values("at", kind="stable"))
+    frame["at"] = frame["at"].map(_format_when)
+    return _records(frame)
 
 
 def _format_when(value: Any) -> str:
@@ -457,25 +530,29 @@ def _changes_vs_last_cycle(
     drivers = pull.sort_values("rank_key", ascending=False).drop_duplicates("item")
     drivers = drivers.set_index("item")[["source", "pull", "quantity", "before", "rank_key"]]
 
-    decisions = inputs.decisions
+    decisions = _worded_decisions(inputs.decisions)
     out = []
     for row in top.itertuples(index=False):
         driver = drivers.loc[row.item] if row.item in drivers.index else None
         if driver is not None and driver["rank_key"] >= 0:
             why = (
-                f"{driver['source']} moved {format_change(driver['quantity'] - driver['before'])} "
-                f"vs last plan; weighted pull {format_change(driver['pull'])}"
+                f"{vocabulary.source_label(driver['source'])} moved "
+                f"{format_change(driver['quantity'] - driver['before'])} vs last plan; "
+                f"weighted pull {format_change(driver['pull'])}"
             )
         else:
-            why = "no source explains the move; see decisions and overrides"
-        overrides = decisions[(decisions["scope"] == row.item) | (decisions["scope"] == row.family)]
+            why = "no source explains the move; see the decisions log"
+        overrides = decisions[(decisions["scope_code"] == row.item) | (decisions["scope_code"] == row.family)]
         out.append(
             {
                 "item": row.item, "family": row.family, "months": f"{row.first} – {row.last}",
                 "before": row.before, "now": row.now, "change": row.change,
                 "change_pct": None if pd.isna(row.change_pct) else row.change_pct,
                 "at_stake": row.at_stake, "why": why,
-                "override": "; ".join(overrides["change"].astype(str)) if not overrides.empty else "",
+                "override": "; ".join(
+                    overrides["scope_code"].astype(str) + " " + overrides["change"].astype(str)
+                    + " for " + overrides["period"].astype(str)
+                ) if not overrides.empty else "",
             }
         )
     return out, flagged
@@ -484,12 +561,19 @@ def _changes_vs_last_cycle(
 # --------------------------------------------------------------------------- exceptions
 
 
-def _exceptions(
-    inputs, cons, sources, items, changes_flagged, *, exception_rows, ts_limit, band_ratio_threshold,
-    band_months, plan_months,
-) -> dict[str, Any]:
-    """The exceptions of the cycle, each table ranked by money at stake, plus one ranked list of decisions."""
+def _exceptions(inputs, cons, sources, items, changes_flagged, *, exception_rows, thresholds, plan_months) -> dict[str, Any]:
+    """The exceptions of the cycle, each table ranked by money at stake, plus one ranked list of questions.
+
+    Each kind has one name, a count in a stated unit and its rule with the
+    thresholds as numbers, all from :data:`consensus.vocabulary.EXCEPTION_KINDS`.
+    """
+    ts_limit = thresholds["ts_limit"]
+    band_months = thresholds["band_months"]
     ranked_parts = []
+
+    def ask(kind: str, scope: pd.Series) -> pd.Series:
+        template = vocabulary.exception_kind(kind).question
+        return scope.astype(str).map(lambda where: template.format(scope=where))
 
     # Sources disagree: cells flagged by the disagreement measure.
     dis = inputs.disagreement
@@ -511,41 +595,53 @@ def _exceptions(
             hi[keys + ["source", "quantity"]].rename(columns={"source": "high_source", "quantity": "high"}),
             on=keys, how="left",
         )
+        for side in ("low_source", "high_source"):
+            dis_cells[side] = dis_cells[side].map(lambda k: vocabulary.source_label(k) if pd.notna(k) else None)
     dis_family = (
         dis.groupby("family", as_index=False).agg(cells=("item", "size"), at_stake=("at_stake", "sum"))
         .sort_values("at_stake", ascending=False)
         if not dis.empty else pd.DataFrame(columns=["family", "cells", "at_stake"])
     )
+    n_dis_items = int(dis["item"].nunique()) if not dis.empty else 0
     if not dis.empty:
         dis_item = dis.groupby(["item", "family"], as_index=False).agg(
             cells=("period", "size"), at_stake=("at_stake", "sum"), spread=("spread", "sum")
         )
         ranked_parts.append(pd.DataFrame({
             "kind": "disagreement", "scope": dis_item["item"] + " (" + dis_item["family"].astype(str) + ")",
-            "detail": dis_item["cells"].astype(str) + " month × location cells; sources span "
+            "detail": dis_item["cells"].astype(str) + " cells (location × month); sources span "
                       + dis_item["spread"].map(format_quantity) + " " + inputs.quantity_unit,
-            "question": "Which source should the plan follow for " + dis_item["item"] + "?",
+            "question": ask("disagreement", dis_item["item"]),
             "at_stake": dis_item["at_stake"],
         }))
 
     # Biased sources: tracking signal beyond the limit.
+    # Only sources the consensus weighs can be corrected or down-weighted; the consensus's own lean and the
+    # yardsticks' show on the scorecard.
     score = _as_numeric(inputs.scorecard, ["tracking_signal", "bias_pct", "wape"])
-    biased = score[score["tracking_signal"].abs() > ts_limit].copy()
+    weighed = score["source"].astype(str).map(lambda k: vocabulary.source(k).combined)
+    biased = score[(score["tracking_signal"].abs() > ts_limit) & weighed].copy()
     plan_value = (
         sources.assign(value=sources["quantity"] * sources["unit_price"]).groupby("source")["value"].sum()
         if not sources.empty else pd.Series(dtype=float)
     )
     biased["at_stake"] = biased["source"].map(plan_value).fillna(0) * biased["bias_pct"].abs() / 100
-    biased = biased.sort_values(["at_stake", "source", "level"], ascending=[False, True, True])
+    level_rank = {t.key: i for i, t in enumerate(vocabulary.LEVELS)}
+    biased["_level"] = biased["level"].map(level_rank).fillna(len(level_rank))
+    biased = biased.sort_values(["at_stake", "source", "_level"], ascending=[False, True, True])
+    biased["source_label"] = _labels(biased["source"])
+    biased["level_label"] = biased["level"].map(lambda k: vocabulary.label(vocabulary.LEVELS, k))
+    biased_rows = _worst_per_source_level(biased)
     if not biased.empty:
         worst = biased.loc[biased.groupby("source")["tracking_signal"].apply(lambda s: s.abs().idxmax())]
         ranked_parts.append(pd.DataFrame({
-            "kind": "tracking", "scope": worst["source"],
+            "kind": "tracking", "scope": worst["source_label"],
             "detail": "tracking signal " + worst["tracking_signal"].map(lambda v: f"{v:+.1f}".replace("-", _MINUS))
-                      + " at " + worst["level"].astype(str) + " level, lag " + worst["lag_bucket"].astype(str)
+                      + " at " + worst["level_label"] + " level, lag " + worst["lag_bucket"].astype(str)
                       + "; bias " + worst["bias_pct"].map(lambda v: format_percent(v, signed=True)),
-            "question": "Correct or down-weight " + worst["source"] + "'s persistent bias?",
-            "at_stake": worst["at_stake"],
+            "question": ask("tracking", worst["source_label"]),
+            # The most the source's lean puts at stake at any level and lag, as the table's top row shows.
+            "at_stake": worst["source"].map(biased.groupby("source")["at_stake"].max()).to_numpy(),
         }))
 
     # Missing and late submissions: the plan value their scope carries in the next months.
@@ -555,17 +651,17 @@ def _exceptions(
         missing["at_stake"] = [
             float(near.loc[_scope_mask(scope, near), "value"].sum()) for scope in missing["scope"]
         ]  # one boolean mask per missing submission: a handful of rows, each vectorised
+        missing["source_label"] = _labels(missing["source"])
+        missing["scope_label"] = missing["scope"].map(vocabulary.describe_scope)
+        missing["state"] = [vocabulary.describe_submission_state("missing", days_late=d) for d in _days_late(missing)]
+        who = missing["source_label"] + " for " + missing["scope_label"]
         ranked_parts.append(pd.DataFrame({
-            "kind": "missing", "scope": missing["source"].astype(str) + " · " + missing["scope"].astype(str),
-            "detail": f"no submission received; plan value in scope, next {band_months} months",
-            "question": "Chase " + missing["source"].astype(str) + " for " + missing["scope"].astype(str)
-                        + ", or plan without it?",
+            "kind": "missing", "scope": who,
+            "detail": f"not received; plan value in scope, next {band_months} months",
+            "question": ask("missing", who),
             "at_stake": missing["at_stake"],
         }))
-    subs = inputs.submissions
-    late = subs[subs["status"].astype(str).str.lower() == "late"].copy() if not subs.empty else subs
-    if not late.empty:
-        late["submitted_at"] = late["submitted_at"].map(_format_when)
+    late = pd.DataFrame([r for r in _submission_rows(inputs.submissions) if r["is_late"]])
 
     # Large changes against last cycle (already ranked by money).
     if not changes_flagged.empty:
@@ -573,7 +669,7 @@ def _exceptions(
             "kind": "change", "scope": changes_flagged["item"] + " (" + changes_flagged["family"].astype(str) + ")",
             "detail": changes_flagged["change_pct"].map(lambda v: format_percent(v, signed=True))
                       + " vs last cycle (" + changes_flagged["change"].map(format_change) + ")",
-            "question": "Accept the move for " + changes_flagged["item"] + "?",
+            "question": ask("change", changes_flagged["item"]),
             "at_stake": changes_flagged["at_stake"],
         }))
 
@@ -584,12 +680,12 @@ def _exceptions(
     )
     band_item["ratio"] = band_item["width"] / band_item["consensus"].where(band_item["consensus"] > 0)
     band_item["at_stake"] = band_item["width"] / 2 * band_item["unit_price"]
-    wide = band_item[band_item["ratio"] > band_ratio_threshold].sort_values("at_stake", ascending=False)
+    wide = band_item[band_item["ratio"] > thresholds["band_ratio_threshold"]].sort_values("at_stake", ascending=False)
     if not wide.empty:
         ranked_parts.append(pd.DataFrame({
             "kind": "band", "scope": wide["item"] + " (" + wide["family"].astype(str) + ")",
             "detail": "80% band spans " + wide["ratio"].map(format_share) + f" of the plan, next {band_months} months",
-            "question": "Hold buffer stock, or firm up " + wide["item"] + "'s plan?",
+            "question": ask("band", wide["item"]),
             "at_stake": wide["at_stake"],
         }))
 
@@ -597,25 +693,29 @@ def _exceptions(
         pd.concat(ranked_parts, ignore_index=True).sort_values("at_stake", ascending=False, kind="stable")
         if ranked_parts else pd.DataFrame(columns=["kind", "scope", "detail", "question", "at_stake"])
     )
-    ranked["kind_label"] = ranked["kind"].map(_EXCEPTION_KINDS)
+    ranked["kind_label"] = ranked["kind"].map(lambda k: vocabulary.exception_kind(k).label)
     counts = ranked.groupby("kind")["at_stake"].agg(["size", "sum"]) if not ranked.empty else None
-    summary = [
-        {
-            "kind": kind, "label": label,
-            "count": int(counts.loc[kind, "size"]) if counts is not None and kind in counts.index else 0,
-            "at_stake": float(counts.loc[kind, "sum"]) if counts is not None and kind in counts.index else 0.0,
-        }
-        for kind, label in _EXCEPTION_KINDS.items()
-    ]
+    summary = []
+    for kind in vocabulary.EXCEPTION_KINDS:
+        n = int(counts.loc[kind.key, "size"]) if counts is not None and kind.key in counts.index else 0
+        summary.append({
+            "kind": kind.key, "label": kind.label, "count": n, "count_text": vocabulary.describe_count(n, kind.key),
+            "rule": vocabulary.describe_exception_rule(kind.key, **thresholds),
+            "at_stake": float(counts.loc[kind.key, "sum"]) if n else 0.0,
+        })
     return {
         "summary": summary,
+        "kinds": {k["kind"]: k for k in summary},
         "ranked": _records(ranked.head(30)),
         "disagreement_cells": _records(dis_cells),
         "disagreement_total": int(len(dis)),
+        "disagreement_items": n_dis_items,
         "disagreement_families": _records(dis_family.head(exception_rows)),
         "disagreement_families_total": int(len(dis_family)),
-        "biased": _records(biased.head(exception_rows)),
-        "biased_total": int(len(biased)),
+        "biased": _records(biased_rows.head(exception_rows)),
+        "biased_total": int(len(biased_rows)),
+        "biased_measurements": int(len(biased)),
+        "biased_sources": int(biased["source"].nunique()) if not biased.empty else 0,
         "missing": _records(missing),
         "late": _records(late),
         "changes": _records(changes_flagged.head(exception_rows)),
@@ -623,9 +723,28 @@ def _exceptions(
         "wide_bands": _records(wide.head(exception_rows)),
         "wide_bands_total": int(len(wide)),
         "ts_limit": ts_limit,
-        "band_ratio_threshold": band_ratio_threshold,
+        "ts_limit_text": vocabulary.format_number(ts_limit),
+        "change_threshold_pct": thresholds["change_threshold_pct"],
+        "band_ratio_threshold": thresholds["band_ratio_threshold"],
         "band_months": band_months,
+        "has_due_date": thresholds["due_date"] is not None,
     }
+
+
+def _worst_per_source_level(biased: pd.DataFrame) -> pd.DataFrame:
+    """One row per source and level beyond the tracking limit: its worst lag, and every lag beyond.
+
+    Rows keep the order of ``biased`` (money at stake first); ``lags`` lists the
+    lag buckets beyond the limit in the order of the lag buckets.
+    """
+    if biased.empty:
+        return biased.assign(lags=pd.Series(dtype=object))
+    order = {b: i for i, (b, _, _) in enumerate(DEFAULT_LAG_BUCKETS)}
+    by_lag = biased.assign(_b=biased["lag_bucket"].map(order).fillna(99)).sort_values(["_b", "lag_bucket"])
+    lags = by_lag.groupby(["source", "level"])["lag_bucket"].agg(lambda b: ", ".join(b.astype(str)))
+    worst = biased.loc[biased.groupby(["source", "level"])["tracking_signal"].apply(lambda t: t.abs().idxmax())]
+    worst = worst.join(lags.rename("lags"), on=["source", "level"])
+    return worst.sort_values(["at_stake", "source", "_level"], ascending=[False, True, True]).drop(columns="_level")
 
 
 # --------------------------------------------------------------------------- per-family pages
@@ -666,9 +785,9 @@ def _family_pages(
                                        aggfunc="first")
     bucket_labels = [label for label, _, _ in DEFAULT_LAG_BUCKETS if label in weights_wide.columns]
     bucket_labels += [b for b in weights_wide.columns if b not in bucket_labels]
-    weight_notes = weights.groupby(["segment", "source"]).agg(
-        psi=("psi", "first"), n_cycles=("n_cycles", "first"), basis=("basis", "first"),
-        note=("note", lambda s: "; ".join(dict.fromkeys(str(x) for x in s if isinstance(x, str) and x.strip()))),
+    # Per segment and lag: the fewest cycles of any source (what ψ grows with), ψ and where the history came from.
+    per_lag = weights.groupby(["segment", "lag_bucket"]).agg(
+        n_cycles=("n_cycles", "min"), psi=("psi", "first"), basis=("basis", "first"),
     )
     segments = set(weights["segment"].astype(str))
     fallback_segment = next((s for s in segments if s.lower() == "all"), None)
@@ -691,19 +810,16 @@ def _family_pages(
         .to_numpy(dtype=float).reshape(len(family_order), len(hist_months))
     )
     col = {name: i for i, name in enumerate(plan_cols)}
-    weight_lookup = {
-        key: {
-            "by_bucket": [None if pd.isna(v) else float(v) for v in weights_wide.loc[key, bucket_labels]],
-            "n_cycles": None if pd.isna(weight_notes.loc[key, "n_cycles"]) else int(weight_notes.loc[key, "n_cycles"]),
-            "psi": None if pd.isna(weight_notes.loc[key, "psi"]) else float(weight_notes.loc[key, "psi"]),
-            "basis": weight_notes.loc[key, "basis"], "note": weight_notes.loc[key, "note"],
-        }
-        for key in weights_wide.index
-    }
+    weight_values = weights_wide.reindex(columns=bucket_labels).astype(float)
+    weight_lookup = dict(zip(weights_wide.index, weight_values.where(weight_values.notna(), None)
+                             .astype(object).to_numpy().tolist()))
+    lag_lookup = _weights_per_lag(per_lag, bucket_labels)
     month_grid = _month_grid(plan_cube, plan_cols, plan_months, source_names)
     lines_per_family = len(plan_months)
     series_lines, series_columns, series_items = _series_grid(series_by_item)
     fallback_notes = _fallback_notes(series_fallbacks)
+    pattern_mix = _pattern_mix(inputs.series, inputs.items)
+    source_labels = [vocabulary.source_label(s) for s in source_names]
     painter = (
         charts.FamilyChartPainter(history_months=hist_months, plan_months=plan_months, source_names=source_names,
                                   quantity_unit=inputs.quantity_unit)
@@ -716,7 +832,7 @@ def _family_pages(
         actual = hist_cube[number - 1]
         segment = family if family in segments else fallback_segment
         weight_rows = [
-            {"source": source, **weight_lookup[(segment, source)]}
+            {"source": source, "label": vocabulary.source_label(source), "by_bucket": weight_lookup[(segment, source)]}
             for source in source_names if (segment, source) in weight_lookup
         ]
         cover = coverage.loc[family] if family in coverage.index else pd.Series(dtype=float)
@@ -751,13 +867,12 @@ def _family_pages(
             "chart": chart,
             "rows": table_rows,
             "source_names": source_names,
+            "source_labels": source_labels,
             "coverage": [None if pd.isna(cover.get(s)) else float(cover.get(s)) for s in source_names],
             "bucket_labels": bucket_labels,
             "weights": weight_rows,
-            "weights_segment": segment,
+            "weights_per_lag": lag_lookup.get(segment, []),
             "weights_are_own": segment == family,
-            # Stores often give every source of a segment the same reason; print it once under the table.
-            "weights_why_shared": _shared_reason(weight_rows),
             "grid": {
                 "columns": [
                     {**c, "label": c["label"] + "*"} if c.get("source") in partly_covered else c
@@ -771,15 +886,45 @@ def _family_pages(
                 "font_pt": grid_font_pt(sum(c["width"] for c in series_columns), preferred_pt=6.9),
             },
             "series_items": series_items.get(family, []),
+            "pattern_mix": pattern_mix.get(family),
             "fallback_notes": fallback_notes.get(family, {"lines": [], "n_hidden": 0}),
         })
     return pages
 
 
-def _shared_reason(weight_rows: list[dict]) -> str | None:
-    """The weights' "why" text when every source has the same one (and there is more than one source)."""
-    reasons = {f"{w['basis']}: {w['note']}" if w.get("note") else str(w["basis"]) for w in weight_rows}
-    return reasons.pop() if len(weight_rows) > 1 and len(reasons) == 1 else None
+def _weights_per_lag(per_lag: pd.DataFrame, bucket_labels: list[str]) -> dict[str, list[dict]]:
+    """Per segment, the rows under its weights table: cycles of history, ψ and the history used, by lag.
+
+    Cycles are the fewest of any source at that lag, since ψ = n/(n + κ)
+    grows with them; rows whose values are all unknown are left out, and so
+    is the history row when every lag used its own.  Each row is formatted
+    for all segments at once.
+    """
+    if per_lag.empty:
+        return {}
+    table = per_lag.unstack("lag_bucket")
+    cycles = table["n_cycles"].reindex(columns=bucket_labels)
+    psi = table["psi"].reindex(columns=bucket_labels)
+    basis = table["basis"].reindex(columns=bucket_labels)
+    basis_names = {b: vocabulary.label(vocabulary.WEIGHT_BASES, b) for b in pd.unique(basis.to_numpy().ravel())
+                   if isinstance(b, str)}
+    texts = {
+        "Past cycles measured": cycles.apply(lambda c: c.map(lambda v: "–" if pd.isna(v) else f"{int(v)}")),
+        "Weight on measured accuracy (ψ)": psi.apply(lambda c: c.map(format_share)),
+        # "History used" only matters where some lag did not have its own: say so only then.
+        "History used": basis.apply(lambda c: c.map(lambda v: basis_names.get(v, "–"))),
+    }
+    shown = {
+        "Past cycles measured": cycles.notna().any(axis=1),
+        "Weight on measured accuracy (ψ)": psi.notna().any(axis=1),
+        "History used": (basis.notna() & basis.ne("segment")).any(axis=1),
+    }
+    cells = {name: dict(zip(frame.index, frame.to_numpy().tolist())) for name, frame in texts.items()}
+    out = {}
+    for segment in table.index:
+        out[str(segment)] = [{"label": name, "cells": cells[name][segment]} for name in texts
+                             if shown[name][segment]]
+    return out
 
 
 def _quantity_text(values) -> pd.Series:
@@ -812,14 +957,18 @@ def _month_grid(plan_cube: np.ndarray, plan_cols: list[str], plan_months: list[s
         GridColumn("Month", "left"), GridColumn("Consensus", css_class="strong", min_width=9),
         GridColumn("80% band", min_width=8), GridColumn("95% band", min_width=8),
         GridColumn("Last cycle", min_width=8), GridColumn("Δ vs last", min_width=8),
-        *(GridColumn(s, css_class="src", min_width=max(len(s), 6)) for s in source_names),
+        # A source's header may wrap onto two lines, so its longest word sets the least width.
+        *(GridColumn(vocabulary.source_label(s), css_class="src",
+                     min_width=max(6, *(len(w) + 1 for w in vocabulary.source_label(s).split())))
+          for s in source_names),
     ]
     grid = lay_out_text_grid(values, columns)
     # Remember which header cells are sources, so each page can star a source that covers part of it.
     named = [dict(c) for c in grid.columns]
     labelled = [c for c in named if c["label"] is not None]
-    for column, spec in zip(labelled, columns):
-        column["source"] = spec.label if spec.css_class == "src" else None
+    source_of = dict(zip((f"src_{s}" for s in source_names), source_names))
+    for column, key in zip(labelled, values.columns):
+        column["source"] = source_of.get(key)
     return type(grid)(columns=tuple(named), lines=grid.lines, width=grid.width)
 
 
@@ -886,30 +1035,25 @@ def _fallback_series(series: pd.DataFrame, items: pd.DataFrame) -> pd.DataFrame:
     return rows[["family", "item", "location", "fallback"]].sort_values(["family", "item", "location"])
 
 
-def _counted(label: pd.Series, count: pd.Series, total: pd.Series) -> pd.Series:
-    """A label, with "k/n" added when only k of the item's n locations share it."""
-    suffix = " " + count.astype(int).astype(str) + "/" + total.astype(int).astype(str)
-    return label + suffix.where(count < total, "")
+def _series_grid(by_item: pd.DataFrame):
+    """Per family, the items' method table as fixed-width lines, two items side by side.
 
-
-def _series_grid(by_item: pd.DataFrame, *, max_notes: int = 4):
-    """Per family, the items' pattern/method table as fixed-width lines, two items side by side.
-
-    Items run down the left half first, then the right half, so the table reads
-    in item order like two newspaper columns.
+    Each item shows the method most of its locations use, at how many of its
+    locations ("3 of 4"), and its holdout WAPE; method names come from
+    :data:`consensus.vocabulary.STATISTICAL_METHODS`.  Items run down the left
+    half first, then the right half, so the table reads in item order like two
+    newspaper columns.
     """
     if by_item.empty:
         return {}, [], {}
-    pattern = _counted(by_item["pattern"].map(lambda p: PATTERN_LABELS.get(p, p)), by_item["pattern_count"],
-                       by_item["n_locations"])
-    method = _counted(by_item["method"].map(lambda m: METHOD_LABELS.get(m, m)), by_item["method_count"],
-                      by_item["n_locations"])
-    method = method + np.where(by_item["n_fallback"] > 0, FALLBACK_MARK, "")
+    names = {m: vocabulary.label(vocabulary.STATISTICAL_METHODS, m) for m in by_item["method"].unique()}
+    method = by_item["method"].map(names) + np.where(by_item["n_fallback"] > 0, FALLBACK_MARK, "")
+    used_at = by_item["method_count"].astype(int).astype(str) + " of " + by_item["n_locations"].astype(int).astype(str)
     wape = (100 * by_item["holdout_wape"]).map(format_percent)
-    values = pd.DataFrame({"item": by_item["item"], "pattern": pattern, "method": method, "wape": wape})
+    values = pd.DataFrame({"item": by_item["item"], "method": method, "used_at": used_at, "wape": wape})
     half = lay_out_text_grid(values, [
-        GridColumn("Item", "left"), GridColumn("Pattern", "left", min_width=7),
-        GridColumn("Method (locations)", "left", min_width=18), GridColumn("Holdout WAPE", min_width=7),
+        GridColumn("Item", "left"), GridColumn("Method", "left", min_width=12),
+        GridColumn("Used at (locations)", "left", min_width=7), GridColumn("Holdout WAPE", min_width=7),
     ])
     half_lines = pd.Series(half.lines, index=by_item.index).str.ljust(half.width)
     position = by_item.groupby("family").cumcount()
@@ -926,12 +1070,35 @@ def _series_grid(by_item: pd.DataFrame, *, max_notes: int = 4):
     joined = (wide["left"] + np.where(wide["right"].str.len() > 0, spacer, "") + wide["right"]).str.rstrip()
     lines = {family: list(group) for family, group in joined.groupby(level="family")}
     columns = [*half.columns, {"label": None, "width": len(spacer), "align": "left", "css_class": ""}, *half.columns]
-    records = by_item.assign(pattern_text=pattern, method_text=method, wape_text=wape)
+    records = by_item.assign(method_text=method, used_at_text=used_at, wape_text=wape)
     items_by_family = {
-        family: group[["item", "pattern_text", "method_text", "wape_text", "n_fallback"]].to_dict("records")
+        family: group[["item", "method_text", "used_at_text", "wape_text", "n_fallback"]].to_dict("records")
         for family, group in records.groupby("family")
     }
     return lines, columns, items_by_family
+
+
+def _pattern_mix(series: pd.DataFrame, items: pd.DataFrame) -> dict[str, str]:
+    """Per family, how its item × location histories are classed: "20 smooth, 10 erratic (of 30 series)".
+
+    Patterns in the registry's order (:data:`consensus.vocabulary.DEMAND_PATTERNS`), most common
+    first among equals; one groupby for every family.
+    """
+    if series.empty:
+        return {}
+    frame = series[["item", "pattern"]].astype(str).merge(items[["item", "family"]].astype(str), on="item", how="left")
+    frame["family"] = frame["family"].fillna("(unassigned)")
+    counts = frame.groupby(["family", "pattern"]).size().rename("n").reset_index()
+    rank = {t.key: i for i, t in enumerate(vocabulary.DEMAND_PATTERNS)}
+    counts["_rank"] = counts["pattern"].map(rank).fillna(len(rank))
+    counts = counts.sort_values(["family", "_rank", "pattern"])
+    counts["text"] = counts["n"].astype(str) + " " + counts["pattern"].map(
+        lambda p: vocabulary.label(vocabulary.DEMAND_PATTERNS, p))
+    totals = counts.groupby("family")["n"].sum()
+    return {
+        family: ", ".join(group["text"]) + f" (of {int(totals[family])} series)"
+        for family, group in counts.groupby("family")
+    }
 
 
 def _fallback_notes(fallbacks: pd.DataFrame, *, max_notes: int = 2) -> dict[str, dict]:
@@ -985,16 +1152,22 @@ def grid_font_pt(width_chars: int, *, preferred_pt: float = 7.1, line_pt: float 
 
 
 def _scorecard(inputs, *, ts_limit, source_names, with_charts) -> dict[str, Any]:
-    """Accuracy by source and lag bucket at total level, its recent history, and weights earned."""
+    """Accuracy by source and lag bucket at total level, WAPE by level, its recent history, and weights earned.
+
+    Every table says the level it is measured at, since errors shrink as
+    items are added up: WAPE at item × location is several times that of
+    the total.
+    """
     score = _as_numeric(inputs.scorecard, ["n", "mad", "mape", "wape", "bias", "bias_pct", "tracking_signal"])
     order = {b: i for i, (b, _, _) in enumerate(DEFAULT_LAG_BUCKETS)}
-    names = _source_order(list(source_names) + list(score["source"].astype(str).unique()))
+    names = vocabulary.ordered(list(source_names) + list(score["source"].astype(str).unique()))
     src_rank = {s: i for i, s in enumerate(names)}
     total = score[score["level"] == "total"].copy()
     total = total.assign(
         _s=total["source"].map(src_rank), _b=total["lag_bucket"].map(order).fillna(99),
         out_of_limits=total["tracking_signal"].abs() > ts_limit,
     ).sort_values(["_s", "_b"])
+    total["source_label"] = _labels(total["source"])
     weights = _as_numeric(inputs.weights, ["weight"])
     overall = weights[weights["segment"].astype(str).str.lower() == "all"]
     if overall.empty:
@@ -1002,13 +1175,15 @@ def _scorecard(inputs, *, ts_limit, source_names, with_charts) -> dict[str, Any]
     earned = overall.groupby(["source", "lag_bucket"], as_index=False)["weight"].mean()
     total = total.merge(earned, on=["source", "lag_bucket"], how="left")
 
-    # Group-level against item-level WAPE, n-weighted over lag buckets.
+    # WAPE at each level, n-weighted over lag buckets, in the registry's level order.
     levels = score.assign(wn=score["wape"] * score["n"]).groupby(["source", "level"]).agg(wn=("wn", "sum"),
                                                                                           n=("n", "sum"))
     levels = (levels["wn"] / levels["n"].where(levels["n"] > 0)).unstack("level")
-    level_cols = [c for c in ("item", "family", "total") if c in levels.columns]
+    level_keys = [t.key for t in vocabulary.LEVELS if t.key in levels.columns]
+    level_keys += sorted(c for c in levels.columns if c not in level_keys)
     level_rows = [
-        {"source": s, "values": [None if pd.isna(levels.loc[s, c]) else float(levels.loc[s, c]) for c in level_cols]}
+        {"source": s, "label": vocabulary.source_label(s),
+         "values": [None if pd.isna(levels.loc[s, c]) else float(levels.loc[s, c]) for c in level_keys]}
         for s in names if s in levels.index
     ]
 
@@ -1023,9 +1198,10 @@ def _scorecard(inputs, *, ts_limit, source_names, with_charts) -> dict[str, Any]
         series = wide[s].to_numpy(dtype=float)
         latest = series[-1] if len(series) else np.nan
         before = series[-4] if len(series) >= 4 else (series[0] if len(series) else np.nan)
+        change = latest - before if len(series) >= 2 else None
         history_rows.append({
-            "source": s, "latest": latest, "change_3": latest - before if len(series) >= 2 else None,
-            "mean": float(np.nanmean(series)) if np.isfinite(series).any() else None,
+            "source": s, "label": vocabulary.source_label(s), "latest": latest, "change_3": change,
+            "tone": _tone(change), "mean": float(np.nanmean(series)) if np.isfinite(series).any() else None,
             "bias_latest": float(bias_wide[s].iloc[-1]) if s in bias_wide.columns and len(cycles) else None,
         })
     chart = None
@@ -1036,26 +1212,57 @@ def _scorecard(inputs, *, ts_limit, source_names, with_charts) -> dict[str, Any]
         ))
     return {
         "rows": _records(total.drop(columns=["_s", "_b"])),
-        "level_columns": level_cols,
+        "level_columns": [vocabulary.label(vocabulary.LEVELS, c) for c in level_keys],
+        "level_keys": level_keys,
         "level_rows": level_rows,
         "history_rows": history_rows,
         "history_first": cycles[0] if cycles else None,
         "history_last": cycles[-1] if cycles else None,
+        "history_cycles": cycles,
+        "history_level": vocabulary.label(vocabulary.LEVELS, inputs.scorecard_history_level),
+        "total_level": vocabulary.label(vocabulary.LEVELS, "total"),
         "chart": chart,
         "ts_limit": ts_limit,
     }
 
 
 def _value_added(fva: pd.DataFrame, *, with_charts: bool) -> dict[str, Any]:
-    """The forecast value added stairstep: WAPE after each step and the change it made (negative helps)."""
+    """Forecast value added: each step's WAPE and its change against the step it should improve on.
+
+    Steps are source keys, listed in the order of the forecasting process
+    (:func:`consensus.vocabulary.value_added_order`); each is compared with
+    its baseline in the registry (the statistical forecast for what people
+    send, seasonal naive for the statistical forecast before events …), the
+    comparison of Gilliland's forecast value added, and with the first step.
+    Change = WAPE(step) − WAPE(baseline) in points: negative adds value.
+    """
     frame = _as_numeric(fva, ["wape", "n"]).reset_index(drop=True)
-    frame["change"] = frame["wape"].diff()
-    frame["vs_first"] = frame["wape"] - frame["wape"].iloc[0] if not frame.empty else []
+    if frame.empty:
+        return {"rows": [], "chart": None, "first_label": None}
+    frame["step"] = frame["step"].astype(str)
+    frame = frame.drop_duplicates("step").set_index("step").loc[vocabulary.value_added_order(frame["step"])]
+    present = list(frame.index)
+    first = present[0]
+    rows = []
+    for step in present:
+        baseline = vocabulary.value_added_baseline(step, present[:present.index(step)])
+        change = frame.loc[step, "wape"] - frame.loc[baseline, "wape"] if baseline is not None else np.nan
+        vs_first = frame.loc[step, "wape"] - frame.loc[first, "wape"] if step != first else np.nan
+        rows.append({
+            "step": step, "label": vocabulary.source_label(step), "wape": float(frame.loc[step, "wape"]),
+            "n": frame.loc[step, "n"], "baseline": baseline,
+            "baseline_label": vocabulary.source_label(baseline) if baseline is not None else None,
+            "change": None if pd.isna(change) else float(change), "tone": _tone(change),
+            "vs_first": None if pd.isna(vs_first) else float(vs_first), "tone_first": _tone(vs_first),
+        })
     chart = None
-    if with_charts and not frame.empty:
-        chart = Markup(charts.draw_value_added_steps(steps=list(frame["step"].astype(str)),
-                                                     wape=frame["wape"].to_numpy(dtype=float), salt="fva"))
-    return {"rows": _records(frame), "chart": chart}
+    if with_charts:
+        chart = Markup(charts.draw_value_added_steps(
+            steps=[r["label"] for r in rows], wape=np.array([r["wape"] for r in rows], dtype=float),
+            change=np.array([np.nan if r["change"] is None else r["change"] for r in rows], dtype=float),
+            tones=[r["tone"] or "neutral" for r in rows], salt="fva",
+        ))
+    return {"rows": rows, "chart": chart, "first_label": vocabulary.source_label(first)}
 
 
 def _components(components: pd.DataFrame, plan_months: list[str], max_rows: int) -> dict[str, Any]:
@@ -1092,5 +1299,108 @@ def _components(components: pd.DataFrame, plan_months: list[str], max_rows: int)
 
 
 def _band_coverage(frame: pd.DataFrame) -> list[dict]:
+    """How often past bands held the actual demand, by level and band, with levels in the registry's words.
+
+    A row whose level is not a level key is taken as measured at item ×
+    location, the grain the bands are stored at (the store's rows carried the
+    band's name there).
+    """
     out = _as_numeric(frame, ["nominal", "coverage", "winkler"])
-    return _records(out)
+    if out.empty:
+        return []
+    known = {t.key for t in vocabulary.LEVELS}
+    level = out["level"].astype(str).where(out["level"].astype(str).isin(known), "item")
+    out = out.assign(level=level, level_label=level.map(lambda k: vocabulary.label(vocabulary.LEVELS, k)))
+    rank = {t.key: i for i, t in enumerate(vocabulary.LEVELS)}
+    out = out.assign(_rank=out["level"].map(rank)).sort_values(["_rank", "nominal"], kind="stable")
+    return _records(out.drop(columns="_rank"))
+
+
+# --------------------------------------------------------------------------- methods page
+
+
+def _methods_page(inputs, *, scorecard, band_coverage, thresholds) -> dict[str, Any]:
+    """The methods page's names, published sources and figures measured on this store's own past cycles.
+
+    Figures appear once at least :data:`MIN_HISTORY_CYCLES` past cycles have
+    been scored against actual demand; before that the page says so.  Nothing
+    is taken from the run's notes: the words come from
+    :mod:`consensus.vocabulary` and the numbers from ``inputs``.
+    """
+    cycles = scorecard["history_cycles"]
+    enough = len(cycles) >= MIN_HISTORY_CYCLES
+    history = {"n_cycles": len(cycles), "first": cycles[0] if cycles else None,
+               "last": cycles[-1] if cycles else None, "enough": enough, "min_cycles": MIN_HISTORY_CYCLES}
+
+    # Consensus against the best single combined source and seasonal naive, at every level scored.
+    by_source = {r["source"]: r["values"] for r in scorecard["level_rows"]}
+    combined = [s for s in by_source if s != "consensus" and vocabulary.source(s).combined]
+    accuracy = []
+    for position, level_key in enumerate(scorecard["level_keys"]):
+        own = by_source.get("consensus", [None] * (position + 1))[position]
+        scored = [(by_source[s][position], s) for s in combined if by_source[s][position] is not None]
+        best_value, best_source = min(scored) if scored else (None, None)
+        naive = by_source.get("naive", [None] * (position + 1))[position]
+        accuracy.append({
+            "level": vocabulary.label(vocabulary.LEVELS, level_key), "consensus": own,
+            "best_label": vocabulary.source_label(best_source) if best_source else None, "best": best_value,
+            "naive": naive,
+        })
+
+    weights = _as_numeric(inputs.weights, ["weight", "psi", "n_cycles"])
+    mean_weights = (
+        weights.groupby("source")["weight"].mean().reindex(vocabulary.ordered(weights["source"].unique()))
+        if not weights.empty else pd.Series(dtype=float)
+    )
+    scheme = vocabulary.term(vocabulary.WEIGHT_SCHEMES, inputs.weight_scheme) if inputs.weight_scheme else None
+    weights_block = {
+        "scheme": scheme,
+        "segment": (vocabulary.label(vocabulary.WEIGHT_SEGMENTS, inputs.weight_segment)
+                    if inputs.weight_segment else None),
+        "window_cycles": inputs.weight_window_cycles,
+        "mean": [{"label": vocabulary.source_label(s), "weight": float(w)} for s, w in mean_weights.items()
+                 if pd.notna(w)],
+        "psi_range": (_share_range(weights["psi"]) if "psi" in weights and weights["psi"].notna().any() else None),
+        "n_bases": (weights["basis"].astype(str).map(lambda b: vocabulary.label(vocabulary.WEIGHT_BASES, b))
+                    .value_counts().to_dict() if not weights.empty else {}),
+    }
+
+    reconciliation = (vocabulary.term(vocabulary.RECONCILIATION_METHODS, inputs.reconciliation_method)
+                      if inputs.reconciliation_method else None)
+
+    series = inputs.series
+    methods_used = []
+    if not series.empty:
+        frame = series.assign(holdout_wape=pd.to_numeric(series["holdout_wape"], errors="coerce"))
+        used = frame.groupby("method").agg(n=("item", "size"), median=("holdout_wape", "median"))
+        rank = {t.key: i for i, t in enumerate(vocabulary.STATISTICAL_METHODS)}
+        for method in sorted(used.index, key=lambda m: (-used.loc[m, "n"], rank.get(m, 99), m)):
+            entry = vocabulary.term(vocabulary.STATISTICAL_METHODS, method)
+            median = used.loc[method, "median"]
+            methods_used.append({"label": entry.label, "description": entry.description,
+                                 "reference": entry.reference, "n": int(used.loc[method, "n"]),
+                                 "median_wape": None if pd.isna(median) else 100 * float(median)})
+
+    return {
+        "history": history,
+        "accuracy": accuracy if enough else [],
+        "weights": weights_block,
+        "reconciliation": reconciliation,
+        "statistical_methods": methods_used,
+        "pattern_reference": vocabulary.PATTERN_REFERENCE,
+        "band_methods": list(vocabulary.BAND_METHODS),
+        "band_coverage": band_coverage if enough else [],
+        "thresholds": {
+            "disagreement": vocabulary.describe_exception_rule("disagreement", **thresholds),
+            "change": vocabulary.describe_exception_rule("change", **thresholds),
+            "band": vocabulary.describe_exception_rule("band", **thresholds),
+        },
+        "terms": [vocabulary.term(vocabulary.MEASURES, k) for k in ("wape", "mape", "mad", "bias", "tracking_signal")],
+    }
+
+
+def _share_range(values: pd.Series) -> str:
+    """A column of fractions as one share or a range of shares: "92%" or "86%–92%"."""
+    values = pd.to_numeric(values, errors="coerce").dropna()
+    low, high = format_share(values.min()), format_share(values.max())
+    return low if low == high else f"{low}–{high}"

@@ -14,6 +14,7 @@ import numpy as np
 import pandas as pd
 
 from consensus.errors import InvalidSpec
+from consensus.vocabulary import describe_change
 from consensus.periods import (
     DEFAULT_LAG_BUCKETS,
     horizon_months,
@@ -83,6 +84,16 @@ class PackInputs:
     # Labels only: the pack never converts units or currencies.
     quantity_unit: str = "units"
     currency: str = "EUR"
+    # The run's settings the methods and exceptions pages name (raw keys of consensus.vocabulary; None: not
+    # recorded, and the pages say so instead of guessing).
+    weight_scheme: str | None = None  # methods.weights.SCHEMES
+    weight_segment: str | None = None  # methods.weights.SEGMENTS
+    weight_window_cycles: int | None = None
+    reconciliation_method: str | None = None  # methods.reconcile.METHODS
+    disagreement_threshold: float | None = None  # spread / consensus above which a cell is flagged
+    disagreement_min_units: float | None = None
+    # Level (consensus.vocabulary.LEVELS) at which scorecard_history's WAPE and bias are measured.
+    scorecard_history_level: str = "item"
 
     def __post_init__(self) -> None:
         if self.status not in STATUSES:
@@ -216,21 +227,20 @@ def example_pack_inputs(
     for segment in ["all", *families]:
         jitter = rng.uniform(0.8, 1.25, size=(len(bucket_labels), len(_SOURCES)))
         raw = inv_mse[None, :] * jitter
-        psi = rng.uniform(0.1, 0.4)
-        shrunk = (1 - psi) * raw / raw.sum(axis=1, keepdims=True) + psi / len(_SOURCES)
+        # ψ is the share on the measured weights, w = ψ·measured + (1 − ψ)·equal, as methods.weights has it.
+        psi = 1 - rng.uniform(0.1, 0.4)
+        shrunk = psi * raw / raw.sum(axis=1, keepdims=True) + (1 - psi) / len(_SOURCES)
         n_cycles = int(rng.integers(6, 25))
+        # Few cycles of its own: the segment's weights come from all segments pooled (basis "all").
+        basis = "segment" if n_cycles >= 8 else "all"
         for b, bucket in enumerate(bucket_labels):
             for s, source in enumerate(_SOURCES):
                 weight_rows.append(
                     {
                         "segment": segment, "lag_bucket": bucket, "source": source,
                         "weight": round(float(shrunk[b, s]), 4), "psi": round(psi, 3), "n_cycles": n_cycles,
-                        "mse": round(float(1 / (inv_mse[s] * jitter[b, s])), 5),
-                        "basis": "inverse MSE, shrunk toward equal",
-                        "note": (
-                            "few past cycles, leaning on equal weights" if n_cycles < 12
-                            else ("most accurate at this lag" if shrunk[b, s] == shrunk[b].max() else "")
-                        ),
+                        "mse": round(float(1 / (inv_mse[s] * jitter[b, s])), 5), "basis": basis,
+                        "note": f"inverse-MSE weights shrunk toward equal with psi = {psi:.2f} from {n_cycles} cycles",
                     }
                 )
     weights = pd.DataFrame(weight_rows)
@@ -281,11 +291,17 @@ def example_pack_inputs(
             for c in cycles_back
         ]
     )
+    # What the store scores besides the sources: the consensus and the seasonal-naive yardstick, and the
+    # family × region level.  Drawn from a generator of their own, so the scenario above stays as it was.
+    extra_card, extra_history = _example_yardsticks(np.random.default_rng(seed + 1), bucket_labels, cycles_back)
+    scorecard = pd.concat([scorecard, extra_card], ignore_index=True)
+    scorecard_history = pd.concat([scorecard_history, extra_history], ignore_index=True)
+    # One step per source key, as the value-added page names and orders them (consensus.vocabulary).
     fva = pd.DataFrame(
         {
-            "step": ["seasonal naive", "statistical", "+ sales", "+ marketing", "+ dc", "consensus"],
-            "wape": [31.5, 22.8, 21.9, 23.1, 20.7, 19.4],
-            "n": [n_cells * 12] * 6,
+            "step": ["naive", "statistical_base", "statistical", "sales", "marketing", "dc", "consensus"],
+            "wape": [31.5, 23.4, 22.8, 21.9, 23.1, 20.7, 19.4],
+            "n": [n_cells * 12] * 7,
         }
     )
     generated_at = datetime(2027, 4, 6, 9, 30)
@@ -295,7 +311,9 @@ def example_pack_inputs(
             "author": ["R. Okafor (demand planning)", "L. Brandt (sales, North)", "M. Ruiz (marketing)"],
             "scope": [item_codes[0], families[0], "all"],
             "period": [shift_month(cycle, 2), shift_month(cycle, 4), shift_month(cycle, 6)],
-            "change": ["+15% over statistical", "set family to sales figure", "-8% promotion uplift removed"],
+            # As the store records them: a kind and an amount, worded by consensus.vocabulary.describe_change.
+            "kind": ["pct", "set", "pct"],
+            "amount": [15.0, 1200.0, -8.0],
             "reason": [
                 "Confirmed tender for a hotel refit; delivery booked for that month.",
                 "Range review moves two listings forward by a month.",
@@ -303,6 +321,7 @@ def example_pack_inputs(
             ],
         }
     )
+    decisions.insert(4, "change", [describe_change(k, a) for k, a in zip(decisions["kind"], decisions["amount"])])
     components = _example_components(rng, consensus, items, n_families)
     n_sub = {s: int((sources["source"] == s).sum()) for s in _SOURCES}
     submissions = pd.DataFrame(
@@ -343,7 +362,8 @@ def example_pack_inputs(
         sources=sources, consensus=consensus, previous=previous, weights=weights, scorecard=scorecard,
         scorecard_history=scorecard_history, disagreement=disagreement.reset_index(drop=True), fva=fva,
         decisions=decisions, components=components, method_notes=method_notes, band_coverage=band_coverage,
-        series=series,
+        series=series, weight_scheme="shrunk_mse", weight_segment="family", weight_window_cycles=12,
+        reconciliation_method="bottom_up", disagreement_threshold=0.6, disagreement_min_units=0.0,
     )
 
 
@@ -369,6 +389,48 @@ def _example_scorecard(rng: np.random.Generator, bucket_labels: list[str]) -> pd
                     }
                 )
     return pd.DataFrame(rows)
+
+
+#: Noise and bias (fraction of the level) of what the invented store scores besides the sources.
+_YARDSTICK_NOISE = {"consensus": 0.08, "naive": 0.2}
+_YARDSTICK_BIAS = {"consensus": 0.02, "naive": 0.0}
+
+
+def _example_yardsticks(
+    rng: np.random.Generator, bucket_labels: list[str], cycles: list[str]
+) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Scorecard rows of the consensus and seasonal naive at every level, and family × region rows of the sources.
+
+    Tracking signals stay within ±3, so only marketing's optimism is flagged.
+    """
+    noise = {**_SOURCE_NOISE, **_YARDSTICK_NOISE}
+    bias = {**_SOURCE_BIAS, **_YARDSTICK_BIAS}
+    wanted = [(s, level) for s in _YARDSTICK_NOISE for level in ("item", "family_region", "family", "total")]
+    wanted += [(s, "family_region") for s in _SOURCES]
+    level_factor = {"item": 1.45, "family_region": 1.1, "family": 0.85, "total": 0.55}
+    rows = []
+    for source, level in wanted:
+        for b, bucket in enumerate(bucket_labels):
+            wape = 100 * (noise[source] * 1.6 + abs(bias[source]) * 0.6) * level_factor[level] * (1 + 0.18 * b)
+            bias_pct = 100 * bias[source] * rng.uniform(0.7, 1.3)
+            ts = float(np.clip(rng.normal(0, 1.0), -3, 3)) if source in _YARDSTICK_NOISE else float(
+                rng.normal(0, 1.3)) + (5.2 if source == "marketing" else 0.0)
+            rows.append({
+                "source": source, "level": level, "lag_bucket": bucket,
+                "n": int(rng.integers(200, 900)), "n_zero_actual": int(rng.integers(0, 12)),
+                "mad": round(wape * rng.uniform(0.6, 0.9), 1), "mse": round((wape * 1.3) ** 2, 1),
+                "rmse": round(wape * 1.3, 1), "mape": round(wape * rng.uniform(1.1, 1.5), 1),
+                "wape": round(wape, 1), "bias": round(bias_pct * 0.9, 1), "bias_pct": round(bias_pct, 1),
+                "tracking_signal": round(ts, 2), "ts_flag": abs(ts) > 4,
+                "mase": round(wape / 28.0 * rng.uniform(0.9, 1.1), 2),
+            })
+    history = pd.DataFrame([
+        {"source": s, "cycle": c,
+         "wape": round(100 * (noise[s] * 1.6 + abs(bias[s]) * 0.6) * rng.uniform(0.85, 1.15), 1),
+         "bias_pct": round(100 * bias[s] * rng.uniform(0.6, 1.4), 1)}
+        for s in _YARDSTICK_NOISE for c in cycles
+    ])
+    return pd.DataFrame(rows), history
 
 
 def _example_components(
