@@ -166,8 +166,13 @@ def cycle_list(ctx: typer.Context, fmt: str = FormatOpt) -> None:
         frame = list_cycles(url=_url(ctx))
     except ConsensusError as e:
         _fail(e)
+    from consensus.vocabulary import PLAN_STATES, label
+
     frame = frame.assign(published_at=frame["published_at"].astype(str).str.slice(0, 16).replace(
-        {"NaT": "", "None": "", "nan": ""}))
+        {"NaT": "", "None": "", "nan": ""}), status=frame["status"].map(lambda k: label(PLAN_STATES, k)))
+    if frame.empty and fmt == "table":
+        typer.echo("no cycles yet; open one with 'consensus cycle open YYYY-MM'")
+        return
     shown = frame[["name", "horizon", "revision", "status", "due", "published_at", "published_by"]]
     _print_frame(shown, title="Cycles", fmt=fmt, headers={"name": "Cycle", "horizon": "Months", "revision": "Rev",
                                                          "status": "State", "due": "Due", "published_at": "Published",
@@ -320,7 +325,10 @@ def status(ctx: typer.Context, cycle: str = CycleOpt, fmt: str = FormatOpt) -> N
 
     Example: consensus status --cycle 2027-03
     """
-    from consensus.vocabulary import source_short
+    import pandas as pd
+
+    from consensus.vocabulary import (STATE_HEADING, describe_submission_state, source_label, source_short,
+                                      submitted_sources)
     from consensus.workflow.cycles import submission_status
     _check_format(fmt)
     try:
@@ -331,20 +339,22 @@ def status(ctx: typer.Context, cycle: str = CycleOpt, fmt: str = FormatOpt) -> N
         _print_frame(table.drop(columns=["reasons"]), fmt=fmt)
         return
     when = table["submitted_at"].astype(str).str.slice(0, 10).replace({"NaT": "", "None": "", "nan": ""})
-    days = table["days_late"]
-    timing = [("" if d is None or d != d else (f"{int(d)} days late" if d > 0 else
-                                               ("on the due date" if d == 0 else f"{-int(d)} days left")))
-              for d in days.astype(object)]
-    timing = [t if s not in ("received", "partly received", "replaced") or not t.endswith("left") else "on time"
-              for t, s in zip(timing, table["state"])]
+    states = []
+    for state, days in zip(table["state"], table["days_late"].astype(object)):
+        known = days is not None and days == days and days is not pd.NA
+        text = describe_submission_state(state, days_late=days if known else None)
+        if state == "not_received" and known and days <= 0:
+            text += f" ({-int(days)} days left)" if days < 0 else " (due today)"
+        states.append(text)
     shown = table.assign(source=table["source"].map(lambda s: source_short(s) if isinstance(s, str) else ""),
-                         file=table["filename"].fillna("") + table["id"].map(
-                             lambda i: "" if i != i else f" (#{int(i)})"),
-                         when=when, timing=timing)[["source", "scope", "state", "file", "submitted_by", "when",
-                                                    "timing"]]
+                         state=states, file=table["filename"].fillna("") + table["id"].map(
+                             lambda i: "" if i != i else f" #{int(i)}"), when=when)[
+        ["source", "scope", "state", "file", "submitted_by", "when"]]
+    legend = "Sources: " + ", ".join(f"{source_short(k)} = {source_label(k)}" for k in submitted_sources()
+                                     if source_short(k) != source_label(k))
     _print_frame(shown.fillna(""), title=f"Submissions for cycle {cycle}", fmt=fmt,
-                 headers={"source": "Source", "scope": "Scope", "state": "State", "file": "File",
-                          "submitted_by": "By", "when": "Received", "timing": "Due"})
+                 headers={"source": "Source", "scope": "Scope", "state": STATE_HEADING, "file": "File",
+                          "submitted_by": "By", "when": "Received"}, legend=legend)
     for row in table[table["state"] == "rejected"].itertuples(index=False):
         reasons = row.reasons if isinstance(row.reasons, list) else []
         typer.echo(f"rejected {row.filename}: " + "; ".join(reasons[:3]) + (" …" if len(reasons) > 3 else ""))

@@ -207,18 +207,14 @@ LEVELS: tuple[Term, ...] = (
     Term("total", "Total", "all items and locations together"),
 )
 
-#: Where a submission stands in a cycle (the keys ``consensus status`` gives; "accepted" and "missing" are the
-#: same states under the names the pack's inputs use).
+#: Where a submission stands in a cycle (the keys ``consensus status`` gives).
 SUBMISSION_STATES: tuple[Term, ...] = (
     Term("received", "Received", "a file in force for this scope"),
-    Term("partly received", "Partly received", "a file in force for some of the scope's families or locations"),
-    Term("not received", "Missing", "an expected submission that has not arrived"),
+    Term("partly_received", "Partly received", "a file in force for some of the scope's families or locations"),
+    Term("not_received", "Missing", "an expected submission that has not arrived"),
     Term("replaced", "Replaced by a later file", "a newer file covers this scope; this one is kept, not used here"),
     Term("rejected", "Rejected", "a file that failed the checks; nothing of it was used"),
     Term("unchanged", "Already received", "the same file (same SHA-256) is in force already; nothing changed"),
-    Term("accepted", "Received", "a file in force for this cycle"),
-    Term("late", "Received late", "a file in force that arrived after the cycle's due date"),
-    Term("missing", "Missing", "an expected submission that has not arrived"),
 )
 #: Column heading over a submission state, on every page and in the terminal.
 STATE_HEADING = "State"
@@ -328,6 +324,10 @@ STATISTICAL_METHODS: tuple[Term, ...] = (
          "Winters 1960"),
     Term("holt_winters_mul", "Holt–Winters multiplicative",
          "a level, a damped trend and a season that grows and shrinks with the level", "Winters 1960"),
+    Term("theta", "Theta", "simple exponential smoothing plus half the long-run trend line",
+         "Assimakopoulos & Nikolopoulos 2000; Hyndman & Billah 2003"),
+    Term("combination", "Combination of methods", "the average of several methods' forecasts",
+         "Makridakis & Hibon 2000 (M3); Makridakis et al. 2020 (M4)"),
     Term("new_item_profile", "New-item profile",
          "too little history: the family's seasonal shape times the item's mean so far", ""),
     Term("zero_demand", "Zero", "no demand in the history, so none is forecast", ""),
@@ -439,9 +439,13 @@ def describe_change(kind: str, amount: float, *, unit: str = "") -> str:
 
 def describe_days_late(days: int | float | None) -> str:
     """How late something arrived or still is: "on time", "1 day late", "3 days late"."""
-    if days is None or (isinstance(days, float) and not math.isfinite(days)) or days != days:
+    try:
+        value = float(days)
+    except (TypeError, ValueError):  # None, or pandas' NA for "no due date"
         return "on time"
-    whole = int(math.ceil(float(days)))
+    if not math.isfinite(value):
+        return "on time"
+    whole = int(math.ceil(value))
     if whole <= 0:
         return "on time"
     return f"{whole} day late" if whole == 1 else f"{whole} days late"
@@ -455,11 +459,9 @@ def describe_submission_state(state: str, *, days_late: int | float | None = Non
     without a due date only the state is printed ("Received", "Missing").
     """
     late = describe_days_late(days_late)
-    if state in ("accepted", "late", "received", "partly received"):
-        if late != "on time":
-            return f"{label(SUBMISSION_STATES, 'partly received' if state == 'partly received' else 'received')} {late}"
-        return label(SUBMISSION_STATES, state)
-    if state in ("missing", "not received") and late != "on time":
+    if state in ("received", "partly_received"):
+        return f"{label(SUBMISSION_STATES, state)} {late}" if late != "on time" else label(SUBMISSION_STATES, state)
+    if state == "not_received" and late != "on time":
         return f"Missing, {late}"
     return label(SUBMISSION_STATES, state)
 

@@ -759,6 +759,7 @@ def write_all(out: Path) -> list[Path]:
         "past_cycles": PAST_CYCLES,
         "files": manifest_files(),
         "decisions": MEETING_DECISIONS,
+        "publisher": PEOPLE["master"],
     }
     (out / "manifest.json").write_text(json.dumps(manifest, indent=2, ensure_ascii=False) + "\n", encoding="utf-8")
     return [out / f["path"] for f in manifest["files"]] + [out / "manifest.json"]

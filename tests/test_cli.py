@@ -86,7 +86,7 @@ def test_submit_accepts_then_status_shows_it(cli_store):
     assert result.exit_code == 0 and "accepted as #" in result.output
     status = runner.invoke(app, ["--db", cli_store, "status", "--cycle", "2026-11", "--format", "csv"])
     states = pd.read_csv(__import__("io").StringIO(status.output))["state"]
-    assert status.exit_code == 0 and {"received", "not received"} <= set(states)
+    assert status.exit_code == 0 and {"received", "not_received"} <= set(states)
 
 
 def test_broken_file_exits_2_names_row_and_column_and_changes_nothing(cli_store):

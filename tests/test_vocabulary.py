@@ -57,15 +57,20 @@ def test_every_closed_set_of_the_code_has_a_label():
     assert set(demand_pattern.PATTERNS) <= _keys(vocabulary.DEMAND_PATTERNS)
     assert set(decisions.KINDS) <= _keys(vocabulary.DECISION_KINDS)
     assert set(STATUSES) <= _keys(vocabulary.PLAN_STATES)
-    assert {"accepted", "superseded", "rejected", "duplicate", "missing"} <= _keys(vocabulary.SUBMISSION_STATES)
+    from consensus.workflow.cycles import STATUS_STATES
+
+    assert set(STATUS_STATES) <= _keys(vocabulary.SUBMISSION_STATES)
     assert set(accuracy.MEASURES) <= _keys(vocabulary.MEASURES)
 
 
-def test_the_registry_names_every_source_the_run_combines():
-    from consensus.workflow.run import COMBINED_SOURCES
+def test_the_run_and_intake_take_their_sources_from_the_registry():
+    from consensus.intake import submission
+    from consensus.methods import plan
 
-    assert set(COMBINED_SOURCES) <= {s.key for s in vocabulary.SOURCES}
-    assert set(vocabulary.combined_sources()) >= set(COMBINED_SOURCES)
+    # No private copies: the run combines, and intake accepts, what the registry says.
+    assert plan.combined_sources is vocabulary.combined_sources
+    assert submission.submitted_sources is vocabulary.submitted_sources
+    assert set(vocabulary.combined_sources()) == {"statistical", "sales", "marketing", "dc"}
 
 
 @pytest.mark.parametrize("name", list(REGISTRIES))
@@ -132,11 +137,12 @@ def test_days_late_in_words(days, expected):
 
 
 def test_submission_states_in_words():
-    assert vocabulary.describe_submission_state("accepted") == "Received"
-    assert vocabulary.describe_submission_state("accepted", days_late=2) == "Received 2 days late"
-    assert vocabulary.describe_submission_state("late") == "Received late"
-    assert vocabulary.describe_submission_state("missing", days_late=3) == "Missing, 3 days late"
-    assert vocabulary.describe_submission_state("missing") == "Missing"
+    assert vocabulary.describe_submission_state("received") == "Received"
+    assert vocabulary.describe_submission_state("received", days_late=2) == "Received 2 days late"
+    assert vocabulary.describe_submission_state("partly_received", days_late=1) == "Partly received 1 day late"
+    assert vocabulary.describe_submission_state("not_received") == "Missing"
+    assert vocabulary.describe_submission_state("not_received", days_late=3) == "Missing, 3 days late"
+    assert vocabulary.describe_submission_state("replaced") == "Replaced by a later file"
 
 
 def test_exception_counts_and_rules_carry_units_and_numbers():
@@ -164,16 +170,21 @@ def test_value_added_walks_back_to_a_baseline_that_is_present():
 # --------------------------------------------------------------------------- inputs as the store gathers them
 
 
+#: A run note of the kind the first wave printed on every methods page (the sample company's backtest figures).
+SAMPLE_BACKTEST_NOTE = ("bottom_up is the default. Backtest on the demo (bench/bench_backtest.py): bottom_up 21.10 / "
+                        "8.23 / 7.66 / 4.67, mint_shrink 21.16 / 7.99 / 7.26 / 4.35")
+
+
 def store_shaped_inputs():
     """The example reshaped as workflow.meeting_pack gathers a cycle today: raw ids wherever the store has them."""
     base = example_pack_inputs()
     submissions = base.submissions.copy()
-    submissions["status"] = "accepted"
+    submissions["status"] = "received"
     submissions["scope"] = ["all", "all", "region North", "region South"]
     submissions.loc[len(submissions)] = {
         "source": "statistical", "scope": "all", "filename": "statistical-2027-03.csv (computed)",
         "sha256": "ab" * 32, "submitted_by": "consensus", "submitted_at": pd.Timestamp("2027-04-05 07:00"),
-        "status": "accepted", "rows": 9999}
+        "status": "received", "rows": 9999}
     weights = base.weights.copy()
     weights["basis"] = np.where(weights["n_cycles"] < 10, "all", np.where(weights["n_cycles"] < 7, "equal",
                                                                            "segment"))
@@ -181,15 +192,13 @@ def store_shaped_inputs():
     decisions = base.decisions.copy()
     decisions["scope"] = ["item " + decisions["scope"][0], "family " + decisions["scope"][1] + " × region North",
                           "family " + decisions["scope"][1]]
-    decisions["change"] = decisions["kind"] + " " + decisions["amount"].map("{:+,.0f}".format)
-    coverage = pd.DataFrame({"level": ["80%", "95%"], "nominal": [0.8, 0.95], "coverage": [0.89, 0.97],
-                             "winkler": [125.8, 269.2], "n": [4000, 4000]})
-    from consensus.workflow.reconciliation import DEFAULT_CHOICE_NOTE
-
+    decisions["change"] = [vocabulary.describe_change(k, a) for k, a in zip(decisions["kind"], decisions["amount"])]
+    coverage = pd.DataFrame({"level": ["item", "item"], "lag_bucket": ["all", "all"], "nominal": [0.8, 0.95],
+                             "coverage": [0.89, 0.97], "winkler": [125.8, 269.2], "n": [4000, 4000]})
     notes = {
         "weights": "Scheme shrunk_mse, per family and lag bucket, from the last 12 cycles",
         "errors": "MAPE leaves out months with zero actual demand (counted in the scorecard as n_zero_actual).",
-        "reconciliation": "bottom_up: the plan is made at item × location × month. " + DEFAULT_CHOICE_NOTE,
+        "reconciliation": "bottom_up: the plan is made at item × location × month. " + SAMPLE_BACKTEST_NOTE,
     }
     return dataclasses.replace(
         base, submissions=submissions, missing=pd.DataFrame({"source": ["dc"], "scope": ["location DC-W1"]}),
@@ -274,7 +283,7 @@ def all_labels() -> set[str]:
 PLAIN_WORDS = {
     "sales", "marketing", "statistical", "consensus", "item", "family", "region", "total", "smooth", "erratic",
     "intermittent", "lumpy", "set", "delta", "equal", "best", "all", "segment", "late", "missing", "accepted",
-    "rejected", "superseded", "covered", "duplicate", "draft", "open", "published", "disagreement", "tracking",
+    "rejected", "received", "replaced", "unchanged", "draft", "open", "published", "disagreement", "tracking",
     "change", "band", "empirical", "n", "bias",
 }
 
@@ -392,11 +401,9 @@ def methods_section(html: str) -> str:
 
 def test_methods_page_prints_no_run_notes_paths_or_sample_figures():
     html = methods_section(build_html(store_shaped_inputs()))
-    from consensus.workflow.reconciliation import DEFAULT_CHOICE_NOTE
-
     text = " ".join(read_page(html).text)
     assert "bench" not in text and "21.10" not in text and "mint_shrink" not in text
-    assert DEFAULT_CHOICE_NOTE[:40] not in text and "Scheme shrunk_mse" not in text
+    assert SAMPLE_BACKTEST_NOTE[:40] not in text and "Scheme shrunk_mse" not in text
     assert "did not record" in text  # settings the run did not pass are said to be unknown, not guessed
 
 

@@ -135,7 +135,8 @@ def test_family_decision_spreads_to_items_by_the_consensus_mix(demo_url):
     scope = (cells["family"] == "SPRINKLERS") & (cells["region"] == "NORTH") & (cells["period"] == "2027-04")
     touched = cells[scope & (cells["before_override"] > 0)]
     assert len(touched) > 1
-    np.testing.assert_allclose(touched["consensus"] / touched["before_override"], 1.08, rtol=0, atol=2e-5 / 1)
+    # the plan is stated to a thousandth of a unit, so each cell is within half of one of 1.08 × its number
+    np.testing.assert_allclose(touched["consensus"], touched["before_override"] * 1.08, rtol=0, atol=5e-4)
     assert cells.loc[~scope & (cells["item"] != "TM-HUB-4"), "before_override"].isna().all()
 
 

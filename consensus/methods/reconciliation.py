@@ -50,8 +50,8 @@ is kept as ``before_reconciliation`` with ``reconciliation_adjustment`` =
 reconciled − combined and a per-cell ``reconciliation_note``, so each number
 still reads as "contributions of the sources + the reconciliation's move".
 
-The default method was chosen by backtest on the demo (bench/bench_backtest.py);
-:data:`DEFAULT_CHOICE_NOTE` states what it measured.
+The default method is chosen by backtest (bench/bench_backtest.py); the
+figures are in the closing notes of the issues that set it, not in the run.
 """
 
 from __future__ import annotations
@@ -69,18 +69,6 @@ from consensus.methods.weights import WeightSpec, assign_segments, estimate_weig
 
 RECONCILIATION_METHODS = ("bottom_up", "top_down_hist_avg", "top_down_prop_avg", "mint_shrink")
 DEFAULT_RECONCILIATION = "bottom_up"
-#: What the backtest of bench/bench_backtest.py measured, stated in every run's notes.
-DEFAULT_CHOICE_NOTE = (
-    "bottom_up is the default. Backtest on the demo (bench/bench_backtest.py: the 12 past cycles run in order"
-    " with each method, every lag scored against the orders that came in), consensus WAPE % at item × "
-    "location / family × region / family / total: bottom_up 21.10 / 8.23 / 7.66 / 4.67, mint_shrink 21.16 / "
-    "7.99 / 7.26 / 4.35, top_down_hist_avg 29.36 / 24.83 / 21.78 / 4.67, top_down_prop_avg 28.18 / 23.41 / "
-    "20.65 / 4.67. MinT shrink is better on the totals (paired per cycle: −0.31 ± 0.16 points at family × "
-    "region, −0.60 ± 0.24 at total) but worse at item × location, the grain that is published and exploded "
-    "(+0.14 ± 0.06 points, worse in 7 of the 9 cycles where the two differ); top-down loses everywhere below "
-    "the total. bottom_up wins where the plan is used and keeps every number an exact weighted sum of the "
-    "sources; choose mint_shrink when family and total accuracy matter more."
-)
 CELL = ["item", "location", "period"]
 NODE_FRAME_COLUMNS = ["level", "family", "region", "item", "location", "period", "base", "reconciled"]
 ADJUSTMENT_COLUMNS = ["item", "location", "period", "before_reconciliation", "reconciliation_adjustment",
@@ -140,7 +128,7 @@ def reconcile_hierarchy(table: pd.DataFrame, current: pd.DataFrame, errors: pd.D
     if not isinstance(history_months, (int, np.integer)) or history_months < 1:
         raise InvalidSpec(f"history_months must be a whole number ≥ 1, got {history_months!r}")
     table = table.reset_index(drop=True)
-    notes: dict = {"method": method, "default": DEFAULT_RECONCILIATION, "why_default": DEFAULT_CHOICE_NOTE}
+    notes: dict = {"method": method, "default": DEFAULT_RECONCILIATION}
     bottom_keys = table[["item", "location"]].drop_duplicates().sort_values(["item", "location"], kind="mergesort")
     S, node_labels = hierarchy.summing_matrix(bottom_keys, items=items, locations=locations)
     months = sorted(table["period"].astype(str).unique())

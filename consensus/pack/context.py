@@ -271,6 +271,13 @@ def build_pack_context(
         "last_plan_month": plan_months[-1],
         "quantity_unit": inputs.quantity_unit,
         "currency": inputs.currency,
+        "revision": int(inputs.revision),
+        "reopened_by": inputs.reopened_by,
+        "reopen_reason": inputs.reopen_reason,
+        "published_by": inputs.published_by,
+        "published_at": _format_when(inputs.published_at) if inputs.published_at is not None else None,
+        "run_id": inputs.run_id,
+        "record_fingerprint": (inputs.record_fingerprint or "")[:16],
         "n_families": len(family_order),
         "n_items": int(items["item"].nunique()),
         "n_locations": int(locations["location"].nunique()),
@@ -308,10 +315,9 @@ def build_pack_context(
 def _due_date(inputs: PackInputs) -> str | None:
     """The cycle's due date for submissions as "YYYY-MM-DD", when the store records one.
 
-    PackInputs gains ``due_date`` with the store's due dates; until then
-    there is none, and the pack promises no lateness check.
+    Without one the pack promises no lateness check.
     """
-    due = getattr(inputs, "due_date", None)
+    due = inputs.due_date
     if due is None or (not isinstance(due, str) and pd.isna(due)):
         return None
     return pd.Timestamp(due).strftime("%Y-%m-%d")
@@ -337,7 +343,7 @@ def _submission_rows(submissions: pd.DataFrame) -> list[dict]:
     frame = frame.sort_values(["_order", "source", "scope"], kind="stable")
     days = _days_late(frame)
     status = frame["status"].astype(str).str.lower()
-    frame["is_late"] = status.eq("late") | days.gt(0)
+    frame["is_late"] = days.gt(0)
     frame["state"] = [vocabulary.describe_submission_state(st, days_late=d) for st, d in zip(status, days)]
     frame["source_label"] = _labels(frame["source"])
     frame["scope_label"] = frame["scope"].map(vocabulary.describe_scope)
@@ -653,7 +659,7 @@ def _exceptions(inputs, cons, sources, items, changes_flagged, *, exception_rows
         ]  # one boolean mask per missing submission: a handful of rows, each vectorised
         missing["source_label"] = _labels(missing["source"])
         missing["scope_label"] = missing["scope"].map(vocabulary.describe_scope)
-        missing["state"] = [vocabulary.describe_submission_state("missing", days_late=d) for d in _days_late(missing)]
+        missing["state"] = [vocabulary.describe_submission_state("not_received", days_late=d) for d in _days_late(missing)]
         who = missing["source_label"] + " for " + missing["scope_label"]
         ranked_parts.append(pd.DataFrame({
             "kind": "missing", "scope": who,

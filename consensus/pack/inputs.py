@@ -94,6 +94,18 @@ class PackInputs:
     disagreement_min_units: float | None = None
     # Level (consensus.vocabulary.LEVELS) at which scorecard_history's WAPE and bias are measured.
     scorecard_history_level: str = "item"
+    # When submissions were due (None: no due date recorded, and the pack promises no lateness check).
+    due_date: str | None = None
+    # Which revision of the cycle this pack shows, and for a reopened cycle who reopened it and why.
+    revision: int = 1
+    reopened_by: str | None = None
+    reopen_reason: str | None = None
+    published_by: str | None = None
+    published_at: datetime | None = None
+    # Where the plan came from: the run, the journal position it read and the journal's chain value then,
+    # so a printed pack can be matched against the store ('consensus verify').
+    run_id: int | None = None
+    record_fingerprint: str | None = None
 
     def __post_init__(self) -> None:
         if self.status not in STATUSES:
@@ -327,13 +339,13 @@ def example_pack_inputs(
     submissions = pd.DataFrame(
         [
             {"source": "sales", "scope": "all", "filename": f"sales_{cycle}.xlsx", "submitted_by": "L. Brandt",
-             "submitted_at": datetime(2027, 4, 2, 17, 12), "status": "accepted", "rows": n_sub["sales"]},
+             "submitted_at": datetime(2027, 4, 2, 17, 12), "status": "received", "rows": n_sub["sales"]},
             {"source": "marketing", "scope": "all", "filename": f"marketing_{cycle}.csv", "submitted_by": "M. Ruiz",
-             "submitted_at": datetime(2027, 4, 4, 8, 55), "status": "late", "rows": n_sub["marketing"]},
+             "submitted_at": datetime(2027, 4, 4, 8, 55), "status": "received", "rows": n_sub["marketing"]},
             {"source": "dc", "scope": "North", "filename": f"dc_north_{cycle}.xlsx", "submitted_by": "P. Nowak",
-             "submitted_at": datetime(2027, 4, 1, 11, 3), "status": "accepted", "rows": n_sub["dc"] // 2},
+             "submitted_at": datetime(2027, 4, 1, 11, 3), "status": "received", "rows": n_sub["dc"] // 2},
             {"source": "dc", "scope": "South", "filename": f"dc_south_{cycle}.xlsx", "submitted_by": "A. Haddad",
-             "submitted_at": datetime(2027, 4, 2, 9, 47), "status": "accepted", "rows": n_sub["dc"] - n_sub["dc"] // 2},
+             "submitted_at": datetime(2027, 4, 2, 9, 47), "status": "received", "rows": n_sub["dc"] - n_sub["dc"] // 2},
         ]
     )
     submissions.insert(3, "sha256", [f"{rng.integers(0, 2**63):016x}" * 4 for _ in range(len(submissions))])

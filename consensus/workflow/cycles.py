@@ -27,6 +27,8 @@ from consensus.store.models import Cycle, CycleRevision, Submission, utcnow
 from consensus.vocabulary import SOURCES
 
 CYCLE_STATES = ("open", "published")
+#: The states ``submission_status`` gives (labels in consensus.vocabulary.SUBMISSION_STATES).
+STATUS_STATES = ("received", "partly_received", "not_received", "replaced", "rejected")
 
 
 def missing_history_months(actuals: pd.DataFrame, cycle: str) -> list[str]:
@@ -175,7 +177,7 @@ def submission_status(cycle: str, *, url=None, through: int | None = None) -> pd
     A scope is answered by the newest accepted file of that source whose
     scope covers it (declared, or the places its rows name); earlier files
     covering it are listed as replaced there.  ``state``: received,
-    partly received (some of the families), not received, replaced, rejected;
+    partly_received (some of the families or places), not_received, replaced, rejected;
     ``days_late`` counts days after the cycle's due date (negative: days left).
     """
     with session_scope(url, write=False) as session:
@@ -208,13 +210,14 @@ def submission_status(cycle: str, *, url=None, through: int | None = None) -> pd
             if covered & wanted:
                 covering.append((s, covered))
         if not covering:
-            rows.append({"source": exp.source, "scope": _scope_text(exp.place, exp.name), "state": "not received"})
+            rows.append({"source": exp.source, "scope": _scope_text(exp.place, exp.name), "state": "not_received"})
             continue
         newest, covered = covering[-1]
         fams = set((newest.scope_detail or {}).get("families", families))
-        partly = (not wanted <= covered) or (families and not families <= fams)
+        is_events = (newest.scope_detail or {}).get("place") == "events"  # events name what they touch, no more
+        partly = (not wanted <= covered) or (not is_events and families and not families <= fams)
         rows.append({"source": exp.source, "scope": _scope_text(exp.place, exp.name),
-                     "state": "partly received" if partly else "received", "id": int(newest.id),
+                     "state": "partly_received" if partly else "received", "id": int(newest.id),
                      "filename": newest.filename, "submitted_by": newest.submitted_by,
                      "submitted_at": newest.submitted_at, "row_count": int(newest.row_count), "late": bool(newest.late),
                      "file_scope": newest.scope})

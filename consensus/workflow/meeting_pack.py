@@ -20,7 +20,7 @@ from consensus.pack.render import render_pack
 from consensus.store import frames
 from consensus.store.db import session_scope
 from consensus.store.models import CycleRevision, Setting, utcnow
-from consensus.vocabulary import combined_sources, source_label
+from consensus.vocabulary import describe_change, value_added_order
 from consensus.workflow.cycles import get_cycle, submission_status
 from consensus.workflow.decisions import load_decisions
 from consensus.workflow.inputs import run_parts
@@ -59,13 +59,24 @@ def _sources_long(cells: pd.DataFrame) -> pd.DataFrame:
     return pd.concat(parts, ignore_index=True)[["source", "item", "location", "period", "quantity"]]
 
 
-def _submissions(status: pd.DataFrame) -> pd.DataFrame:
-    received = status[status["state"].isin(["received", "partly received"])]
+def _submissions(status: pd.DataFrame, shas: dict[int, str]) -> pd.DataFrame:
+    """The files the run used, one row per expected scope they answer for (states as ``consensus status`` gives)."""
+    received = status[status["state"].isin(["received", "partly_received"])]
     frame = pd.DataFrame({"source": received["source"], "scope": received["scope"],
-                          "filename": received["filename"], "sha256": "", "submitted_by": received["submitted_by"],
-                          "submitted_at": received["submitted_at"].astype(str).str.slice(0, 16),
-                          "status": received["state"], "rows": received["row_count"]})
+                          "filename": received["filename"],
+                          "sha256": received["id"].map(lambda i: shas.get(int(i), "")),
+                          "submitted_by": received["submitted_by"],
+                          "submitted_at": pd.to_datetime(received["submitted_at"]), "status": received["state"],
+                          "rows": received["row_count"], "days_late": received["days_late"]})
     return frame.drop_duplicates(["source", "scope", "filename"]).reset_index(drop=True)
+
+
+def _fva(fva: pd.DataFrame) -> pd.DataFrame:
+    """Value added by step, keyed by source, in the order each step builds on the one before."""
+    if fva.empty:
+        return empty_frame("fva")
+    order = value_added_order(fva["step"].tolist())
+    return fva.set_index("step").reindex(order).reset_index()[["step", "wape", "n"]]
 
 
 def gather_pack_inputs(cycle: str, *, revision: int | None = None, url=None) -> PackInputs:
@@ -74,6 +85,9 @@ def gather_pack_inputs(cycle: str, *, revision: int | None = None, url=None) -> 
         c = get_cycle(session, cycle)
         run = latest_run(session, cycle, revision=revision)
         seq = run.through_seq
+        revision_row = session.get(CycleRevision, (cycle, run.revision))
+        shas = {r["id"]: r["sha256"] for r in run.inputs}
+        fingerprint = _chain_at(session, seq)
         items = frames.load_items(session, through=seq)
         locations = frames.load_locations(session, through=seq)
         actuals = frames.load_actuals(session, through=seq, period_through=cycle)
@@ -84,12 +98,12 @@ def gather_pack_inputs(cycle: str, *, revision: int | None = None, url=None) -> 
         company = company_name(session)
         horizon = c.horizon
     status = submission_status(cycle, url=url, through=seq)
-    missing = status.loc[status["state"] == "not received", ["source", "scope"]].reset_index(drop=True)
+    missing = status.loc[status["state"] == "not_received", ["source", "scope", "days_late"]].reset_index(drop=True)
     flagged = consensus[consensus["flagged"].astype(bool)].merge(items[["item", "family"]], on="item")
     active = decisions[decisions["withdrawn_at"].isna()] if len(decisions) else decisions
     if len(active):
         active = active.assign(scope=decision_scope(active),
-                               change=active["kind"] + " " + active["amount"].map("{:+,.0f}".format),
+                               change=[describe_change(k, a) for k, a in zip(active["kind"], active["amount"])],
                                at=active["at"].astype(str).str.slice(0, 16))
     accuracy = parts.get("accuracy", pd.DataFrame())
     card = accuracy[accuracy["level"].isin(["item", "family_region", "family", "total"])] if len(accuracy) else \
@@ -97,52 +111,44 @@ def gather_pack_inputs(cycle: str, *, revision: int | None = None, url=None) -> 
     history = parts.get("accuracy_history", pd.DataFrame())
     history = history[history["level"] == "item"][["source", "cycle", "wape", "bias_pct"]] if len(history) else \
         empty_frame("scorecard_history")
-    fva = parts.get("fva", pd.DataFrame(columns=["step", "wape", "n"]))
-    fva = fva.assign(source=fva["step"], step=fva["step"].map(source_label))
+    fva = _fva(parts.get("fva", pd.DataFrame(columns=["step", "wape", "n"])))
     coverage = parts.get("band_coverage", pd.DataFrame())
-    if len(coverage):
-        coverage = coverage[(coverage["level"] == "item") & (coverage["lag_bucket"] == "all")]
-        coverage = coverage.assign(level=(100 * coverage["nominal"]).round().astype(int).astype(str) + "%")
-    else:
-        coverage = empty_frame("band_coverage")
+    coverage = coverage[coverage["lag_bucket"] == "all"] if len(coverage) else empty_frame("band_coverage")
     series = parts.get("series", pd.DataFrame())
     spec = RunSpec.from_dict(run.spec)
     known = actuals
-    notes = _method_notes(spec, run.notes)
     return PackInputs(
         company=company, cycle=cycle, status="published" if run.status == "published" else "draft",
         generated_at=utcnow(), horizon=horizon,
         last_actual_month=known["period"].max() if len(known) else cycle,
-        submissions=_submissions(status), missing=missing, items=items[["item", "family", "unit_price"]],
+        submissions=_submissions(status, shas), missing=missing, items=items[["item", "family", "unit_price"]],
         locations=locations[["location", "region"]], actuals=known, sources=_sources_long(consensus),
         consensus=consensus, previous=previous, weights=parts.get("weights", empty_frame("weights")),
         scorecard=card.drop(columns=[], errors="ignore"), scorecard_history=history,
         disagreement=flagged[["item", "location", "period", "family", "spread", "spread_ratio", "flagged"]],
-        fva=fva[["step", "wape", "n", "source"]], decisions=active if len(active) else empty_frame("decisions"),
-        components=parts.get("components", empty_frame("components")), method_notes=notes,
-        band_coverage=coverage,
+        fva=fva, decisions=active if len(active) else empty_frame("decisions"),
+        components=parts.get("components", empty_frame("components")), band_coverage=coverage,
         series=series.reindex(columns=list(empty_frame("series").columns)) if len(series) else empty_frame("series"),
+        weight_scheme=spec.weights.scheme, weight_segment=spec.weights.segment,
+        weight_window_cycles=spec.weights.window_cycles, reconciliation_method=spec.reconciliation,
+        disagreement_threshold=spec.weights.disagreement_threshold,
+        disagreement_min_units=spec.weights.disagreement_min_units,
+        due_date=c.due.isoformat() if c.due else None, revision=run.revision,
+        reopened_by=revision_row.opened_by if run.revision > 1 else None,
+        reopen_reason=revision_row.reason if run.revision > 1 else None,
+        published_by=revision_row.published_by if run.status == "published" else None,
+        published_at=revision_row.published_at if run.status == "published" else None,
+        run_id=run.id, record_fingerprint=fingerprint,
     )
 
 
-def _method_notes(spec: RunSpec, notes: dict) -> dict[str, str]:
-    """Plain-words notes on the methods of this run (no figures but this store's own)."""
-    combined = ", ".join(source_label(s) for s in combined_sources())
-    return {
-        "How the sources are weighed": (
-            f"Each source ({combined}) is weighed by its own past accuracy, per product family and forecast lag, "
-            f"over the last {spec.weights.window_cycles} cycles: a source's weight grows with the inverse of its "
-            "mean squared error (Bates & Granger, 1969) and is shrunk toward equal weights while its record is "
-            "short, because estimated weights are noisy (Stock & Watson, 2004). A source missing from a cell has "
-            "its weight shared among those present."),
-        "How errors are read": (
-            "Error = actual orders − forecast, so a negative bias or tracking signal means a source forecast too "
-            "high. Percentage errors leave out months with no orders."),
-        "How the bands are made": (
-            "Each band comes from the spread of past errors at the same forecast lag, scaled to the forecast "
-            "(Williams & Goodman, 1971); with too little history, from the mean absolute error with the normal "
-            "approximation."),
-    }
+def _chain_at(session, seq: int) -> str:
+    """The journal's chain value at a position: the fingerprint of every record up to it."""
+    from consensus.store.models import JournalEntry
+
+    j = JournalEntry.__table__
+    row = session.execute(select(j.c.chain).where(j.c.seq <= seq).order_by(j.c.seq.desc()).limit(1)).first()
+    return row.chain if row else ""
 
 
 def write_pack(cycle: str, *, pdf_path: Path | str, html_path: Path | str | None = None, revision: int | None = None,
