@@ -46,6 +46,8 @@ UPPER_LEVELS: dict[str, tuple[str, str]] = {
 }
 BUCKETS = tuple(label for label, _, _ in DEFAULT_LAG_BUCKETS)
 BAND_SOURCES = ("consensus", "statistical")
+#: Longest DC lead time whose forecasts are kept for order amplification (months).
+MAX_LEAD_TIME_MONTHS = 3
 MIN_OWN_BAND_ERRORS = 30
 #: Steps of forecast value added, from the yardstick to the plan.
 FVA_STEPS = ("naive", "statistical_base", "statistical", "dc", "sales", "marketing", "consensus")
@@ -136,6 +138,7 @@ class HistoryLedger:
     _history: list = field(default_factory=list)
     _cells: list = field(default_factory=list)
     _coverage: list = field(default_factory=list)
+    _dc: list = field(default_factory=list)
 
     def __post_init__(self) -> None:
         keys = self.book.keys
@@ -165,6 +168,10 @@ class HistoryLedger:
         """
         book = self.book
         c_index = periods.month_index(name)
+        near = forecasts[(forecasts["source"] == "dc")]
+        near_lag = month_indexes_factorized(near["period"]) - c_index
+        self._dc.append(near.loc[(near_lag >= 1) & (near_lag <= MAX_LEAD_TIME_MONTHS),
+                                 ["item", "location", "period", "quantity"]].assign(cycle=name))
         frame = forecasts[forecasts["source"].isin(self.sources)]
         sid = book.index.get_indexer(pd.MultiIndex.from_frame(frame[["item", "location"]].astype(object)))
         month = month_indexes_factorized(frame["period"])
@@ -375,7 +382,9 @@ class HistoryLedger:
                 pd.DataFrame(columns=["source", "sum_abs", "sum_err", "sum_actual", "cycle"])),
             coverage=(pd.concat(self._coverage, ignore_index=True) if self._coverage else
                       pd.DataFrame(columns=["level", "lag_bucket", "nominal", "hit", "winkler", "n"])),
-            cell_errors=cells)
+            cell_errors=cells,
+            dc_forecasts=(pd.concat(self._dc, ignore_index=True) if self._dc else
+                          pd.DataFrame(columns=["item", "location", "period", "quantity", "cycle"])))
 
 
 @dataclass(frozen=True)
@@ -393,6 +402,7 @@ class HistorySummary:
     history: pd.DataFrame  # [source, cycle, sum_abs, sum_err, sum_actual]
     coverage: pd.DataFrame  # [level, lag_bucket, nominal, hit, winkler, n]
     cell_errors: pd.DataFrame | None = None  # forecast_errors' table, only when a reconciliation needs it
+    dc_forecasts: pd.DataFrame | None = None  # [item, location, period, quantity, cycle]: DCs' near forecasts
 
     def weight_sums(self) -> pd.DataFrame:
         """[segment, lag_bucket, source, cycle, n, sum_abs, sum_sq, sum_err] for the weights."""
@@ -410,6 +420,8 @@ class HistorySummary:
                "band_source": pd.DataFrame({"source": [self.band_source]})}
         if self.cell_errors is not None:
             out["cell_errors"] = self.cell_errors
+        if self.dc_forecasts is not None:
+            out["dc_forecasts"] = self.dc_forecasts
         return out
 
     @classmethod
@@ -418,4 +430,5 @@ class HistorySummary:
                    node_errors=frames["node_errors"], cell_signals=frames["cell_signals"],
                    band_table=frames["band_table"], band_source=str(frames["band_source"]["source"].iloc[0]),
                    fva=frames["fva"], uplift=frames["uplift"], history=frames["history"],
-                   coverage=frames["coverage"], cell_errors=frames.get("cell_errors"))
+                   coverage=frames["coverage"], cell_errors=frames.get("cell_errors"),
+                   dc_forecasts=frames.get("dc_forecasts"))

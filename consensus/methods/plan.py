@@ -491,12 +491,35 @@ def _compute(ctx: _Context) -> PlanResult:
              "band_table": summary.band_table}
     parts.update(scoring.scorecards(summary, items=inputs.items, locations=inputs.locations,
                                     actuals=ctx.history.known_at(cycle.name)))
+    parts["amplification"] = _amplification(summary, current, cycle, ctx.history, inputs.locations)
     notes = {"warnings": list(dict.fromkeys(ctx.warnings)), "decisions_applied": applied,
              "reconciliation": reconciled.notes, "statistical_made": ctx.made, "band_source": summary.band_source,
              "unknown_months": list(inputs.unknown_months), "method_version": METHOD_VERSION}
     summary_line = {"cells": int(len(cells)), "total": float(cells["consensus"].sum()), "sources": present,
                     "flagged": int(cells["flagged"].sum())}
     return PlanResult(parts=parts, notes=notes, summary=summary_line)
+
+
+#: Fewest months of implied orders an item × DC needs before its variance counts (a stated choice: a
+#: variance from fewer months says little; the measure's own default asks for a year).
+AMPLIFICATION_MIN_MONTHS = 6
+
+
+def _amplification(summary: hist.HistorySummary, current: pd.DataFrame, cycle: CycleInputs, history: _History,
+                   locations: pd.DataFrame) -> pd.DataFrame:
+    """Order amplification by DC from the DCs' own successive forecasts (see consensus.methods.amplification)."""
+    from consensus.methods.amplification import measure_amplification
+
+    past = summary.dc_forecasts if summary.dc_forecasts is not None else pd.DataFrame()
+    now = current[(current["source"] == "dc") & (current["lag"] <= hist.MAX_LEAD_TIME_MONTHS)]
+    dc = pd.concat([past, now[["item", "location", "period", "quantity"]].assign(cycle=cycle.name)],
+                   ignore_index=True)
+    if dc.empty:
+        return pd.DataFrame(columns=["location", "ratio", "bound", "flagged", "explanation"])
+    dc = dc.assign(lag=periods.lags(dc["cycle"], dc["period"]))
+    known = history.known_at(cycle.name)
+    return measure_amplification(dc, known[known["quantity"].notna()], locations=locations,
+                                 min_months=AMPLIFICATION_MIN_MONTHS)
 
 
 def _no_errors() -> pd.DataFrame:
