@@ -266,7 +266,8 @@ def _seasonal_groups(real: np.ndarray, codes: np.ndarray, n_groups: int, *, min_
 
 def historical_mix(actuals: pd.DataFrame, *, items: pd.DataFrame, locations: pd.DataFrame, cycle: str,
                    window_months: int = 12, seasonal: bool = True, pairs: pd.DataFrame | None = None,
-                   min_seasonal_shift: float = MIN_SEASONAL_SHIFT) -> pd.DataFrame:
+                   min_seasonal_shift: float = MIN_SEASONAL_SHIFT,
+                   levels: tuple[tuple[str, str], ...] | None = None) -> pd.DataFrame:
     """Each item × location pair's share of every group it belongs to, from trailing actuals.
 
     share(pair, group) = q(pair) / Σ_{pairs in group} q, with q the pair's
@@ -287,11 +288,16 @@ def historical_mix(actuals: pd.DataFrame, *, items: pd.DataFrame, locations: pd.
     item at that location (falling back to the family's average anywhere, then
     to the average pair), flagged ``imputed`` and named in a warning.
 
+    ``levels`` limits the mix to those (item side, location side) levels (all
+    of :data:`MIX_LEVELS` by default): a split needs only the levels its rows
+    are given at, and each level's shares do not depend on the others.
+
     Returns [level, group_item, group_location, item, location, month_of_year,
     share, basis, imputed]; ``group_item``/``group_location`` hold the item,
     family, location or region name, or "all".  Warnings are in
     ``result.attrs["warnings"]`` (a list of strings), not printed.
     """
+    wanted = MIX_LEVELS if levels is None else tuple(level for level in MIX_LEVELS if level in set(levels))
     _check_masters(items, locations)
     if not isinstance(window_months, (int, np.integer)) or window_months < 1:
         raise InvalidSpec(f"window_months must be a positive whole number of months, got {window_months!r}")
@@ -332,7 +338,7 @@ def historical_mix(actuals: pd.DataFrame, *, items: pd.DataFrame, locations: pd.
     imputed_text = "; no actuals for this item × location in the window, given its family's average"
     frames, warnings = [], []
     imputed = ~grain["has_history"].to_numpy()
-    for item_side, location_side in MIX_LEVELS:
+    for item_side, location_side in wanted:
         group_item, group_location = _side_keys(grain, item_side, location_side)
         codes, uniques = pd.MultiIndex.from_arrays([group_item, group_location]).factorize()
         n_groups = len(uniques)
@@ -365,6 +371,10 @@ def historical_mix(actuals: pd.DataFrame, *, items: pd.DataFrame, locations: pd.
             names = describe.iloc[np.unique(np.flatnonzero(empty_flat[codes, 0]))].unique()
             warnings += [f"{name}: no actuals in the {window_months} months to {cycle}; split equally"
                          for name in names]
+    if not frames:
+        mix = pd.DataFrame({c: pd.Series(dtype=object) for c in MIX_COLUMNS})
+        mix.attrs["warnings"] = []
+        return mix
     mix = pd.concat(frames, ignore_index=True)
     mix["basis"] = mix["basis"].where(~mix["imputed"], mix["basis"] + imputed_text)
     mix["basis"] = mix["basis"].where(~mix["_empty"], mix["basis"] + "; no actuals in the group, equal shares")
@@ -394,10 +404,23 @@ def _shares(weights: np.ndarray, codes: np.ndarray, n_groups: int) -> tuple[np.n
 # ---------------------------------------------------------------------------
 
 def _present(rows: pd.DataFrame, column: str) -> np.ndarray:
+    """Rows that name ``column`` (a missing value or an empty text cell does not)."""
     if column not in rows.columns:
         return np.zeros(len(rows), dtype=bool)
-    values = rows[column]
-    return (values.notna() & (values.astype("string").str.strip() != "")).fillna(False).to_numpy(dtype=bool)
+    values = rows[column].to_numpy(dtype=object)
+    present = pd.notna(values)
+    present[present] = values[present] != ""  # intake strips every cell, so an empty one is exactly ""
+    return present
+
+
+def levels_of(rows: pd.DataFrame) -> tuple[tuple[str, str], ...]:
+    """The mix levels (item side, location side) that rows at any grain are given at, planning grain left out."""
+    has_item, has_family = _present(rows, "item"), _present(rows, "family")
+    has_location, has_region = _present(rows, "location"), _present(rows, "region")
+    item_side = np.where(has_item, "item", np.where(has_family, "family", ALL))
+    location_side = np.where(has_location, "location", np.where(has_region, "region", ALL))
+    pairs = set(zip(item_side.tolist(), location_side.tolist())) if len(rows) else set()
+    return tuple(level for level in MIX_LEVELS if level in pairs)
 
 
 def _resolve_groups(rows: pd.DataFrame, *, items: pd.DataFrame, locations: pd.DataFrame | None) -> pd.DataFrame:

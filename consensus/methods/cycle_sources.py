@@ -68,13 +68,16 @@ def _for_columns(lines: pd.DataFrame) -> pd.DataFrame:
 
 
 def align_submissions(lines: pd.DataFrame, *, cycle: str, items: pd.DataFrame, locations: pd.DataFrame,
-                      mix: pd.DataFrame, with_traces: bool = False) -> tuple[pd.DataFrame, list[str], pd.DataFrame | None]:
+                      mix, with_traces: bool = False) -> tuple[pd.DataFrame, list[str], pd.DataFrame | None]:
     """Every submission's rows at planning grain, kept apart by ``seq``: [seq, source, item, location, period, quantity].
 
     ``lines``: the checked lines of the cycle's submissions with ``seq``,
     ``submission_id`` and ``source``; rows outside the cycle's months (60
     ahead) are left out.  A submission's rows that reach the same cell are
-    summed (a file may give a family row and an item row of it).
+    summed (a file may give a family row and an item row of it).  ``mix``:
+    the historical mix (:func:`consensus.methods.alignment.historical_mix`),
+    or a function giving it for the levels the rows need; rows given at item
+    × location × month in units need none and are taken as they are.
     """
     empty = pd.DataFrame({c: pd.Series(dtype=float if c == "quantity" else object)
                           for c in ["seq", *ALIGNED_COLUMNS]})
@@ -82,29 +85,54 @@ def align_submissions(lines: pd.DataFrame, *, cycle: str, items: pd.DataFrame, l
         return empty, [], None
     rows = _for_columns(lines).reset_index(drop=True)
     rows["row_id"] = np.arange(len(rows))
-    weekly = rows["week"].notna()
-    monthly = rows.loc[~weekly].assign(week_share=1.0)
-    if weekly.any():
-        spread = alignment.spread_weeks(rows.loc[weekly].drop(columns=["period"]))
-        monthly = pd.concat([monthly, spread], ignore_index=True)
-    in_value = monthly["quantity"].isna() & monthly["value"].notna()
-    if in_value.any():
-        converted = alignment.value_to_units(monthly.loc[in_value], items=items, mix=mix)
-        monthly = pd.concat([monthly.loc[~in_value], converted], ignore_index=True)
     horizon = set(periods.horizon_months(cycle, 60))
-    monthly = monthly[monthly["period"].isin(horizon)]
-    split, warnings = alignment.split_to_grain(
-        monthly[["row_id", "item", "family", "location", "region", "period", "quantity", "week_share"]],
-        mix=mix, items=items, locations=locations)
-    origin = rows.set_index("row_id")[["seq", "source", "submission_id", "row"]]
-    traced = split.join(origin, on="row_id")
-    traced["share"] = traced["share"] * traced["week_share"].fillna(1.0)
-    aligned = traced.groupby(["seq", "source", "item", "location", "period"], as_index=False, sort=True)[
-        "quantity"].sum()
+    direct = (rows["item"].notna() & rows["location"].notna() & rows["period"].notna() & rows["week"].isna()
+              & rows["quantity"].notna()).to_numpy()
+    parts, warnings, traced_parts = [], [], []
+    at_grain = rows.loc[direct & rows["period"].isin(horizon).to_numpy()]
+    if len(at_grain):
+        parts.append(at_grain[["seq", "source", "item", "location", "period", "quantity"]])
+        if with_traces:
+            traced_parts.append(at_grain.assign(share=1.0, share_basis="given at item × location"))
+    rest = rows.loc[~direct]
+    mixed_seqs: set = set()
+    if len(rest):
+        weekly = rest["week"].notna()
+        monthly = rest.loc[~weekly].assign(week_share=1.0)
+        if weekly.any():
+            spread = alignment.spread_weeks(rest.loc[weekly].drop(columns=["period"]))
+            monthly = pd.concat([monthly, spread], ignore_index=True)
+        monthly = monthly[monthly["period"].isin(horizon)]
+        in_value = (monthly["quantity"].isna() & monthly["value"].notna()).to_numpy()
+        needed = alignment.levels_of(monthly)
+        the_mix = mix(needed) if callable(mix) else mix
+        if in_value.any():
+            converted = alignment.value_to_units(monthly.loc[in_value], items=items, mix=the_mix)
+            monthly = pd.concat([monthly.loc[~in_value], converted], ignore_index=True)
+        split, split_warnings = alignment.split_to_grain(
+            monthly[["row_id", "item", "family", "location", "region", "period", "quantity", "week_share"]],
+            mix=the_mix, items=items, locations=locations)
+        warnings += split_warnings
+        origin = rows.set_index("row_id")[["seq", "source", "submission_id", "row"]]
+        traced = split.join(origin, on="row_id")
+        traced["share"] = traced["share"] * traced["week_share"].fillna(1.0)
+        grouped = traced.groupby(["seq", "source", "item", "location", "period"], as_index=False, sort=False)[
+            "quantity"].sum()
+        parts.append(grouped)
+        mixed_seqs = set(grouped["seq"]) & set(at_grain["seq"])
+        if with_traces:
+            traced_parts.append(traced)
+    aligned = pd.concat(parts, ignore_index=True) if parts else empty
+    if mixed_seqs:  # a file that gives both item rows and group rows of the same cells: its parts add up
+        mixed = aligned["seq"].isin(mixed_seqs)
+        summed = aligned[mixed].groupby(["seq", "source", "item", "location", "period"], as_index=False,
+                                        sort=False)["quantity"].sum()
+        aligned = pd.concat([aligned[~mixed], summed], ignore_index=True)
     traces = None
     if with_traces:
         described = describe_rows(rows).rename("submitted")
-        traces = traced.join(described, on="row_id")[TRACE_COLUMNS].reset_index(drop=True)
+        traces = pd.concat(traced_parts, ignore_index=True).join(described, on="row_id")[TRACE_COLUMNS]
+        traces = traces.reset_index(drop=True)
     return aligned[["seq", *ALIGNED_COLUMNS]], list(warnings), traces
 
 

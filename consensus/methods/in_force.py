@@ -31,6 +31,19 @@ from consensus.errors import InvalidSpec
 ORDER = "seq"
 
 
+def _key_codes(frames: list[pd.DataFrame], keys: list[str]) -> list[np.ndarray]:
+    """One integer per distinct key, shared across ``frames`` (each key column factorised once over all)."""
+    lengths = [len(f) for f in frames]
+    combined = np.zeros(sum(lengths), dtype=np.int64)
+    for column in keys:
+        values = np.concatenate([f[column].to_numpy(dtype=object) for f in frames]) if frames else np.array([])
+        codes, uniques = pd.factorize(values, use_na_sentinel=False)
+        combined = combined * (len(uniques) + 1) + codes
+        if len(uniques) and combined.max(initial=0) > 2 ** 62:  # keep the product of sizes in range
+            combined = pd.factorize(combined)[0].astype(np.int64)
+    return np.split(combined, np.cumsum(lengths)[:-1])
+
+
 def newest_covering(covered: pd.DataFrame, *, keys: list[str], order: str = ORDER) -> pd.DataFrame:
     """For each key, the highest ``order`` among the entries covering it: [*keys, order]."""
     missing = [c for c in (*keys, order) if c not in covered.columns]
@@ -56,14 +69,22 @@ def in_force(rows: pd.DataFrame, *, keys: list[str], covered: pd.DataFrame | Non
     """
     if rows.empty:
         return rows
-    frames = [rows[[order, *keys]]]
+    orders = rows[order].to_numpy()
+    if (covered is None or covered.empty) and (whole is None or not len(whole)) and (orders == orders[0]).all():
+        return rows.reset_index(drop=True)  # one submission: every row is in force
+    frames = [rows]
     if covered is not None and len(covered):
-        frames.append(covered[[order, *keys]])
-    winners = newest_covering(pd.concat(frames, ignore_index=True), keys=list(keys), order=order)
+        frames.append(covered)
+    codes = _key_codes(frames, list(keys))
+    all_codes = np.concatenate(codes)
+    all_order = np.concatenate([f[order].to_numpy(dtype=np.int64) for f in frames])
+    key_of, dense = pd.factorize(all_codes)
+    newest = pd.Series(all_order).groupby(key_of, sort=False).max().reindex(range(len(dense))).to_numpy()
+    row_key = key_of[: len(rows)]
+    keep = rows[order].to_numpy(dtype=np.int64) == newest[row_key]
     if whole is not None and len(whole):
-        winners = winners[winners[order] >= np.max(np.asarray(whole))]
-    marked = rows.reset_index().merge(winners, on=[*keys, order], how="inner", sort=False)
-    return marked.sort_values("index", kind="mergesort").drop(columns="index").reset_index(drop=True)
+        keep &= rows[order].to_numpy(dtype=np.int64) >= np.max(np.asarray(whole, dtype=np.int64))
+    return rows[keep].reset_index(drop=True)
 
 
 def winner_per_key(rows: pd.DataFrame, *, keys: list[str], covered: pd.DataFrame | None = None,

@@ -345,10 +345,13 @@ def _align(lines: pd.DataFrame, forecasts: pd.DataFrame, cycle: str, inputs: Pla
         warnings.append(f"cycle {cycle}: {dropped:,} submitted row(s) name items, families, locations or regions "
                         "no longer in the master data; they are left out")
     known = history.known_at(cycle)
-    known = known[known["quantity"].notna()]
-    mix = historical_mix(known[known["item"].isin(set(inputs.items["item"])) &
-                               known["location"].isin(set(inputs.locations["location"]))],
-                         items=inputs.items, locations=inputs.locations, cycle=cycle, window_months=mix_window)
+    known = known[known["quantity"].notna() & known["item"].isin(set(inputs.items["item"])) &
+                  known["location"].isin(set(inputs.locations["location"]))]
+
+    def mix(levels):
+        return historical_mix(known, items=inputs.items, locations=inputs.locations, cycle=cycle,
+                              window_months=mix_window, levels=levels)
+
     per_submission, align_warnings, traces = cs.align_submissions(
         lines, cycle=cycle, items=inputs.items, locations=inputs.locations, mix=mix, with_traces=with_traces)
     covered = cs.declared_cells(forecasts, items=inputs.items, locations=inputs.locations)
