@@ -8,11 +8,13 @@ series (multiplicative annual shape, some trending), and intermittent items
 (Bernoulli demand occurrence × gamma sizes).  Prints one table:
 
 * fit-and-select time of ``forecast_statistical`` over all series (full
-  history, horizon 12) and over the history less its last 6 months (horizon 6);
+  history, horizon 12) and over the history less its last 6 months (horizon 6),
+  target at most 0.4 ms per series (100,000 series × 13 cycles in a cold run
+  under 10 minutes on 2 cores);
 * statsmodels' ``ExponentialSmoothing`` (Holt–Winters, additive trend and
   season, estimated initial states, default optimiser) fitted in a loop over a
   random sample of the same series on the same shortened history, scaled per
-  series; the ratio of per-series times (target ≥ 20× faster);
+  series; the ratio of per-series times (target ≥ 50× faster);
 * holdout WAPE over the last 6 months on that sample, ours against
   statsmodels' (target: ours no worse); both forecasts floored at zero;
 * peak memory: tracemalloc peak during one ``forecast_statistical`` call and
@@ -22,6 +24,7 @@ series (multiplicative annual shape, some trending), and intermittent items
 from __future__ import annotations
 
 import argparse
+import os
 import resource
 import sys
 import time
@@ -39,7 +42,8 @@ from consensus.periods import month_index, month_names  # noqa: E402
 
 FIRST_MONTH = "2021-01"
 HOLDOUT = 6
-TARGET_SPEEDUP = 20.0
+TARGET_SPEEDUP = 50.0
+TARGET_MS_PER_SERIES = 0.4
 TARGET_MEMORY_MIB = 2048.0
 
 
@@ -106,6 +110,8 @@ def main() -> int:
     parser.add_argument("--seed", type=int, default=2024)
     parser.add_argument("--skip-statsmodels", action="store_true")
     args = parser.parse_args()
+    print(f"load average at start: {os.getloadavg()[0]:.2f} on {os.cpu_count()} cores "
+          "(speed figures are only comparable on a quiet machine)")
 
     y, kinds = simulate_demand(args.series, args.months, args.seed)
     history = long_history(y)
@@ -127,7 +133,9 @@ def main() -> int:
 
     rows = [
         ("series × months", f"{args.series:,} × {args.months}", ""),
-        ("ours: fit+select, full history (h=12)", f"{seconds_full:.1f} s", f"{1000 * seconds_full / args.series:.2f} ms/series"),
+        ("ours: fit+select, full history (h=12)", f"{seconds_full:.1f} s",
+         f"{1000 * seconds_full / args.series:.2f} ms/series (target ≤ {TARGET_MS_PER_SERIES}) "
+         + ("PASS" if 1000 * seconds_full / args.series <= TARGET_MS_PER_SERIES else "FAIL")),
         (f"ours: fit+select, history less {HOLDOUT} (h={HOLDOUT})", f"{seconds_holdout:.1f} s",
          f"{1000 * seconds_holdout / args.series:.2f} ms/series"),
     ]
@@ -139,7 +147,8 @@ def main() -> int:
         rows += [
             (f"statsmodels Holt–Winters loop, {len(sample)} series", f"{seconds_sm:.1f} s",
              f"{1000 * per_sm:.2f} ms/series"),
-            ("speed-up per series (target ≥ 20×)", f"{speedup:.0f}×", "PASS" if speedup >= TARGET_SPEEDUP else "FAIL"),
+            (f"speed-up per series (target ≥ {TARGET_SPEEDUP:.0f}×)", f"{speedup:.0f}×",
+             "PASS" if speedup >= TARGET_SPEEDUP else "FAIL"),
         ]
         ours_wape = wape(actual[sample], ours[sample])
         sm_wape = wape(actual[sample], theirs)

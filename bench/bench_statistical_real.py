@@ -47,6 +47,7 @@ than the statsmodels loop (Holt–Winters, one seasonal form).
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 import time
 import warnings
@@ -179,6 +180,8 @@ def main() -> int:
     parser.add_argument("--methods", default="", help="comma-separated candidates for ours (default: its default "
                         "set), e.g. adding theta or combination")
     args = parser.parse_args()
+    print(f"load average at start: {os.getloadavg()[0]:.2f} on {os.cpu_count()} cores "
+          "(speed figures are only comparable on a quiet machine)")
 
     data = load_series()
     names = list(data)
