@@ -678,6 +678,15 @@ def _allowed_candidates(
     return np.where(preferred.any(axis=1)[:, None], preferred, can)
 
 
+def _member_names(members: np.ndarray) -> np.ndarray:
+    """'theta+holt_winters_mul'-style names of each row's members ``(n, n_candidates)``; '' for none."""
+    out = np.full(len(members), "", dtype=object)
+    for k in np.flatnonzero(members.any(axis=0)):
+        name = CANDIDATE_METHODS[k]
+        out = np.where(members[:, k], np.where(out == "", name, out + "+" + name), out)
+    return out
+
+
 def _blocks(rows: np.ndarray, span_months: np.ndarray):
     """Consecutive slices of ``rows`` (longest span first) of at most BLOCK_SERIES series and BLOCK_CELLS series × months."""
     lo = 0
@@ -732,7 +741,8 @@ def forecast_statistical(
     # a requested combination needs its members fitted, asked for or not
     with_members = requested + (COMBINED_METHODS if "combination" in requested else ())
     fitted = _allowed_candidates(
-        requested=tuple(m for m in CANDIDATE_METHODS if m in with_members), pattern=pattern, has_trend=has_trend,
+        requested=tuple(name for name in CANDIDATE_METHODS if name in with_members), pattern=pattern,
+        has_trend=has_trend,
         has_seasonality=has_seasonality, y=y, start=start, season_length=m,
     ) & (allowed.any(axis=1)[:, None])
     fitted |= allowed
@@ -751,8 +761,7 @@ def forecast_statistical(
             params[name][done] = block.params[name][ok]
         point[done] = np.maximum(block.point[ok], 0.0)
         wape[done] = block.wape[ok]
-        names = np.array(CANDIDATE_METHODS, dtype=object)
-        combined[done] = ["+".join(names[used]) for used in block.members[ok]]
+        combined[done] = _member_names(block.members[ok])
         for level, (low, high) in empirical_intervals(point[done], block.errors[ok], levels=levels).items():
             bounds[level][0][done] = low
             bounds[level][1][done] = high
