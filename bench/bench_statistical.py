@@ -87,19 +87,19 @@ def wape(actual: np.ndarray, forecast: np.ndarray) -> float:
     return float(np.abs(actual - forecast).sum() / np.abs(actual).sum())
 
 
-def fit_statsmodels(y: np.ndarray, horizon: int) -> tuple[np.ndarray, float]:
-    """Holt–Winters (additive trend and season) per series in a loop; forecasts and seconds."""
+def fit_statsmodels(y: np.ndarray, horizon: int) -> tuple[np.ndarray, float, float]:
+    """Holt–Winters (additive trend and season) per series in a loop; forecasts, wall and CPU seconds."""
     from statsmodels.tsa.holtwinters import ExponentialSmoothing
 
     out = np.zeros((len(y), horizon))
-    started = time.perf_counter()
+    started, cpu = time.perf_counter(), time.process_time()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         for i, series in enumerate(y):
             model = ExponentialSmoothing(series, trend="add", seasonal="add", seasonal_periods=12,
                                          initialization_method="estimated")
             out[i] = model.fit().forecast(horizon)
-    return np.maximum(out, 0.0), time.perf_counter() - started
+    return np.maximum(out, 0.0), time.perf_counter() - started, time.process_time() - cpu
 
 
 def main() -> int:
@@ -110,6 +110,12 @@ def main() -> int:
     parser.add_argument("--seed", type=int, default=2024)
     parser.add_argument("--skip-statsmodels", action="store_true")
     args = parser.parse_args()
+    try:  # one BLAS thread for every timed fit: spinning helper threads would bill CPU time to either side
+        from threadpoolctl import threadpool_limits
+
+        threadpool_limits(1)
+    except ImportError:
+        pass
     print(f"load average at start: {os.getloadavg()[0]:.2f} on {os.cpu_count()} cores "
           "(speed figures are only comparable on a quiet machine)")
 
@@ -122,9 +128,10 @@ def main() -> int:
     started = time.perf_counter()
     full = forecast_statistical(history, cycle=cycle_full, horizon=12)
     seconds_full = time.perf_counter() - started
-    started = time.perf_counter()
+    started, cpu = time.perf_counter(), time.process_time()
     backcast = forecast_statistical(history, cycle=cycle_holdout, horizon=HOLDOUT)
     seconds_holdout = time.perf_counter() - started
+    cpu_holdout = time.process_time() - cpu
 
     ours = backcast.forecast["quantity"].to_numpy().reshape(args.series, HOLDOUT)
     actual = y[:, -HOLDOUT:]
@@ -140,14 +147,16 @@ def main() -> int:
          f"{1000 * seconds_holdout / args.series:.2f} ms/series"),
     ]
     if not args.skip_statsmodels:
-        theirs, seconds_sm = fit_statsmodels(y[sample, : args.months - HOLDOUT], HOLDOUT)
+        theirs, seconds_sm, cpu_sm = fit_statsmodels(y[sample, : args.months - HOLDOUT], HOLDOUT)
         per_sm = seconds_sm / len(sample)
         per_ours = seconds_holdout / args.series
-        speedup = per_sm / per_ours
+        # CPU time of this process is the fairer ratio when other work shares the cores
+        speedup = (cpu_sm / len(sample)) / (cpu_holdout / args.series)
         rows += [
             (f"statsmodels Holt–Winters loop, {len(sample)} series", f"{seconds_sm:.1f} s",
              f"{1000 * per_sm:.2f} ms/series"),
-            (f"speed-up per series (target ≥ {TARGET_SPEEDUP:.0f}×)", f"{speedup:.0f}×",
+            ("speed-up per series, wall time", f"{per_sm / per_ours:.0f}×", ""),
+            (f"speed-up per series, CPU time (target ≥ {TARGET_SPEEDUP:.0f}×)", f"{speedup:.0f}×",
              "PASS" if speedup >= TARGET_SPEEDUP else "FAIL"),
         ]
         ours_wape = wape(actual[sample], ours[sample])

@@ -432,3 +432,18 @@ def test_combination_is_the_mean_of_its_members_each_forecast_alone():
     np.testing.assert_allclose(res.forecast["quantity"], np.mean(alone, axis=0), rtol=1e-12)
     for m, fc in zip(("theta", "holt_winters_add", "holt_winters_mul"), alone):
         assert forecast_statistical(history, cycle="2024-12", horizon=6, methods=[m]).series["method"].iloc[0] == m
+
+
+def test_methods_see_the_last_twelve_seasons_of_a_long_history():
+    # 20 years of elec_equip (statsmodels.datasets): the forecast is the one
+    # made from its last 144 months alone; n_months still reports the span.
+    from consensus.methods.statistical import MAX_FIT_SEASONS
+
+    y = elec_equip.load().data.iloc[:240, 0].to_numpy(dtype=float)
+    long = forecast_statistical(long_history({("A", "X"): y}, first="2005-01"), cycle="2024-12", horizon=6)
+    kept = MAX_FIT_SEASONS * 12
+    short = forecast_statistical(long_history({("A", "X"): y[-kept:]}, first=month_name(month_index("2024-12") - kept + 1)),
+                                 cycle="2024-12", horizon=6)
+    pd.testing.assert_frame_equal(long.forecast, short.forecast, check_exact=True)
+    pd.testing.assert_frame_equal(long.intervals, short.intervals, check_exact=True)
+    assert long.series["n_months"].iloc[0] == 240 and short.series["n_months"].iloc[0] == kept

@@ -86,11 +86,6 @@ def _as_grid(p, shape, default: float) -> np.ndarray:
     return np.broadcast_to(np.asarray(default if p is None else p, dtype=float), shape)
 
 
-def _where(mask: np.ndarray, new: np.ndarray, old, everywhere: bool) -> np.ndarray:
-    """``np.where(mask, new, old)``, skipped when ``everywhere`` says the mask is all True (same bits)."""
-    return new if everywhere else np.where(mask, new, old)
-
-
 def _initial_grid(value, shape, n_series: int) -> np.ndarray:
     """An initial state given per series ``(n,)`` or per series and grid point ``(n, G)``, as ``shape``."""
     arr = np.asarray(value, dtype=float)
@@ -175,9 +170,12 @@ def run_smoothing(
     last_start = int(start.max()) if n_series else 0
     observed = np.isfinite(y)
     known_months = observed.all(axis=0)
+    # months after every fitting window add nothing when no fitted values or
+    # forecasts are asked for (the sums would only gain zeros)
+    stop = n_months if (fitted is not None or forecasts is not None or not ends) else int(max(e.max() for e in ends))
 
     with np.errstate(all="ignore"):
-        for t in range(max(first, 0), n_months):
+        for t in range(max(first, 0), min(stop, n_months)):
             active = (t >= start)[:, None]
             known = observed[:, t][:, None]
             all_active, all_known = t >= last_start, known_months[t]
@@ -191,7 +189,7 @@ def run_smoothing(
             else:
                 pred = base
             # an unknown month is updated with its own forecast
-            obs = _where(known, y[:, t][:, None], pred, all_known)
+            obs = y[:, t][:, None] if all_known else np.where(known, y[:, t][:, None], pred)
             if seasonal == "add":
                 new_level = a * (obs - s_old) + (1 - a) * base
                 new_season = g_ * (obs - base) + (1 - g_) * s_old
@@ -209,10 +207,10 @@ def run_smoothing(
                 fitted[..., t] = np.where(active, pred, np.nan)
             if trend:
                 new_slope = b_ * (new_level - level) + (1 - b_) * ph * slope
-                slope = _where(active, new_slope, slope, all_active)
-            level = _where(active, new_level, level, all_active)
+                slope = new_slope if all_active else np.where(active, new_slope, slope)
+            level = new_level if all_active else np.where(active, new_level, level)
             if seasons is not None:
-                seasons[t % m] = _where(active, new_season, s_old, all_active)
+                seasons[t % m] = new_season if all_active else np.where(active, new_season, s_old)
             k = origin_slot.get(t)
             if k is not None:
                 out = level[..., None] + (damp_sums * slope[..., None] if trend else 0.0)
@@ -521,8 +519,9 @@ def _jacobian_pass(y, start, fit_end, theta, *, method, layout, season_length):
     first = int(start.min()) if n_series else n_months
     last_start = int(start.max()) if n_series else 0
     known_months = observed.all(axis=0)
+    stop = min(int(fit_end.max()), n_months) if n_series else 0  # later months are never scored
     with np.errstate(all="ignore"):
-        for t in range(max(first, 0), n_months):
+        for t in range(max(first, 0), stop):
             active = (t >= start)[:, None]
             known = observed[:, t][:, None]
             base = level + ph * slope
@@ -542,7 +541,7 @@ def _jacobian_pass(y, start, fit_end, theta, *, method, layout, season_length):
                 pred = base
                 d_pred = d_base
             all_active, all_known = t >= last_start, known_months[t]
-            obs = _where(known, y[:, t][:, None], pred, all_known)
+            obs = y[:, t][:, None] if all_known else np.where(known, y[:, t][:, None], pred)
             d_obs = 0.0 if all_known else np.where(known, 0.0, d_pred)
             scored = active & known & (t < fit_end)[:, None]
             err = np.where(scored, obs - pred, 0.0)
@@ -574,13 +573,13 @@ def _jacobian_pass(y, start, fit_end, theta, *, method, layout, season_length):
                 new_slope = bb * (new_level - level) + (1 - bb) * ph * slope
                 d_new_slope = bb * (d_new_level - d_level) + (1 - bb) * d_damped
                 d_new_slope[:, ib] += (new_level - level - ph * slope)[:, 0]
-                slope = _where(active, new_slope, slope, all_active)
-                d_slope = _where(active, d_new_slope, d_slope, all_active)
-            level = _where(active, new_level, level, all_active)
-            d_level = _where(active, d_new_level, d_level, all_active)
+                slope = new_slope if all_active else np.where(active, new_slope, slope)
+                d_slope = d_new_slope if all_active else np.where(active, d_new_slope, d_slope)
+            level = new_level if all_active else np.where(active, new_level, level)
+            d_level = d_new_level if all_active else np.where(active, d_new_level, d_level)
             if seasonal:
-                seasons[t % m] = _where(active, new_season, s_old, all_active)
-                d_seasons[t % m] = _where(active, d_new_season, d_s, all_active)
+                seasons[t % m] = new_season if all_active else np.where(active, new_season, s_old)
+                d_seasons[t % m] = d_new_season if all_active else np.where(active, d_new_season, d_s)
     # JᵀJ and Jᵀe per series over its own span only, series of one span
     # length at a time: each product then has the same operands and shape
     # whichever other series share the block (or how many months the matrix

@@ -13,7 +13,9 @@ How each series is forecast
    with any row at all (a cycle opened before its month's orders are in):
    fits update through it with the one-step forecast in its place and leave
    it out of their squared errors, the holdout does not score it, and the
-   profile statistics skip it.  ``n_months`` is the span length.
+   profile statistics skip it.  ``n_months`` is the span length; the
+   methods see at most its last :data:`MAX_FIT_SEASONS` seasons (12 years
+   of months).
 2. **Profile.**  Pattern (smooth / erratic / intermittent / lumpy), trend
    and seasonality from :mod:`consensus.methods.demand_pattern`.
 3. **New items.**  A span shorter than :data:`NEW_ITEM_MONTHS` (6) months is
@@ -119,6 +121,12 @@ NEW_ITEM_MONTHS = 6
 HOLDOUT_MONTHS = 12
 MOVING_AVERAGE_MONTHS = 3
 MIN_INTERVAL_ERRORS = 3
+#: Seasons of history the methods see at most (144 months for monthly data):
+#: twelve observations of every seasonal index; the recursions' cost grows
+#: with the months.  On the real-series bench 10, 12 and 15 years gave a mean
+#: WAPE of 4.80 %, 4.72 % and 4.73 % against 4.71 % with every month (up to 40
+#: years) at 2.2× the cost.
+MAX_FIT_SEASONS = 12
 #: Series fitted together; bounds memory (grid × series × season arrays).
 BLOCK_SERIES = 2000
 #: ... and series × months fitted together (the refinement keeps a gradient per month).
@@ -525,10 +533,13 @@ def _select_block(
             fc = theta.forecast_theta(ys, ss, fit, origins=origins, horizon=n_lags, season_length=season_length)
             fc = np.where(np.isfinite(fit.sse)[:, None, None], fc, np.nan)
         else:
+            # a refined method's whole-span fit starts from its training-window
+            # fit, so its grid needs the training window only
+            refined = method in REFINED_METHODS
+            ends = (train_end[rows],) if refined else (train_end[rows], np.full(len(rows), n_months))
             fit = smoothing.fit_smoothing(
-                ys, ss, method=method, fit_ends=(train_end[rows], np.full(len(rows), n_months)),
-                init_available=train_months[rows], season_length=season_length,
-                refine=(0,) if method in REFINED_METHODS else False,
+                ys, ss, method=method, fit_ends=ends, init_available=train_months[rows],
+                season_length=season_length, refine=refined,
             )
             smoothing_fits[k] = fit
             fc = smoothing.forecast_smoothing(
@@ -718,9 +729,15 @@ def forecast_statistical(
     horizon = int(horizon)
     m = int(season_length)
     matrix = build_demand_matrix(history, cycle=cycle)
-    y, start, keys = matrix.y, matrix.start, matrix.keys
+    keys = matrix.keys
+    span_months = matrix.y.shape[1] - matrix.start  # the whole span: what n_months reports, what makes a new item
+    # every method sees at most the last MAX_FIT_SEASONS seasons
+    offset = max(matrix.y.shape[1] - MAX_FIT_SEASONS * m, 0)
+    y = matrix.y[:, offset:]
+    start = np.maximum(matrix.start - offset, 0)
+    first_month = matrix.first_month + offset
     n_series, n_months = y.shape
-    span_months = n_months - start
+    fit_span = n_months - start
 
     pattern = classify_demand(y, start)
     has_trend = detect_trend(y, start)
@@ -751,7 +768,7 @@ def forecast_statistical(
     # longest spans first, so a block's recursions run over about its own
     # months only (a series' numbers do not depend on its block)
     fit_rows = fit_rows[np.argsort(start[fit_rows], kind="stable")]
-    for rows in _blocks(fit_rows, span_months):
+    for rows in _blocks(fit_rows, fit_span):
         block = _select_block(y[rows], start[rows], fitted[rows], has_seasonality[rows], choosable=choosable,
                               horizon=horizon, season_length=m)
         ok = block.method >= 0
@@ -775,12 +792,12 @@ def forecast_statistical(
             known = pd.notna(family_of)
             codes, _ = pd.factorize(pd.Series(family_of[known], dtype=object), sort=True)
             group[known] = codes
-        profiles = seasonal_profiles(y, start, group, first_month=matrix.first_month, season_length=m)
+        profiles = seasonal_profiles(y, start, group, first_month=first_month, season_length=m)
         own = np.ones((len(rest), m))
         in_group = group[rest] >= 0
         own[in_group] = profiles[group[rest][in_group]]
         point[rest] = forecast_new_items(
-            y[rest], start[rest], own, first_month=matrix.first_month, horizon=horizon, season_length=m
+            y[rest], start[rest], own, first_month=first_month, horizon=horizon, season_length=m
         )
         no_demand = span_months[rest] == 0
         method_name[rest] = np.where(no_demand, "zero_demand", "new_item_profile")
