@@ -447,3 +447,30 @@ def test_methods_see_the_last_twelve_seasons_of_a_long_history():
     pd.testing.assert_frame_equal(long.forecast, short.forecast, check_exact=True)
     pd.testing.assert_frame_equal(long.intervals, short.intervals, check_exact=True)
     assert long.series["n_months"].iloc[0] == 240 and short.series["n_months"].iloc[0] == kept
+
+
+histories_with_unknowns = st.lists(
+    st.tuples(
+        st.sampled_from(["A", "B", "C"]),
+        st.sampled_from(["X", "Y"]),
+        st.integers(min_value=0, max_value=35),
+        st.one_of(st.floats(min_value=0, max_value=500, allow_nan=False, allow_infinity=False), st.just(np.nan)),
+    ),
+    min_size=1,
+    max_size=80,
+)
+
+
+@settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(histories_with_unknowns, st.integers(min_value=1, max_value=14))
+def test_unknown_months_never_leak_into_the_numbers(rows, horizon):
+    # Whatever months are unknown, every forecast is a finite non-negative
+    # number, the bounds are non-negative where given, the holdout WAPE is
+    # finite or NaN (never inf), and the reference forecast is finite.
+    res = forecast_statistical(frame_of(rows), cycle="2024-12", horizon=horizon)
+    assert np.isfinite(res.forecast["quantity"]).all() and (res.forecast["quantity"] >= 0).all()
+    assert np.isfinite(res.seasonal_naive["quantity"]).all()
+    bounds = res.intervals[INTERVAL_COLUMNS[3:]].to_numpy()
+    assert (bounds[~np.isnan(bounds)] >= 0).all()
+    assert not np.isinf(res.series["holdout_wape"]).any()
+    assert set(res.series["method"]) <= set(METHODS)
