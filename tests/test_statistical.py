@@ -354,9 +354,9 @@ def test_a_cycle_opened_before_its_orders_are_in_forecasts_through_the_unknown_m
 
 # --- partitions ------------------------------------------------------------------
 
-def test_a_family_forecast_alone_is_bit_for_bit_its_rows_in_the_whole_store():
-    # The run spreads families over processes: every row of a family's result
-    # must equal, exactly, its rows when all families are forecast together.
+@pytest.fixture(scope="module")
+def store_of_families():
+    """36 item × location series in 4 families: seasonal, trending, intermittent, new, late-starting, with an unknown month."""
     rng = np.random.default_rng(11)
     base = orders(60)
     t = np.arange(60)
@@ -386,6 +386,13 @@ def test_a_family_forecast_alone_is_bit_for_bit_its_rows_in_the_whole_store():
     history = long_history(series, first="2020-01")
     history = history[history["quantity"] != 0]  # absent rows are zero demand
     families = pd.Series(families)
+    return history, families
+
+
+def test_a_family_forecast_alone_is_bit_for_bit_its_rows_in_the_whole_store(store_of_families):
+    # The run spreads families over processes: every row of a family's result
+    # must equal, exactly, its rows when all families are forecast together.
+    history, families = store_of_families
     whole = forecast_statistical(history, cycle="2024-12", horizon=12, families=families)
     for family in ("F1", "F3"):
         items = families.index[families == family]
@@ -474,3 +481,17 @@ def test_unknown_months_never_leak_into_the_numbers(rows, horizon):
     assert (bounds[~np.isnan(bounds)] >= 0).all()
     assert not np.isinf(res.series["holdout_wape"]).any()
     assert set(res.series["method"]) <= set(METHODS)
+
+
+def test_block_boundaries_change_no_bit(store_of_families, monkeypatch):
+    # Blocks of 3 series (and of 100 series × months) instead of thousands:
+    # every frame is the same, bit for bit.
+    import consensus.methods.statistical as statistical
+
+    history, families = store_of_families
+    whole = forecast_statistical(history, cycle="2024-12", horizon=12, families=families)
+    monkeypatch.setattr(statistical, "BLOCK_SERIES", 3)
+    monkeypatch.setattr(statistical, "BLOCK_CELLS", 100)
+    split = forecast_statistical(history, cycle="2024-12", horizon=12, families=families)
+    for name in ("forecast", "intervals", "series", "seasonal_naive"):
+        pd.testing.assert_frame_equal(getattr(split, name), getattr(whole, name), check_exact=True)
