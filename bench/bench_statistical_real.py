@@ -247,13 +247,13 @@ def main() -> int:
     print(f"{'method':<{width}}  {'mean WAPE':>9}  {'mean MASE':>9}")
     print("-" * (width + 22))
     for label, w, m in table:
-        print(f"{label:<{width}}  {100 * w.mean():8.2f}%  {m.mean():9.3f}")
+        print(f"{label:<{width}}  {100 * w.mean():8.2f}%  {m.mean():9.4f}")
     refs = [r for r in table if r[0].startswith("statsmodels")]
     bar_wape = min(r[1].mean() for r in refs)
     bar_mase = min(r[2].mean() for r in refs)
     ours_w, ours_m = table[0][1].mean(), table[0][2].mean()
     print(f"ours vs best reference: WAPE {100 * ours_w:.2f}% vs {100 * bar_wape:.2f}% "
-          f"{'PASS' if ours_w <= bar_wape else 'FAIL'}; MASE {ours_m:.3f} vs {bar_mase:.3f} "
+          f"{'PASS' if ours_w <= bar_wape else 'FAIL'}; MASE {ours_m:.4f} vs {bar_mase:.4f} "
           f"{'PASS' if ours_m <= bar_mase else 'FAIL'}")
     fits = len(trains)
     per_ours = best_ours / (fits * args.copies)

@@ -25,6 +25,16 @@ Simple exponential smoothing is the case without trend and season (Brown 1959;
 NIST/SEMATECH e-Handbook of Statistical Methods, section 6.4.3.1); Holt (1957)
 adds the trend, Gardner & McKenzie (1985) the damping φ, Winters (1960) the
 season.
+
+Fitting is a grid search over :data:`PARAMETER_GRIDS` from heuristic initial
+states (:func:`fit_smoothing`), optionally followed by Levenberg–Marquardt on
+the smoothing parameters and the initial states together
+(:func:`refine_smoothing`), which is what statsmodels'
+``initialization_method="estimated"`` optimises.  A NaN month is unknown:
+the state is updated with its one-step forecast and it adds no error.  Every
+number of a series is computed from that series alone (products and sums
+never run across series), so the same series gives the same bits in any
+block.
 """
 
 from __future__ import annotations
