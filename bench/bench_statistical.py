@@ -9,8 +9,9 @@ series (multiplicative annual shape, some trending), and intermittent items
 
 * fit-and-select time of ``forecast_statistical`` over all series (full
   history, horizon 12) and over the history less its last 6 months (horizon 6),
-  target at most 0.4 ms per series (100,000 series × 13 cycles in a cold run
-  under 10 minutes on 2 cores);
+  wall and CPU time (one BLAS thread), target at most 0.4 ms of CPU per series
+  (100,000 series × 13 cycles in a cold run under 10 minutes on 2 cores; CPU
+  time because wall time swells when other work shares the cores);
 * statsmodels' ``ExponentialSmoothing`` (Holt–Winters, additive trend and
   season, estimated initial states, default optimiser) fitted in a loop over a
   random sample of the same series on the same shortened history, scaled per
@@ -125,9 +126,10 @@ def main() -> int:
     cycle_full = month_names([last])[0]
     cycle_holdout = month_names([last - HOLDOUT])[0]
 
-    started = time.perf_counter()
+    started, cpu = time.perf_counter(), time.process_time()
     full = forecast_statistical(history, cycle=cycle_full, horizon=12)
     seconds_full = time.perf_counter() - started
+    cpu_full = time.process_time() - cpu
     started, cpu = time.perf_counter(), time.process_time()
     backcast = forecast_statistical(history, cycle=cycle_holdout, horizon=HOLDOUT)
     seconds_holdout = time.perf_counter() - started
@@ -141,10 +143,11 @@ def main() -> int:
     rows = [
         ("series × months", f"{args.series:,} × {args.months}", ""),
         ("ours: fit+select, full history (h=12)", f"{seconds_full:.1f} s",
-         f"{1000 * seconds_full / args.series:.2f} ms/series (target ≤ {TARGET_MS_PER_SERIES}) "
-         + ("PASS" if 1000 * seconds_full / args.series <= TARGET_MS_PER_SERIES else "FAIL")),
+         f"{1000 * seconds_full / args.series:.2f} ms/series wall, {1000 * cpu_full / args.series:.2f} CPU "
+         f"(target ≤ {TARGET_MS_PER_SERIES} CPU) "
+         + ("PASS" if 1000 * cpu_full / args.series <= TARGET_MS_PER_SERIES else "FAIL")),
         (f"ours: fit+select, history less {HOLDOUT} (h={HOLDOUT})", f"{seconds_holdout:.1f} s",
-         f"{1000 * seconds_holdout / args.series:.2f} ms/series"),
+         f"{1000 * seconds_holdout / args.series:.2f} ms/series wall, {1000 * cpu_holdout / args.series:.2f} CPU"),
     ]
     if not args.skip_statsmodels:
         theirs, seconds_sm, cpu_sm = fit_statsmodels(y[sample, : args.months - HOLDOUT], HOLDOUT)

@@ -43,14 +43,17 @@ How each series is forecast
 5. **Fit.**  Smoothing parameters by grid search minimising in-sample
    one-step squared error, all series at once (see
    :func:`consensus.methods.smoothing.fit_smoothing`); Croston/SBA likewise.
-   Holt–Winters fits (:data:`REFINED_METHODS`) are then refined:
+   Fits with a trend (:data:`REFINED_METHODS`) are then refined:
    Levenberg–Marquardt on the smoothing parameters and the initial level,
    trend and seasonal terms together
    (:func:`consensus.methods.smoothing.refine_smoothing`), 3 iterations on
    the training window and :data:`FULL_REFINE_ITERATIONS` more on the whole
    span starting from there.  The grid alone trailed statsmodels'
    optimiser, because heuristic seasonal states from the first two years
-   are poor and the grid then favours large γ.
+   are poor and the grid then favours large γ (refining the trended
+   non-seasonal fits too took the synthetic bench's holdout WAPE from
+   0.2267 to 0.2260 at no extra time, their grids now running over the
+   training window only).
 6. **Rolling-origin holdout.**  The last ``K = min(12, n_months // 2)``
    months are held out.  Parameters fitted on the months before them are
    kept fixed while the state rolls forward month by month; from every
@@ -134,8 +137,9 @@ BLOCK_CELLS = 2000 * 60
 
 _INTERMITTENT_PATTERNS = ("intermittent", "lumpy")
 #: Methods whose grid fit is polished by Levenberg–Marquardt (smoothing.refine_smoothing):
-#: Holt–Winters, whose seasonal initial states matter most (see the module docstring).
-REFINED_METHODS = ("holt_winters_add", "holt_winters_mul")
+#: those with a trend, whose initial trend and seasonal states matter most (see the
+#: module docstring).  SES keeps its 50-point grid of α and first-month level.
+REFINED_METHODS = ("holt_damped", "holt", "holt_winters_add", "holt_winters_mul")
 #: Refinement iterations of the whole-span refit, warm-started from the training-window fit.
 FULL_REFINE_ITERATIONS = 2
 _PARAMETER_COLUMNS = ("alpha", "beta", "gamma", "phi")
