@@ -338,6 +338,10 @@ def test_unknown_months_equal_statsmodels_fed_its_own_forecasts(seasonal):
     # one-step forecast from the months before it (fixed parameters, known
     # initial states); statsmodels' fit of the filled series then equals ours
     # on the series with NaN, and our SSE leaves the filled months out.
+    # (statsmodels.tsa.holtwinters carries a NaN into every later state; the state-space
+    # ExponentialSmoothing accepts it, but its Kalman filter then carries a
+    # state covariance and changes the gain after the gap, which is not the
+    # forecast-in-place treatment asked for here, checked by hand on this series.)
     y = elec_equip_series(72)
     gaps = [9, 30, 31, 50]
     with_nan = y.copy()
