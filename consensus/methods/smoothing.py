@@ -686,9 +686,9 @@ def refine_smoothing(
         scale = np.clip(np.where(better, scale * damping[best] / damping[1], scale * 100.0), 1e-6, 1e6)
         sse = np.where(better, best_sse, sse)
         if iteration < iterations - 1:
-            new_sse, new_jtj, new_jte = _jacobian_pass(y, start, fit_end, theta, method=method, layout=layout,
-                                                       season_length=season_length)
-            jtj, jte = new_jtj, new_jte
+            # the SSE kept is the trial's (the same recursion as the grid's)
+            _, jtj, jte = _jacobian_pass(y, start, fit_end, theta, method=method, layout=layout,
+                                         season_length=season_length)
     refined, new_states = _unpack(theta, layout, method)
     return refined, new_states, sse
 
