@@ -8,11 +8,14 @@ series (multiplicative annual shape, some trending), and intermittent items
 (Bernoulli demand occurrence × gamma sizes).  Prints one table:
 
 * fit-and-select time of ``forecast_statistical`` over all series (full
-  history, horizon 12) and over the history less its last 6 months (horizon 6);
+  history, horizon 12) and over the history less its last 6 months (horizon 6),
+  wall and CPU time (one BLAS thread), target at most 0.4 ms of CPU per series
+  (100,000 series × 13 cycles in a cold run under 10 minutes on 2 cores; CPU
+  time because wall time swells when other work shares the cores);
 * statsmodels' ``ExponentialSmoothing`` (Holt–Winters, additive trend and
   season, estimated initial states, default optimiser) fitted in a loop over a
   random sample of the same series on the same shortened history, scaled per
-  series; the ratio of per-series times (target ≥ 20× faster);
+  series; the ratio of per-series times (target ≥ 50× faster);
 * holdout WAPE over the last 6 months on that sample, ours against
   statsmodels' (target: ours no worse); both forecasts floored at zero;
 * peak memory: tracemalloc peak during one ``forecast_statistical`` call and
@@ -22,6 +25,7 @@ series (multiplicative annual shape, some trending), and intermittent items
 from __future__ import annotations
 
 import argparse
+import os
 import resource
 import sys
 import time
@@ -39,7 +43,8 @@ from consensus.periods import month_index, month_names  # noqa: E402
 
 FIRST_MONTH = "2021-01"
 HOLDOUT = 6
-TARGET_SPEEDUP = 20.0
+TARGET_SPEEDUP = 50.0
+TARGET_MS_PER_SERIES = 0.4
 TARGET_MEMORY_MIB = 2048.0
 
 
@@ -83,19 +88,19 @@ def wape(actual: np.ndarray, forecast: np.ndarray) -> float:
     return float(np.abs(actual - forecast).sum() / np.abs(actual).sum())
 
 
-def fit_statsmodels(y: np.ndarray, horizon: int) -> tuple[np.ndarray, float]:
-    """Holt–Winters (additive trend and season) per series in a loop; forecasts and seconds."""
+def fit_statsmodels(y: np.ndarray, horizon: int) -> tuple[np.ndarray, float, float]:
+    """Holt–Winters (additive trend and season) per series in a loop; forecasts, wall and CPU seconds."""
     from statsmodels.tsa.holtwinters import ExponentialSmoothing
 
     out = np.zeros((len(y), horizon))
-    started = time.perf_counter()
+    started, cpu = time.perf_counter(), time.process_time()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         for i, series in enumerate(y):
             model = ExponentialSmoothing(series, trend="add", seasonal="add", seasonal_periods=12,
                                          initialization_method="estimated")
             out[i] = model.fit().forecast(horizon)
-    return np.maximum(out, 0.0), time.perf_counter() - started
+    return np.maximum(out, 0.0), time.perf_counter() - started, time.process_time() - cpu
 
 
 def main() -> int:
@@ -106,6 +111,14 @@ def main() -> int:
     parser.add_argument("--seed", type=int, default=2024)
     parser.add_argument("--skip-statsmodels", action="store_true")
     args = parser.parse_args()
+    try:  # one BLAS thread for every timed fit: spinning helper threads would bill CPU time to either side
+        from threadpoolctl import threadpool_limits
+
+        threadpool_limits(1)
+    except ImportError:
+        pass
+    print(f"load average at start: {os.getloadavg()[0]:.2f} on {os.cpu_count()} cores "
+          "(speed figures are only comparable on a quiet machine)")
 
     y, kinds = simulate_demand(args.series, args.months, args.seed)
     history = long_history(y)
@@ -113,12 +126,14 @@ def main() -> int:
     cycle_full = month_names([last])[0]
     cycle_holdout = month_names([last - HOLDOUT])[0]
 
-    started = time.perf_counter()
+    started, cpu = time.perf_counter(), time.process_time()
     full = forecast_statistical(history, cycle=cycle_full, horizon=12)
     seconds_full = time.perf_counter() - started
-    started = time.perf_counter()
+    cpu_full = time.process_time() - cpu
+    started, cpu = time.perf_counter(), time.process_time()
     backcast = forecast_statistical(history, cycle=cycle_holdout, horizon=HOLDOUT)
     seconds_holdout = time.perf_counter() - started
+    cpu_holdout = time.process_time() - cpu
 
     ours = backcast.forecast["quantity"].to_numpy().reshape(args.series, HOLDOUT)
     actual = y[:, -HOLDOUT:]
@@ -127,19 +142,25 @@ def main() -> int:
 
     rows = [
         ("series × months", f"{args.series:,} × {args.months}", ""),
-        ("ours: fit+select, full history (h=12)", f"{seconds_full:.1f} s", f"{1000 * seconds_full / args.series:.2f} ms/series"),
+        ("ours: fit+select, full history (h=12)", f"{seconds_full:.1f} s",
+         f"{1000 * seconds_full / args.series:.2f} ms/series wall, {1000 * cpu_full / args.series:.2f} CPU "
+         f"(target ≤ {TARGET_MS_PER_SERIES} CPU) "
+         + ("PASS" if 1000 * cpu_full / args.series <= TARGET_MS_PER_SERIES else "FAIL")),
         (f"ours: fit+select, history less {HOLDOUT} (h={HOLDOUT})", f"{seconds_holdout:.1f} s",
-         f"{1000 * seconds_holdout / args.series:.2f} ms/series"),
+         f"{1000 * seconds_holdout / args.series:.2f} ms/series wall, {1000 * cpu_holdout / args.series:.2f} CPU"),
     ]
     if not args.skip_statsmodels:
-        theirs, seconds_sm = fit_statsmodels(y[sample, : args.months - HOLDOUT], HOLDOUT)
+        theirs, seconds_sm, cpu_sm = fit_statsmodels(y[sample, : args.months - HOLDOUT], HOLDOUT)
         per_sm = seconds_sm / len(sample)
         per_ours = seconds_holdout / args.series
-        speedup = per_sm / per_ours
+        # CPU time of this process is the fairer ratio when other work shares the cores
+        speedup = (cpu_sm / len(sample)) / (cpu_holdout / args.series)
         rows += [
             (f"statsmodels Holt–Winters loop, {len(sample)} series", f"{seconds_sm:.1f} s",
              f"{1000 * per_sm:.2f} ms/series"),
-            ("speed-up per series (target ≥ 20×)", f"{speedup:.0f}×", "PASS" if speedup >= TARGET_SPEEDUP else "FAIL"),
+            ("speed-up per series, wall time", f"{per_sm / per_ours:.0f}×", ""),
+            (f"speed-up per series, CPU time (target ≥ {TARGET_SPEEDUP:.0f}×)", f"{speedup:.0f}×",
+             "PASS" if speedup >= TARGET_SPEEDUP else "FAIL"),
         ]
         ours_wape = wape(actual[sample], ours[sample])
         sm_wape = wape(actual[sample], theirs)

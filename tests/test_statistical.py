@@ -354,9 +354,9 @@ def test_a_cycle_opened_before_its_orders_are_in_forecasts_through_the_unknown_m
 
 # --- partitions ------------------------------------------------------------------
 
-def test_a_family_forecast_alone_is_bit_for_bit_its_rows_in_the_whole_store():
-    # The run spreads families over processes: every row of a family's result
-    # must equal, exactly, its rows when all families are forecast together.
+@pytest.fixture(scope="module")
+def store_of_families():
+    """36 item × location series in 4 families: seasonal, trending, intermittent, new, late-starting, with an unknown month."""
     rng = np.random.default_rng(11)
     base = orders(60)
     t = np.arange(60)
@@ -386,6 +386,13 @@ def test_a_family_forecast_alone_is_bit_for_bit_its_rows_in_the_whole_store():
     history = long_history(series, first="2020-01")
     history = history[history["quantity"] != 0]  # absent rows are zero demand
     families = pd.Series(families)
+    return history, families
+
+
+def test_a_family_forecast_alone_is_bit_for_bit_its_rows_in_the_whole_store(store_of_families):
+    # The run spreads families over processes: every row of a family's result
+    # must equal, exactly, its rows when all families are forecast together.
+    history, families = store_of_families
     whole = forecast_statistical(history, cycle="2024-12", horizon=12, families=families)
     for family in ("F1", "F3"):
         items = families.index[families == family]
@@ -432,3 +439,59 @@ def test_combination_is_the_mean_of_its_members_each_forecast_alone():
     np.testing.assert_allclose(res.forecast["quantity"], np.mean(alone, axis=0), rtol=1e-12)
     for m, fc in zip(("theta", "holt_winters_add", "holt_winters_mul"), alone):
         assert forecast_statistical(history, cycle="2024-12", horizon=6, methods=[m]).series["method"].iloc[0] == m
+
+
+def test_methods_see_the_last_twelve_seasons_of_a_long_history():
+    # 20 years of elec_equip (statsmodels.datasets): the forecast is the one
+    # made from its last 144 months alone; n_months still reports the span.
+    from consensus.methods.statistical import MAX_FIT_SEASONS
+
+    y = elec_equip.load().data.iloc[:240, 0].to_numpy(dtype=float)
+    long = forecast_statistical(long_history({("A", "X"): y}, first="2005-01"), cycle="2024-12", horizon=6)
+    kept = MAX_FIT_SEASONS * 12
+    short = forecast_statistical(long_history({("A", "X"): y[-kept:]}, first=month_name(month_index("2024-12") - kept + 1)),
+                                 cycle="2024-12", horizon=6)
+    pd.testing.assert_frame_equal(long.forecast, short.forecast, check_exact=True)
+    pd.testing.assert_frame_equal(long.intervals, short.intervals, check_exact=True)
+    assert long.series["n_months"].iloc[0] == 240 and short.series["n_months"].iloc[0] == kept
+
+
+histories_with_unknowns = st.lists(
+    st.tuples(
+        st.sampled_from(["A", "B", "C"]),
+        st.sampled_from(["X", "Y"]),
+        st.integers(min_value=0, max_value=35),
+        st.one_of(st.floats(min_value=0, max_value=500, allow_nan=False, allow_infinity=False), st.just(np.nan)),
+    ),
+    min_size=1,
+    max_size=80,
+)
+
+
+@settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(histories_with_unknowns, st.integers(min_value=1, max_value=14))
+def test_unknown_months_never_leak_into_the_numbers(rows, horizon):
+    # Whatever months are unknown, every forecast is a finite non-negative
+    # number, the bounds are non-negative where given, the holdout WAPE is
+    # finite or NaN (never inf), and the reference forecast is finite.
+    res = forecast_statistical(frame_of(rows), cycle="2024-12", horizon=horizon)
+    assert np.isfinite(res.forecast["quantity"]).all() and (res.forecast["quantity"] >= 0).all()
+    assert np.isfinite(res.seasonal_naive["quantity"]).all()
+    bounds = res.intervals[INTERVAL_COLUMNS[3:]].to_numpy()
+    assert (bounds[~np.isnan(bounds)] >= 0).all()
+    assert not np.isinf(res.series["holdout_wape"]).any()
+    assert set(res.series["method"]) <= set(METHODS)
+
+
+def test_block_boundaries_change_no_bit(store_of_families, monkeypatch):
+    # Blocks of 3 series (and of 100 series × months) instead of thousands:
+    # every frame is the same, bit for bit.
+    import consensus.methods.statistical as statistical
+
+    history, families = store_of_families
+    whole = forecast_statistical(history, cycle="2024-12", horizon=12, families=families)
+    monkeypatch.setattr(statistical, "BLOCK_SERIES", 3)
+    monkeypatch.setattr(statistical, "BLOCK_CELLS", 100)
+    split = forecast_statistical(history, cycle="2024-12", horizon=12, families=families)
+    for name in ("forecast", "intervals", "series", "seasonal_naive"):
+        pd.testing.assert_frame_equal(getattr(split, name), getattr(whole, name), check_exact=True)

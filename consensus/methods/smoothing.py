@@ -25,6 +25,16 @@ Simple exponential smoothing is the case without trend and season (Brown 1959;
 NIST/SEMATECH e-Handbook of Statistical Methods, section 6.4.3.1); Holt (1957)
 adds the trend, Gardner & McKenzie (1985) the damping φ, Winters (1960) the
 season.
+
+Fitting is a grid search over :data:`PARAMETER_GRIDS` from heuristic initial
+states (:func:`fit_smoothing`), optionally followed by Levenberg–Marquardt on
+the smoothing parameters and the initial states together
+(:func:`refine_smoothing`), which is what statsmodels'
+``initialization_method="estimated"`` optimises.  A NaN month is unknown:
+the state is updated with its one-step forecast and it adds no error.  Every
+number of a series is computed from that series alone (products and sums
+never run across series), so the same series gives the same bits in any
+block.
 """
 
 from __future__ import annotations
@@ -167,12 +177,18 @@ def run_smoothing(
         steps = np.arange(1, horizon + 1)
         damp_sums = np.cumsum(ph[..., None] ** steps, axis=-1)  # φ + … + φ^h
     first = int(start.min()) if n_series else n_months
+    last_start = int(start.max()) if n_series else 0
     observed = np.isfinite(y)
+    known_months = observed.all(axis=0)
+    # months after every fitting window add nothing when no fitted values or
+    # forecasts are asked for (the sums would only gain zeros)
+    stop = n_months if (fitted is not None or forecasts is not None or not ends) else int(max(e.max() for e in ends))
 
     with np.errstate(all="ignore"):
-        for t in range(max(first, 0), n_months):
+        for t in range(max(first, 0), min(stop, n_months)):
             active = (t >= start)[:, None]
             known = observed[:, t][:, None]
+            all_active, all_known = t >= last_start, known_months[t]
             base = level + ph * slope
             if seasonal == "add":
                 s_old = seasons[t % m]
@@ -183,7 +199,7 @@ def run_smoothing(
             else:
                 pred = base
             # an unknown month is updated with its own forecast
-            obs = np.where(known, y[:, t][:, None], pred)
+            obs = y[:, t][:, None] if all_known else np.where(known, y[:, t][:, None], pred)
             if seasonal == "add":
                 new_level = a * (obs - s_old) + (1 - a) * base
                 new_season = g_ * (obs - base) + (1 - g_) * s_old
@@ -201,10 +217,10 @@ def run_smoothing(
                 fitted[..., t] = np.where(active, pred, np.nan)
             if trend:
                 new_slope = b_ * (new_level - level) + (1 - b_) * ph * slope
-                slope = np.where(active, new_slope, slope)
-            level = np.where(active, new_level, level)
+                slope = new_slope if all_active else np.where(active, new_slope, slope)
+            level = new_level if all_active else np.where(active, new_level, level)
             if seasons is not None:
-                seasons[t % m] = np.where(active, new_season, s_old)
+                seasons[t % m] = new_season if all_active else np.where(active, new_season, s_old)
             k = origin_slot.get(t)
             if k is not None:
                 out = level[..., None] + (damp_sums * slope[..., None] if trend else 0.0)
@@ -511,8 +527,11 @@ def _jacobian_pass(y, start, fit_end, theta, *, method, layout, season_length):
     grads = np.zeros((n_series, n_months, width))
     errs = np.zeros((n_series, n_months))
     first = int(start.min()) if n_series else n_months
+    last_start = int(start.max()) if n_series else 0
+    known_months = observed.all(axis=0)
+    stop = min(int(fit_end.max()), n_months) if n_series else 0  # later months are never scored
     with np.errstate(all="ignore"):
-        for t in range(max(first, 0), n_months):
+        for t in range(max(first, 0), stop):
             active = (t >= start)[:, None]
             known = observed[:, t][:, None]
             base = level + ph * slope
@@ -531,8 +550,9 @@ def _jacobian_pass(y, start, fit_end, theta, *, method, layout, season_length):
             else:
                 pred = base
                 d_pred = d_base
-            obs = np.where(known, y[:, t][:, None], pred)
-            d_obs = np.where(known, 0.0, d_pred)
+            all_active, all_known = t >= last_start, known_months[t]
+            obs = y[:, t][:, None] if all_known else np.where(known, y[:, t][:, None], pred)
+            d_obs = 0.0 if all_known else np.where(known, 0.0, d_pred)
             scored = active & known & (t < fit_end)[:, None]
             err = np.where(scored, obs - pred, 0.0)
             sse += err[:, 0] ** 2
@@ -563,13 +583,13 @@ def _jacobian_pass(y, start, fit_end, theta, *, method, layout, season_length):
                 new_slope = bb * (new_level - level) + (1 - bb) * ph * slope
                 d_new_slope = bb * (d_new_level - d_level) + (1 - bb) * d_damped
                 d_new_slope[:, ib] += (new_level - level - ph * slope)[:, 0]
-                slope = np.where(active, new_slope, slope)
-                d_slope = np.where(active, d_new_slope, d_slope)
-            level = np.where(active, new_level, level)
-            d_level = np.where(active, d_new_level, d_level)
+                slope = new_slope if all_active else np.where(active, new_slope, slope)
+                d_slope = d_new_slope if all_active else np.where(active, d_new_slope, d_slope)
+            level = new_level if all_active else np.where(active, new_level, level)
+            d_level = d_new_level if all_active else np.where(active, d_new_level, d_level)
             if seasonal:
-                seasons[t % m] = np.where(active, new_season, s_old)
-                d_seasons[t % m] = np.where(active, d_new_season, d_s)
+                seasons[t % m] = new_season if all_active else np.where(active, new_season, s_old)
+                d_seasons[t % m] = d_new_season if all_active else np.where(active, d_new_season, d_s)
     # JᵀJ and Jᵀe per series over its own span only, series of one span
     # length at a time: each product then has the same operands and shape
     # whichever other series share the block (or how many months the matrix
@@ -666,9 +686,9 @@ def refine_smoothing(
         scale = np.clip(np.where(better, scale * damping[best] / damping[1], scale * 100.0), 1e-6, 1e6)
         sse = np.where(better, best_sse, sse)
         if iteration < iterations - 1:
-            new_sse, new_jtj, new_jte = _jacobian_pass(y, start, fit_end, theta, method=method, layout=layout,
-                                                       season_length=season_length)
-            jtj, jte = new_jtj, new_jte
+            # the SSE kept is the trial's (the same recursion as the grid's)
+            _, jtj, jte = _jacobian_pass(y, start, fit_end, theta, method=method, layout=layout,
+                                         season_length=season_length)
     refined, new_states = _unpack(theta, layout, method)
     return refined, new_states, sse
 
