@@ -58,7 +58,7 @@ from consensus.methods.intervals import apply_bands, band_columns
 from consensus.methods.reconciliation import DEFAULT_RECONCILIATION, RECONCILIATION_METHODS, reconcile_hierarchy
 from consensus.methods.statistical import forecast_statistical
 from consensus.methods.weights import WeightSpec, estimate_weights_from_sums
-from consensus.store.columnar import digest_of, frame_digest
+from consensus.store.columnar import digest_of, frame_digest, pack_frames, unpack_frames
 from consensus.vocabulary import combined_sources, scored_sources
 
 #: Bump when any step changes the numbers, so cached parts made by older code are never read.
@@ -147,18 +147,18 @@ class PlanInputs:
 
 
 class Cache(Protocol):
-    """Where computed parts may be kept: get by key, put with a kind and cycle (for housekeeping)."""
+    """Where computed parts may be kept, as packed frames (consensus.store.columnar.pack_frames)."""
 
-    def get(self, key: str) -> dict[str, pd.DataFrame] | None: ...
+    def get(self, key: str) -> bytes | None: ...
 
-    def put(self, key: str, *, kind: str, cycle: str, frames: dict[str, pd.DataFrame]) -> None: ...
+    def put(self, key: str, *, kind: str, cycle: str, content: bytes) -> None: ...
 
 
 class NoCache:
     def get(self, key: str):
         return None
 
-    def put(self, key: str, *, kind: str, cycle: str, frames) -> None:
+    def put(self, key: str, *, kind: str, cycle: str, content: bytes) -> None:
         return None
 
 
@@ -181,6 +181,8 @@ class _History:
     actuals: pd.DataFrame
     unknown: tuple[str, ...]
     month_digests: dict[str, str]
+    months: np.ndarray  # month index of each row
+    groups: np.ndarray  # statistical group of each row (see _statistical_group)
 
     def known_at(self, cycle: str) -> pd.DataFrame:
         return self.actuals[self.actuals["period"] <= cycle]
@@ -191,7 +193,7 @@ class _History:
         return digest_of(months, [m for m in self.unknown if m <= cycle])
 
 
-def _history(actuals: pd.DataFrame, unknown: tuple[str, ...]) -> _History:
+def _history(actuals: pd.DataFrame, unknown: tuple[str, ...], items: pd.DataFrame | None = None) -> _History:
     frame = actuals[["item", "location", "period", "quantity"]].astype(
         {"item": object, "location": object, "period": object}).reset_index(drop=True)
     frame["quantity"] = frame["quantity"].astype(float)
@@ -199,7 +201,11 @@ def _history(actuals: pd.DataFrame, unknown: tuple[str, ...]) -> _History:
     sums = pd.DataFrame({"period": frame["period"], "h": hashed}).groupby("period", sort=True)["h"]
     digests = {month: f"{int(np.bitwise_xor.reduce(values.to_numpy()))}:{len(values)}"
                for month, values in sums}
-    return _History(actuals=frame, unknown=tuple(sorted(unknown)), month_digests=digests)
+    months = periods.month_indexes(frame["period"]) if len(frame) else np.zeros(0, dtype=int)
+    families = (frame["item"].map(items.drop_duplicates("item").set_index("item")["family"]).fillna("")
+                if items is not None and len(frame) else pd.Series("", index=frame.index))
+    return _History(actuals=frame, unknown=tuple(sorted(unknown)), month_digests=digests, months=months,
+                    groups=_statistical_group(families))
 
 
 # --------------------------------------------------------------------------- statistical source
@@ -212,50 +218,53 @@ def _statistical_group(families: pd.Series) -> np.ndarray:
     return group_of[codes] if len(codes) else np.zeros(0, dtype=int)
 
 
-def _fit_group(args) -> tuple:
-    history, cycle, horizon, families = args
-    result = forecast_statistical(history, cycle=cycle, horizon=horizon, families=families)
-    return result.forecast, result.seasonal_naive, result.series
-
-
-def statistical_for_cycle(history: pd.DataFrame, *, cycle: str, horizon: int, items: pd.DataFrame,
-                          unknown: tuple[str, ...] = (), jobs: int = 1,
-                          pool: ProcessPoolExecutor | None = None) -> dict[str, pd.DataFrame]:
-    """The statistical and seasonal naive forecasts of every series from the orders known at ``cycle``.
-
-    Unknown months are given to the fit as missing observations (NaN), never as zero.
-    Returns {"statistical": [item, location, period, quantity], "naive": …, "series": per-series method}.
-    """
-    known = history[history["period"] <= cycle]
-    if known.empty:
-        empty = pd.DataFrame({c: pd.Series(dtype=float if c == "quantity" else object)
-                              for c in ["item", "location", "period", "quantity"]})
-        return {"statistical": empty, "naive": empty.copy(), "series": pd.DataFrame(columns=["item", "location"])}
-    unknown_here = [m for m in unknown if m <= cycle]
-    if unknown_here:
+def _group_history(history: _History, *, cycle: str, group: int) -> pd.DataFrame:
+    """One statistical group's orders known at ``cycle``, with unknown months as missing observations (NaN)."""
+    known = history.actuals[(history.months <= periods.month_index(cycle)) & (history.groups == group)]
+    unknown_here = [m for m in history.unknown if m <= cycle]
+    if unknown_here and len(known):
         pairs = known[["item", "location"]].drop_duplicates()
         holes = pairs.merge(pd.DataFrame({"period": unknown_here}), how="cross").assign(quantity=np.nan)
         known = pd.concat([known, holes[known.columns]], ignore_index=True)
-    families = items.drop_duplicates("item").set_index("item")["family"]
-    group = _statistical_group(known["item"].map(families).fillna(""))
-    tasks = [(known[group == g], cycle, horizon, families) for g in np.unique(group)]
-    if pool is not None and len(tasks) > 1:
-        results = list(pool.map(_fit_group, tasks))
-    else:
-        results = [_fit_group(t) for t in tasks]
-    order = ["item", "location", "period"]
+    return known
 
-    def gather(position: int, columns: list[str]) -> pd.DataFrame:
+
+def _fit_group(history: _History, items: pd.DataFrame, cycle: str, horizon: int, group: int) -> tuple:
+    """The statistical and seasonal naive forecasts of one fixed group of families (whole families)."""
+    families = items.drop_duplicates("item").set_index("item")["family"]
+    result = forecast_statistical(_group_history(history, cycle=cycle, group=group), cycle=cycle, horizon=horizon,
+                                  families=families)
+    return result.forecast, result.seasonal_naive, result.series
+
+
+def _gather_statistical(results: list[tuple]) -> dict[str, pd.DataFrame]:
+    """One cycle's statistical parts from its groups' results, in the fixed order of the groups."""
+    columns = ["item", "location", "period", "quantity"]
+    if not results:
+        empty = pd.DataFrame({c: pd.Series(dtype=float if c == "quantity" else object) for c in columns})
+        return {"statistical": empty, "naive": empty.copy(), "series": pd.DataFrame(columns=["item", "location"])}
+
+    def gather(position: int, keep: list[str]) -> pd.DataFrame:
         frame = pd.concat([r[position] for r in results], ignore_index=True)
-        frame = frame.sort_values(order[: len([c for c in order if c in frame.columns])], kind="mergesort",
-                                  ignore_index=True)
         if "quantity" in frame:
             frame["quantity"] = cs.rounded(frame["quantity"])
-        return frame[columns].reset_index(drop=True)
+        return frame[keep]
 
-    return {"statistical": gather(0, ["item", "location", "period", "quantity"]),
-            "naive": gather(1, ["item", "location", "period", "quantity"]),
+    return {"statistical": gather(0, columns), "naive": gather(1, columns),
             "series": gather(2, list(results[0][2].columns))}
+
+
+def statistical_for_cycle(history: pd.DataFrame, *, cycle: str, horizon: int, items: pd.DataFrame,
+                          unknown: tuple[str, ...] = ()) -> dict[str, pd.DataFrame]:
+    """The statistical and seasonal naive forecasts of every series from the orders known at ``cycle``.
+
+    Unknown months are given to the fit as missing observations (NaN), never as zero.  The series are
+    fitted in fixed groups of whole families (the same groups whatever the number of processes).
+    Returns {"statistical": [item, location, period, quantity], "naive": …, "series": per-series method}.
+    """
+    book = _history(history, unknown, items)
+    here = np.unique(book.groups[book.months <= periods.month_index(cycle)])
+    return _gather_statistical([_fit_group(book, items, cycle, horizon, int(g)) for g in here])
 
 
 # --------------------------------------------------------------------------- one cycle's sources
@@ -271,6 +280,11 @@ class _Context:
     progress: Callable[[str], None]
     warnings: list[str] = field(default_factory=list)
     made: list[str] = field(default_factory=list)
+    prepared: dict = field(default_factory=dict)  # (kind, cycle) -> the part's frames
+
+
+#: The context forked worker processes read (set before the pool starts, so it reaches them by fork).
+_WORKER: _Context | None = None
 
 
 def _known_lines(lines: pd.DataFrame, items: pd.DataFrame, locations: pd.DataFrame) -> tuple[pd.DataFrame, int]:
@@ -298,40 +312,114 @@ def _cycle_lines(ctx: _Context, c: CycleInputs, kind: str) -> pd.DataFrame:
     return pd.concat(parts, ignore_index=True) if parts else pd.DataFrame()
 
 
-def _statistical(ctx: _Context, c: CycleInputs) -> dict[str, pd.DataFrame]:
-    items = ctx.inputs.items
-    key = digest_of("statistical", METHOD_VERSION, c.name, c.horizon, ctx.history.digest_at(c.name),
-                    items[["item", "family"]])
-    found = ctx.cache.get(key)
-    if found is not None:
-        return found
-    ctx.progress(f"statistical forecast {c.name}")
-    made = statistical_for_cycle(ctx.history.actuals, cycle=c.name, horizon=c.horizon, items=items,
-                                 unknown=ctx.history.unknown, pool=ctx.pool)
-    ctx.cache.put(key, kind="statistical", cycle=c.name, frames=made)
-    ctx.made.append(c.name)
-    return made
+def _statistical_key(ctx: _Context, c: CycleInputs) -> str:
+    return digest_of("statistical", METHOD_VERSION, c.name, c.horizon, ctx.history.digest_at(c.name),
+                     ctx.inputs.items[["item", "family"]])
 
 
-def _human_sources(ctx: _Context, c: CycleInputs) -> pd.DataFrame:
-    """A cycle's submitted sources at planning grain, in force; cached under everything they read."""
-    inputs, spec = ctx.inputs, ctx.spec
+def _aligned_key(ctx: _Context, c: CycleInputs) -> str:
     forecasts = c.submissions[c.submissions["kind"] == "forecast"]
-    key = digest_of("aligned", METHOD_VERSION, c.name, forecasts[["seq", "source", "lines_sha256"]].astype(str)
-                    .values.tolist(), [str(d) for d in forecasts["scope_detail"]],
-                    [list(m or []) for m in forecasts["months"]], ctx.history.digest_at(c.name),
-                    inputs.master_digest(), spec.mix_window_months)
-    found = ctx.cache.get(key)
-    if found is not None:
-        ctx.warnings += found["warnings"]["text"].tolist()
-        return found["aligned"]
-    ctx.progress(f"align {c.name}")
+    return digest_of("aligned", METHOD_VERSION, c.name, forecasts[["seq", "source", "lines_sha256"]].astype(str)
+                     .values.tolist(), [str(d) for d in forecasts["scope_detail"]],
+                     [list(m or []) for m in forecasts["months"]], ctx.history.digest_at(c.name),
+                     ctx.inputs.master_digest(), ctx.spec.mix_window_months)
+
+
+def _stat_task(args) -> bytes:
+    """In a worker (or here): one statistical group of one cycle, packed."""
+    name, horizon, group = args
+    ctx = _WORKER
+    forecast, naive, series = _fit_group(ctx.history, ctx.inputs.items, name, horizon, group)
+    return pack_frames({"statistical": forecast, "naive": naive, "series": series})
+
+
+def _align_task(name: str) -> bytes:
+    """In a worker (or here): one cycle's submitted sources at planning grain, in force, packed."""
+    ctx = _WORKER
+    c = _cycle(ctx, name)
+    forecasts = c.submissions[c.submissions["kind"] == "forecast"]
     lines = _cycle_lines(ctx, c, "forecast")
-    aligned, warnings = _align(lines, forecasts, c.name, inputs, ctx.history, spec.mix_window_months)
-    ctx.cache.put(key, kind="aligned", cycle=c.name,
-                  frames={"aligned": aligned, "warnings": pd.DataFrame({"text": warnings}, dtype=object)})
-    ctx.warnings += warnings
-    return aligned
+    aligned, warnings = _align(lines, forecasts, c.name, ctx.inputs, ctx.history, ctx.spec.mix_window_months)
+    return pack_frames({"aligned": aligned, "warnings": pd.DataFrame({"text": warnings}, dtype=object)})
+
+
+def _cycle(ctx: _Context, name: str) -> CycleInputs:
+    return next(c for c in (ctx.inputs.cycle, *ctx.inputs.past) if c.name == name)
+
+
+def _worker_start() -> None:
+    """A forked worker opens its own store connections (the parent's are not shared across processes)."""
+    from consensus.store.db import get_engine
+
+    get_engine.cache_clear()
+
+
+def _prepare(ctx: _Context, cycles: list[CycleInputs]) -> None:
+    """Make (or read from the cache) every cycle's statistical and aligned parts, spread over the processes.
+
+    Statistical fits go out as (cycle, group) tasks and alignments as one task
+    per cycle; each comes back packed, and a cycle's groups are kept in their
+    fixed order, so the numbers do not depend on how many processes ran them.
+    Parts are held packed until a cycle is read (:func:`_unpacked`).
+    """
+    global _WORKER
+    _WORKER = ctx
+    stat_tasks, align_names = [], []
+    for c in cycles:
+        for kind, key in (("statistical", _statistical_key(ctx, c)), ("aligned", _aligned_key(ctx, c))):
+            if (kind, c.name) in ctx.prepared:
+                continue
+            found = ctx.cache.get(key)
+            if found is not None:
+                ctx.prepared[(kind, c.name)] = found
+                continue
+            if kind == "statistical":
+                here = np.unique(ctx.history.groups[ctx.history.months <= periods.month_index(c.name)])
+                stat_tasks += [(c.name, c.horizon, int(g)) for g in here]
+                if not len(here):
+                    ctx.prepared[(kind, c.name)] = pack_frames(_gather_statistical([]))
+            else:
+                align_names.append(c.name)
+            ctx.prepared.setdefault(("key", kind, c.name), key)
+    if not stat_tasks and not align_names:
+        return
+    ctx.progress(f"statistical forecast of {len({t[0] for t in stat_tasks})} cycle(s), alignment of "
+                 f"{len(align_names)}")
+    pool = ctx.pool if len(stat_tasks) + len(align_names) > 1 else None
+    aligned = iter(pool.map(_align_task, align_names)) if pool is not None else (_align_task(n) for n in align_names)
+    groups: dict[str, list[bytes]] = {}
+    expected = pd.Series([t[0] for t in stat_tasks]).value_counts().to_dict() if stat_tasks else {}
+    results = pool.map(_stat_task, stat_tasks, chunksize=1) if pool is not None else map(_stat_task, stat_tasks)
+    for task, packed in zip(stat_tasks, results):
+        groups.setdefault(task[0], []).append(packed)
+        if len(groups[task[0]]) == expected[task[0]]:  # the cycle's last group: assemble it, keep it packed
+            parts = [unpack_frames(p) for p in groups.pop(task[0])]
+            made = pack_frames(_gather_statistical([(p["statistical"], p["naive"], p["series"]) for p in parts]))
+            ctx.prepared[("statistical", task[0])] = made
+            ctx.cache.put(ctx.prepared[("key", "statistical", task[0])], kind="statistical", cycle=task[0],
+                          content=made)
+            ctx.made.append(task[0])
+    for name, made in zip(align_names, aligned):
+        ctx.prepared[("aligned", name)] = made
+        ctx.cache.put(ctx.prepared[("key", "aligned", name)], kind="aligned", cycle=name, content=made)
+
+
+def _unpacked(ctx: _Context, kind: str, c: CycleInputs, *, keep: bool = True) -> dict[str, pd.DataFrame]:
+    if (kind, c.name) not in ctx.prepared:
+        _prepare(ctx, [c])
+    content = ctx.prepared[(kind, c.name)] if keep else ctx.prepared.pop((kind, c.name))
+    return unpack_frames(content)
+
+
+def _statistical(ctx: _Context, c: CycleInputs, *, keep: bool = True) -> dict[str, pd.DataFrame]:
+    return _unpacked(ctx, "statistical", c, keep=keep)
+
+
+def _human_sources(ctx: _Context, c: CycleInputs, *, keep: bool = True) -> pd.DataFrame:
+    """A cycle's submitted sources at planning grain, in force; cached under everything they read."""
+    found = _unpacked(ctx, "aligned", c, keep=keep)
+    ctx.warnings += found["warnings"]["text"].tolist()
+    return found["aligned"]
 
 
 def _align(lines: pd.DataFrame, forecasts: pd.DataFrame, cycle: str, inputs: PlanInputs, history: _History,
@@ -370,10 +458,13 @@ def _events(ctx: _Context, c: CycleInputs) -> pd.DataFrame:
     return cs.events_in_force(lines, c.submissions[c.submissions["kind"] == "events"])
 
 
-def cycle_frame(ctx: _Context, c: CycleInputs) -> tuple[pd.DataFrame, dict[str, pd.DataFrame]]:
-    """[source, item, location, period, lag, quantity] of every source of one cycle, and its statistical parts."""
-    stat = _statistical(ctx, c)
-    human = _human_sources(ctx, c)
+def cycle_frame(ctx: _Context, c: CycleInputs, *, keep: bool = True) -> tuple[pd.DataFrame, dict[str, pd.DataFrame]]:
+    """[source, item, location, period, lag, quantity] of every source of one cycle, and its statistical parts.
+
+    ``keep=False`` lets go of the cycle's prepared parts once read (a past cycle is read once).
+    """
+    stat = _statistical(ctx, c, keep=keep)
+    human = _human_sources(ctx, c, keep=keep)
     horizon = set(periods.horizon_months(c.name, c.horizon))
     human = human[human["period"].isin(horizon)]
     statistical = stat["statistical"]
@@ -397,21 +488,27 @@ def cycle_frame(ctx: _Context, c: CycleInputs) -> tuple[pd.DataFrame, dict[str, 
 # --------------------------------------------------------------------------- the run
 
 
-def _history_summary(ctx: _Context, patterns: pd.DataFrame) -> hist.HistorySummary:
+def _history_key(ctx: _Context) -> str:
+    """Everything the history summary reads: every past cycle's inputs and published plan, the orders, the
+    master data, the settings that shape it, and the current cycle's statistical key (its demand patterns)."""
     inputs, spec = ctx.inputs, ctx.spec
-    cycle = inputs.cycle.name
-    keep_cells = spec.reconciliation != "bottom_up"
     past_keys = []
     for c in inputs.past:
         forecasts = c.submissions[["seq", "kind", "source", "lines_sha256"]].astype(str).values.tolist()
         past_keys.append([c.name, c.horizon, forecasts, [str(d) for d in c.submissions["scope_detail"]],
                           frame_digest(c.published) if c.published is not None else None])
-    key = digest_of("history", METHOD_VERSION, cycle, past_keys, ctx.history.digest_at(cycle),
-                    inputs.master_digest(), spec.mix_window_months, spec.weights.segment, keep_cells,
-                    list(spec.band_levels), frame_digest(patterns))
-    found = ctx.cache.get(key)
+    return digest_of("history", METHOD_VERSION, inputs.cycle.name, past_keys, ctx.history.digest_at(inputs.cycle.name),
+                     inputs.master_digest(), spec.mix_window_months, spec.weights.segment,
+                     spec.reconciliation != "bottom_up", list(spec.band_levels), _statistical_key(ctx, inputs.cycle))
+
+
+def _history_summary(ctx: _Context, patterns: pd.DataFrame, key: str,
+                     found: bytes | None) -> hist.HistorySummary:
+    inputs, spec = ctx.inputs, ctx.spec
+    cycle = inputs.cycle.name
+    keep_cells = spec.reconciliation != "bottom_up"
     if found is not None:
-        return hist.HistorySummary.from_frames(found)
+        return hist.HistorySummary.from_frames(unpack_frames(found))
     book = hist.build_series_book(ctx.history.actuals[ctx.history.actuals["quantity"].notna()], items=inputs.items,
                                   locations=inputs.locations, cycle=cycle, unknown_months=ctx.history.unknown,
                                   patterns=patterns)
@@ -419,7 +516,7 @@ def _history_summary(ctx: _Context, patterns: pd.DataFrame) -> hist.HistorySumma
                                 sources=tuple(scored_sources()), keep_cells=keep_cells,
                                 band_levels=spec.band_levels)
     for c in inputs.past:
-        frame, _ = cycle_frame(ctx, c)
+        frame, _ = cycle_frame(ctx, c, keep=False)
         frame = frame[frame["period"] <= cycle]
         published = None
         if c.published is not None and len(c.published):
@@ -430,7 +527,7 @@ def _history_summary(ctx: _Context, patterns: pd.DataFrame) -> hist.HistorySumma
         ctx.progress(f"score {c.name}")
         ledger.add_cycle(c.name, frame, bands=published)
     summary = ledger.summary()
-    ctx.cache.put(key, kind="history", cycle=cycle, frames=summary.frames())
+    ctx.cache.put(key, kind="history", cycle=cycle, content=pack_frames(summary.frames()))
     return summary
 
 
@@ -442,22 +539,27 @@ def compute_plan(inputs: PlanInputs, spec: RunSpec | None = None, *, cache: Cach
         raise InvalidSpec("spec must be a RunSpec")
     if not isinstance(jobs, int) or jobs < 1:
         raise InvalidSpec(f"jobs must be a whole number ≥ 1, got {jobs!r}")
+    global _WORKER
     series_count = inputs.actuals[["item", "location"]].drop_duplicates().shape[0] if len(inputs.actuals) else 0
-    pool = None
+    ctx = _Context(inputs=inputs, spec=spec, history=_history(inputs.actuals, inputs.unknown_months, inputs.items),
+                   cache=cache or NoCache(), pool=None, progress=progress or (lambda _m: None))
+    _WORKER = ctx  # set before the pool starts: forked workers read it
     if jobs > 1 and series_count >= PARALLEL_MIN_SERIES:
-        pool = ProcessPoolExecutor(max_workers=jobs, mp_context=get_context("fork"))
+        ctx.pool = ProcessPoolExecutor(max_workers=jobs, mp_context=get_context("fork"), initializer=_worker_start)
     try:
-        ctx = _Context(inputs=inputs, spec=spec, history=_history(inputs.actuals, inputs.unknown_months),
-                       cache=cache or NoCache(), pool=pool, progress=progress or (lambda _m: None))
         return _compute(ctx)
     finally:
-        if pool is not None:
-            pool.shutdown()
+        if ctx.pool is not None:
+            ctx.pool.shutdown()
+        _WORKER = None
 
 
 def _compute(ctx: _Context) -> PlanResult:
     inputs, spec = ctx.inputs, ctx.spec
     cycle = inputs.cycle
+    history_key = _history_key(ctx)
+    history_found = ctx.cache.get(history_key)
+    _prepare(ctx, [cycle] if history_found is not None else [cycle, *inputs.past])  # all at once: in parallel
     current, stat = cycle_frame(ctx, cycle)
     present = [s for s in combined_sources() if s in set(current["source"])]
     combined_rows = current[current["source"].isin(present)]
@@ -465,7 +567,8 @@ def _compute(ctx: _Context) -> PlanResult:
         raise InvalidSpec(f"cycle {cycle.name} has no forecast from any source and no order history")
     summary = _history_summary(ctx, stat["series"][["item", "location", "pattern"]]
                                if "pattern" in stat["series"] else pd.DataFrame(columns=["item", "location",
-                                                                                         "pattern"]))
+                                                                                         "pattern"]),
+                               history_key, history_found)
     ctx.progress("weights")
     segments = _segments(spec.weights.segment, inputs.items, inputs.locations)
     weights = estimate_weights_from_sums(summary.weight_sums(), cycle=cycle.name, segments=segments,
@@ -583,7 +686,7 @@ def trace_cell(inputs: PlanInputs, spec: RunSpec, *, item: str, location: str, p
     items, locations = inputs.items, inputs.locations
     family = items.loc[items["item"] == item, "family"]
     region = locations.loc[locations["location"] == location, "region"]
-    ctx = _Context(inputs=inputs, spec=spec, history=_history(inputs.actuals, inputs.unknown_months),
+    ctx = _Context(inputs=inputs, spec=spec, history=_history(inputs.actuals, inputs.unknown_months, items),
                    cache=NoCache(), pool=None, progress=lambda _m: None)
     lines = _cycle_lines(ctx, c, "forecast")
     columns = cs.TRACE_COLUMNS + ["in_force"]
@@ -608,7 +711,8 @@ def trace_cell(inputs: PlanInputs, spec: RunSpec, *, item: str, location: str, p
 def current_sources(inputs: PlanInputs, spec: RunSpec | None = None) -> pd.DataFrame:
     """Every source of the current cycle at planning grain, as the run would combine them (nothing cached)."""
     spec = spec or RunSpec()
-    ctx = _Context(inputs=inputs, spec=spec, history=_history(inputs.actuals, inputs.unknown_months),
+    ctx = _Context(inputs=inputs, spec=spec, history=_history(inputs.actuals, inputs.unknown_months,
+                                                              inputs.items),
                    cache=NoCache(), pool=None, progress=lambda _m: None)
     frame, _ = cycle_frame(ctx, inputs.cycle)
     return frame

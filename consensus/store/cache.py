@@ -9,29 +9,11 @@ one window of cycles.
 
 from __future__ import annotations
 
-import io
-import zipfile
-
-import pandas as pd
 from sqlalchemy import delete, select
 from sqlmodel import Session
 
-from consensus.store.columnar import pack_frame, unpack_frame
 from consensus.store.db import session_scope
 from consensus.store.models import CacheEntry, utcnow
-
-
-def _bundle(frames: dict[str, pd.DataFrame]) -> bytes:
-    buffer = io.BytesIO()
-    with zipfile.ZipFile(buffer, "w", compression=zipfile.ZIP_STORED) as archive:
-        for name, frame in frames.items():
-            archive.writestr(zipfile.ZipInfo(name, date_time=(1980, 1, 1, 0, 0, 0)), pack_frame(frame))
-    return buffer.getvalue()
-
-
-def _unbundle(content: bytes) -> dict[str, pd.DataFrame]:
-    with zipfile.ZipFile(io.BytesIO(content)) as archive:
-        return {name: unpack_frame(archive.read(name)) for name in archive.namelist()}
 
 
 class StoreCache:
@@ -44,12 +26,13 @@ class StoreCache:
         self.hits = 0
         self.misses = 0
 
-    def get(self, key: str) -> dict[str, pd.DataFrame] | None:
+    def get(self, key: str) -> bytes | None:
+        """The packed frames kept under ``key`` (consensus.store.columnar.pack_frames), or None."""
         if not self.enabled:
             return None
         if key in self.pending:
             self.hits += 1
-            return _unbundle(self.pending[key][2])
+            return self.pending[key][2]
         with session_scope(self.url, write=False) as session:
             table = CacheEntry.__table__
             row = session.execute(select(table.c.content).where(table.c.key == key)).first()
@@ -57,11 +40,11 @@ class StoreCache:
             self.misses += 1
             return None
         self.hits += 1
-        return _unbundle(bytes(row.content))
+        return bytes(row.content)
 
-    def put(self, key: str, *, kind: str, cycle: str, frames: dict[str, pd.DataFrame]) -> None:
+    def put(self, key: str, *, kind: str, cycle: str, content: bytes) -> None:
         if self.enabled:
-            self.pending[key] = (kind, cycle, _bundle(frames))
+            self.pending[key] = (kind, cycle, content)
 
     def write(self, session: Session) -> int:
         """Write the new entries (in the caller's write transaction), each replacing its (kind, cycle)'s older one."""

@@ -15,8 +15,10 @@ gives the same bytes, so a content hash identifies a frame.
 from __future__ import annotations
 
 import hashlib
+import io
 import json
 import struct
+import zipfile
 import zlib
 
 import numpy as np
@@ -172,3 +174,18 @@ def digest_of(*parts) -> str:
         h.update(len(text).to_bytes(8, "little"))
         h.update(text.encode())
     return h.hexdigest()
+
+
+def pack_frames(frames: dict[str, pd.DataFrame]) -> bytes:
+    """Several named frames as one byte string (a zip of packed frames, stored, with fixed dates)."""
+    buffer = io.BytesIO()
+    with zipfile.ZipFile(buffer, "w", compression=zipfile.ZIP_STORED) as archive:
+        for name, frame in frames.items():
+            archive.writestr(zipfile.ZipInfo(name, date_time=(1980, 1, 1, 0, 0, 0)), pack_frame(frame))
+    return buffer.getvalue()
+
+
+def unpack_frames(content: bytes) -> dict[str, pd.DataFrame]:
+    """The frames :func:`pack_frames` wrote, in their order."""
+    with zipfile.ZipFile(io.BytesIO(content)) as archive:
+        return {name: unpack_frame(archive.read(name)) for name in archive.namelist()}
