@@ -160,6 +160,35 @@ class HistoryLedger:
 
     # -- one past cycle -------------------------------------------------------------------
 
+    _STATE = ("_cell_sums", "_pattern_sums", "_nodes", "_bands", "_fva", "_uplift", "_history", "_cells",
+              "_coverage", "_dc")
+
+    def fresh(self) -> "HistoryLedger":
+        """An empty ledger for the same series and settings (a worker fills one per cycle)."""
+        return HistoryLedger(book=self.book, cycle=self.cycle, segment=self.segment, sources=self.sources,
+                             keep_cells=self.keep_cells, band_levels=self.band_levels)
+
+    def state(self) -> dict:
+        """What this ledger has gathered, to be merged into another with :meth:`merge`."""
+        return {**{name: getattr(self, name) for name in self._STATE}, "_cell_acc": self._cell_acc}
+
+    def merge(self, state: dict) -> None:
+        """Add another ledger's gatherings after this one's (cycles merged in order give the same digits)."""
+        for name in self._STATE:
+            mine = getattr(self, name)
+            if isinstance(mine, dict):
+                for key, parts in state[name].items():
+                    mine.setdefault(key, []).extend(parts)
+            else:
+                mine.extend(state[name])
+        self._cell_acc += state["_cell_acc"]
+
+    def score_cycle(self, name: str, forecasts: pd.DataFrame, *, bands: pd.DataFrame | None = None) -> dict:
+        """One cycle's gatherings as a state to :meth:`merge` (so cycles can be scored apart, in any process)."""
+        part = self.fresh()
+        part.add_cycle(name, forecasts, bands=bands)
+        return part.state()
+
     def add_cycle(self, name: str, forecasts: pd.DataFrame, *, bands: pd.DataFrame | None = None) -> None:
         """Score one past cycle's forecasts [source, item, location, period, quantity] (``consensus`` included).
 

@@ -50,6 +50,7 @@ from consensus.errors import InvalidSpec
 from consensus.methods import cycle_sources as cs
 from consensus.methods import history as hist
 from consensus.methods import scoring
+from consensus.methods.accuracy import month_indexes_factorized
 from consensus.methods.alignment import historical_mix
 from consensus.methods.bom import component_totals, explode_bom
 from consensus.methods.combine import combine_sources
@@ -285,6 +286,8 @@ class _Context:
 
 #: The context forked worker processes read (set before the pool starts, so it reaches them by fork).
 _WORKER: _Context | None = None
+#: The ledger forked workers score past cycles with (set before the pool is restarted for scoring).
+_WORKER_LEDGER: hist.HistoryLedger | None = None
 
 
 def _known_lines(lines: pd.DataFrame, items: pd.DataFrame, locations: pd.DataFrame) -> tuple[pd.DataFrame, int]:
@@ -404,6 +407,27 @@ def _prepare(ctx: _Context, cycles: list[CycleInputs]) -> None:
         ctx.cache.put(ctx.prepared[("key", "aligned", name)], kind="aligned", cycle=name, content=made)
 
 
+def _score_task(args) -> tuple[dict, list[str]]:
+    """In a worker (or here): one past cycle's sources scored against the orders that came (a ledger state)."""
+    name, stat, aligned = args
+    ctx = _WORKER
+    c = _cycle(ctx, name)
+    ctx.prepared[("statistical", name)] = stat
+    ctx.prepared[("aligned", name)] = aligned
+    before = len(ctx.warnings)
+    frame, _ = cycle_frame(ctx, c, keep=False)
+    warnings = ctx.warnings[before:]
+    del ctx.warnings[before:]
+    cycle = ctx.inputs.cycle.name
+    frame = frame[frame["period"] <= cycle]
+    published = None
+    if c.published is not None and len(c.published):
+        published = c.published[c.published["period"] <= cycle]
+        frame = pd.concat([frame, published[["item", "location", "period", "consensus"]]
+                           .rename(columns={"consensus": "quantity"}).assign(source="consensus")], ignore_index=True)
+    return _WORKER_LEDGER.score_cycle(name, frame, bands=published), warnings
+
+
 def _unpacked(ctx: _Context, kind: str, c: CycleInputs, *, keep: bool = True) -> dict[str, pd.DataFrame]:
     if (kind, c.name) not in ctx.prepared:
         _prepare(ctx, [c])
@@ -481,7 +505,7 @@ def cycle_frame(ctx: _Context, c: CycleInputs, *, keep: bool = True) -> tuple[pd
     frame = pd.concat([human, with_events, stat["naive"].assign(source=cs.NAIVE)[cs.ALIGNED_COLUMNS]],
                       ignore_index=True)
     frame = frame[frame["period"].isin(horizon)]
-    frame = frame.assign(lag=periods.lags(pd.Series(c.name, index=frame.index), frame["period"]))
+    frame = frame.assign(lag=month_indexes_factorized(frame["period"]) - periods.month_index(c.name))
     return frame.reset_index(drop=True), stat
 
 
@@ -515,17 +539,24 @@ def _history_summary(ctx: _Context, patterns: pd.DataFrame, key: str,
     ledger = hist.HistoryLedger(book=book, cycle=cycle, segment=spec.weights.segment,
                                 sources=tuple(scored_sources()), keep_cells=keep_cells,
                                 band_levels=spec.band_levels)
-    for c in inputs.past:
-        frame, _ = cycle_frame(ctx, c, keep=False)
-        frame = frame[frame["period"] <= cycle]
-        published = None
-        if c.published is not None and len(c.published):
-            published = c.published[c.published["period"] <= cycle]
-            frame = pd.concat([frame, published[["item", "location", "period", "consensus"]]
-                               .rename(columns={"consensus": "quantity"}).assign(source="consensus")],
-                              ignore_index=True)
-        ctx.progress(f"score {c.name}")
-        ledger.add_cycle(c.name, frame, bands=published)
+    global _WORKER_LEDGER
+    _WORKER_LEDGER = ledger
+    _prepare(ctx, list(inputs.past))
+    tasks = [(c.name, ctx.prepared.pop(("statistical", c.name)), ctx.prepared.pop(("aligned", c.name)))
+             for c in inputs.past]
+    if tasks:
+        ctx.progress(f"score {len(tasks)} past cycle(s)")
+    if ctx.pool is not None and len(tasks) > 1:  # forked again, so the workers see the ledger
+        ctx.pool.shutdown()
+        ctx.pool = ProcessPoolExecutor(max_workers=ctx.pool._max_workers, mp_context=get_context("fork"),
+                                       initializer=_worker_start)
+        results = ctx.pool.map(_score_task, tasks)
+    else:
+        results = map(_score_task, tasks)
+    for state, warnings in results:  # merged in cycle order, whichever process scored them
+        ledger.merge(state)
+        ctx.warnings += warnings
+    _WORKER_LEDGER = None
     summary = ledger.summary()
     ctx.cache.put(key, kind="history", cycle=cycle, content=pack_frames(summary.frames()))
     return summary
@@ -561,7 +592,8 @@ def _compute(ctx: _Context) -> PlanResult:
     history_found = ctx.cache.get(history_key)
     _prepare(ctx, [cycle] if history_found is not None else [cycle, *inputs.past])  # all at once: in parallel
     current, stat = cycle_frame(ctx, cycle)
-    present = [s for s in combined_sources() if s in set(current["source"])]
+    in_cycle = set(current["source"].unique())
+    present = [s for s in combined_sources() if s in in_cycle]
     combined_rows = current[current["source"].isin(present)]
     if combined_rows.empty:
         raise InvalidSpec(f"cycle {cycle.name} has no forecast from any source and no order history")
