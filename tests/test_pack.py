@@ -209,12 +209,12 @@ def test_html_parses_with_balanced_sections_and_inline_svg(draft_inputs, draft_p
     parser.close()
     assert parser.errors == [] and parser.stack == []
     n_families = draft_inputs.items["family"].nunique()
-    for section in ("cover", "summary", "exceptions", "by-family", "scorecard", "value-added", "decisions",
-                    "components", "methods"):
+    for section in ("cover", "summary", "exceptions", "by-family", "scorecard", "patterns", "value-added",
+                    "amplification", "decisions", "components", "methods"):
         assert section in parser.section_ids
     assert sum(1 for s in parser.section_ids if s and s.startswith("family-")) == n_families
-    # One chart per family plus the scorecard history and the value-added steps.
-    assert parser.svg_count == n_families + 2
+    # One chart per family plus the scorecard history, the value-added steps and order amplification by DC.
+    assert parser.svg_count == n_families + 3
     assert draft_pack.html_path.read_text(encoding="utf-8") == draft_pack.html
 
 

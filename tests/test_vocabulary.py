@@ -33,6 +33,7 @@ REGISTRIES = {
     "weight bases": vocabulary.WEIGHT_BASES, "weight segments": vocabulary.WEIGHT_SEGMENTS,
     "reconciliation methods": vocabulary.RECONCILIATION_METHODS, "band methods": vocabulary.BAND_METHODS,
     "decision kinds": vocabulary.DECISION_KINDS, "measures": vocabulary.MEASURES,
+    "pattern groups": vocabulary.PATTERN_GROUPS, "amplification states": vocabulary.AMPLIFICATION_STATES,
 }
 
 
@@ -284,7 +285,8 @@ PLAIN_WORDS = {
     "sales", "marketing", "statistical", "consensus", "item", "family", "region", "total", "smooth", "erratic",
     "intermittent", "lumpy", "set", "delta", "equal", "best", "all", "segment", "late", "missing", "accepted",
     "rejected", "received", "replaced", "unchanged", "draft", "open", "published", "disagreement", "tracking",
-    "change", "band", "empirical", "n", "bias",
+    "change", "band", "empirical", "n", "bias", "amplification", "unknown",
+    "regular", "sparse", "other",
 }
 
 
