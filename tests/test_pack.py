@@ -320,12 +320,15 @@ def test_exceptions_are_ranked_by_money_at_stake(draft_inputs):
 def test_pack_renders_with_empty_optional_frames(draft_inputs, tmp_path):
     empties = {name: empty_frame(name) for name in
                ("previous", "disagreement", "decisions", "components", "band_coverage", "scorecard_history",
-                "fva", "missing", "submissions", "scorecard", "weights", "series")}
-    bare = dataclasses.replace(draft_inputs, method_notes={}, **empties)
+                "fva", "missing", "submissions", "scorecard", "weights", "series", "amplification",
+                "accuracy_patterns")}
+    bare = dataclasses.replace(draft_inputs, method_notes={}, amplification_min_months=None, **empties)
     pack = render_pack(bare, pdf_path=tmp_path / "bare.pdf")
     text = " ".join(pdf_pages_text(pack.pdf_path))
     assert "No published previous cycle to compare with." in text
     assert "No overrides this cycle." in text
+    assert squash("No distribution center forecasts to measure yet.") in squash(text)
+    assert squash("No accuracy by demand pattern yet") in squash(text)
     assert pack.refused == ()
 
 
@@ -348,6 +351,16 @@ def test_series_frame_is_optional_for_existing_callers(draft_inputs):
     assert list(bare.series.columns) == list(FRAME_COLUMNS["series"])
     assert bare.series.empty
     assert "Statistical forecast per item" not in build_html(bare)
+
+
+def test_amplification_and_pattern_frames_are_optional_for_existing_callers(draft_inputs):
+    new = ("amplification", "accuracy_patterns", "amplification_min_months")
+    bare = PackInputs(**{f.name: getattr(draft_inputs, f.name) for f in dataclasses.fields(PackInputs)
+                         if f.name not in new})
+    assert bare.amplification.empty and bare.accuracy_patterns.empty and bare.amplification_min_months is None
+    assert list(bare.amplification.columns) == list(FRAME_COLUMNS["amplification"])
+    with pytest.raises(InvalidSpec):
+        dataclasses.replace(draft_inputs, amplification=draft_inputs.amplification.drop(columns=["limit"]))
 
 
 def test_item_method_is_the_most_common_and_wape_is_demand_weighted():

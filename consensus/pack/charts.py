@@ -397,7 +397,9 @@ def draw_amplification(
     limit = np.asarray(limit, dtype=float)
     flagged = np.asarray(flagged, dtype=bool)
     n = len(locations)
-    height = 0.75 + 0.24 * max(n, 1)
+    # Rows thin out as DCs are added, so a dozen DCs still leave the page room for its table.
+    row_inches = 0.24 if n <= 6 else max(0.12, 0.24 - 0.012 * (n - 6))
+    height = 0.75 + row_inches * max(n, 1)
     with rc_context(_RC):
         figure = Figure(figsize=(7.0, height))
         bottom = 0.5 / height
@@ -406,12 +408,13 @@ def draw_amplification(
         y = np.arange(n)[::-1]  # first DC on top
         colours = [TONE_COLOURS["worse"] if f else _consensus_colour() for f in flagged]
         shown = np.isfinite(ratio)
-        bars = ax.barh(y[shown], ratio[shown], height=0.56, color=np.asarray(colours, dtype=object)[shown],
+        bars = ax.barh(y[shown], ratio[shown], height=0.62, color=np.asarray(colours, dtype=object)[shown],
                        edgecolor="white", linewidth=0.6, label=labels["ratio"], zorder=2)
         for bar, is_flagged in zip(bars, flagged[shown]):
             bar.set_hatch("////" if is_flagged else "")
-        ax.scatter(bound, y, marker="|", s=150, linewidths=1.6, color=ACTUAL_COLOUR, label=labels["bound"], zorder=3)
-        ax.scatter(limit, y, marker="|", s=150, linewidths=1.4, color=TONE_COLOURS["worse"], label=labels["limit"],
+        mark = 150 * (row_inches / 0.24) ** 2  # marker area in pt², as tall as a row
+        ax.scatter(bound, y, marker="|", s=mark, linewidths=1.6, color=ACTUAL_COLOUR, label=labels["bound"], zorder=3)
+        ax.scatter(limit, y, marker="|", s=mark, linewidths=1.4, color=TONE_COLOURS["worse"], label=labels["limit"],
                    zorder=3)
         finite = np.concatenate([ratio[shown], bound[np.isfinite(bound)], limit[np.isfinite(limit)], [1.0]])
         right = float(finite.max()) * 1.18

@@ -1452,7 +1452,8 @@ def _amplification(inputs: PackInputs, cons: pd.DataFrame, near_months: list[str
     out = {"rows": [], "notes": [], "labels": labels, "references": references, "multiple": multiple,
            "multiple_text": vocabulary.format_number(multiple, digits=2) if multiple is not None else None,
            "moving_average_months": moving, "bounds": [], "chart": None, "min_months": inputs.amplification_min_months,
-           "n_flagged": 0, "n_not_measured": 0, "n_shown_in_chart": 0, "state_counts": [], "nearest": None}
+           "n_flagged": 0, "n_not_measured": 0, "n_shown_in_chart": 0, "state_counts": [], "nearest": None,
+           "state_words": {t.key: t.label for t in vocabulary.AMPLIFICATION_STATES}}
     if frame.empty:
         return out
     near = cons[cons["period"].isin(near_months)]
@@ -1469,7 +1470,8 @@ def _amplification(inputs: PackInputs, cons: pd.DataFrame, near_months: list[str
     table["_share"] = (table["ratio"] / table["limit"]).fillna(-1.0)
     table = table.sort_values(["_share", "location"], ascending=[False, True], kind="stable")
     out["rows"] = _records(table.drop(columns=["_share"]))
-    out["notes"] = [r["explanation"] for r in out["rows"] if r["state"] in ("out_of_line", "not_measured", "no_ratio")]
+    # The run's own sentence for each out-of-line DC; the other states are defined once under the table.
+    out["notes"] = [r["explanation"] for r in out["rows"] if r["state"] == "out_of_line"]
     out["n_flagged"] = int(table["flagged"].sum())
     out["n_not_measured"] = int((table["state"] == "not_measured").sum())
     counts = table["state"].value_counts()

@@ -151,7 +151,7 @@ def _amplification(parts: dict[str, pd.DataFrame]) -> pd.DataFrame:
     frame = parts.get("amplification", pd.DataFrame())
     if frame.empty:
         return empty_frame("amplification")
-    return frame.reindex(columns=list(FRAME_COLUMNS["amplification"]))
+    return frame.reindex(columns=list(dict.fromkeys([*frame.columns, *FRAME_COLUMNS["amplification"]])))
 
 
 def _pattern_accuracy(parts: dict[str, pd.DataFrame]) -> pd.DataFrame:
