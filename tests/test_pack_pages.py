@@ -239,8 +239,9 @@ def _overflow(document, page_number: int, anchor: str) -> list[str]:
         for inner in box.descendants():
             if not hasattr(inner, "border_box_x"):
                 continue
-            if inner.border_box_x() + inner.border_width() > right + 0.5 or inner.border_box_x() < page.margin_left - 0.5 \
-                    or inner.border_box_y() + inner.border_height() > bottom + 0.5:
+            left_edge, top_edge = inner.border_box_x(), inner.border_box_y()
+            if (left_edge + inner.border_width() > right + 0.5 or left_edge < page.margin_left - 0.5
+                    or top_edge + inner.border_height() > bottom + 0.5):
                 out.append(f"{inner.element_tag} {type(inner).__name__}")
     return out
 

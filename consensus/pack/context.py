@@ -633,7 +633,7 @@ def _exceptions(inputs, cons, sources, items, changes_flagged, *, exception_rows
     # Only sources the consensus weighs can be corrected or down-weighted; the consensus's own lean and the
     # yardsticks' show on the scorecard.
     score = _as_numeric(inputs.scorecard, ["tracking_signal", "bias_pct", "wape"])
-    weighed = score["source"].astype(str).map(lambda k: vocabulary.source(k).combined)
+    weighed = score["source"].astype(str).map(lambda k: vocabulary.source(k).combined).astype(bool)
     biased = score[(score["tracking_signal"].abs() > ts_limit) & weighed].copy()
     plan_value = (
         sources.assign(value=sources["quantity"] * sources["unit_price"]).groupby("source")["value"].sum()
@@ -710,7 +710,8 @@ def _exceptions(inputs, cons, sources, items, changes_flagged, *, exception_rows
         ranked_parts.append(pd.DataFrame({
             "kind": "amplification", "scope": frame["location"],
             "detail": "orders vary " + frame["ratio"].map(lambda v: f"{v:.2f}") + " times as much as demand, limit "
-                      + frame["limit"].map(lambda v: f"{v:.2f}") + f"; plan value through the DC, next {band_months} months",
+                      + frame["limit"].map(lambda v: f"{v:.2f}")
+                      + f"; plan value through the DC, next {band_months} months",
             "question": ask("amplification", frame["location"]),
             "at_stake": frame["at_stake"],
         }))
