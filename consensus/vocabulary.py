@@ -260,6 +260,10 @@ EXCEPTION_KINDS: tuple[ExceptionKind, ...] = (
     ExceptionKind("band", "Wide bands", ("item", "items"),
                   "80% band wider than {band_pct} of the plan over the next {band_months} months",
                   "Hold buffer stock, or firm up the plan for {scope}?"),
+    ExceptionKind("amplification", "Order amplification", ("DC", "DCs"),
+                  "variance ratio of the orders a DC's forecasts imply to its demand above {amplification_limit} "
+                  "the bound of a {amplification_months}-month moving average at its lead time (Chen et al. 2000)",
+                  "Ask {scope} to steady its forecast revisions, or plan supply for the swing?"),
 )
 
 
@@ -274,19 +278,32 @@ def exception_kind(key: str) -> ExceptionKind:
 def describe_exception_rule(
     key: str, *, disagreement_threshold: float | None = None, disagreement_min_units: float | None = None,
     ts_limit: float, change_threshold_pct: float, band_ratio_threshold: float, band_months: int,
-    quantity_unit: str = "units", due_date: str | None = None,
+    quantity_unit: str = "units", due_date: str | None = None, amplification_multiple: float | None = None,
+    amplification_moving_average_months: int | None = None,
 ) -> str:
-    """The rule of an exception kind with its thresholds as numbers, e.g. "|tracking signal| above 4"."""
+    """The rule of an exception kind with its thresholds as numbers, e.g. "|tracking signal| above 4".
+
+    ``amplification_multiple`` is the limit as a multiple of the Chen et al.
+    bound and ``amplification_moving_average_months`` the moving average that
+    bound is for; without them the rule says the run did not record them.
+    """
     if disagreement_threshold is None:
         disagreement = "above the run's threshold, which the run did not record"
     else:
         disagreement = f"above {format_percent_plain(100 * disagreement_threshold)} of the consensus in a month"
     min_units = ("" if not disagreement_min_units
                  else f", and at least {disagreement_min_units:,.0f} {quantity_unit}")
+    if amplification_multiple is None:
+        amplification_limit = "a multiple, which the run did not record, of"
+    else:
+        amplification_limit = f"{format_number(amplification_multiple, digits=2)} times"
     return exception_kind(key).rule.format(
         disagreement=disagreement, min_units=min_units, ts_limit=format_number(ts_limit),
         change_pct=format_percent_plain(change_threshold_pct), band_pct=format_percent_plain(100 * band_ratio_threshold),
         band_months=int(band_months), due=f" by its due date, {due_date}" if due_date else "",
+        amplification_limit=amplification_limit,
+        amplification_months=("p" if amplification_moving_average_months is None
+                              else int(amplification_moving_average_months)),
     )
 
 
@@ -303,8 +320,29 @@ DEMAND_PATTERNS: tuple[Term, ...] = (
     Term("intermittent", "intermittent", "demand in few months, of steady size"),
     Term("lumpy", "lumpy", "demand in few months, of very uneven size"),
     Term("no_demand", "no demand", "no demand at all in the history"),
+    Term("unknown", "not classed", "series the statistical forecast did not class this cycle"),
 )
 PATTERN_REFERENCE = "Syntetos, Boylan & Croston (2005)"
+
+#: How the accuracy-by-pattern page groups the patterns: regular demand apart from slow and lumpy demand.
+PATTERN_GROUPS: tuple[Term, ...] = (
+    Term("regular", "Regular demand", "demand in most months, of steady or uneven size"),
+    Term("sparse", "Slow and lumpy demand", "demand in few months, where a WAPE above 100% is usual"),
+    Term("other", "Other series", "no demand in the history, or not classed"),
+)
+#: The group of each demand pattern (patterns not listed fall in "other").
+PATTERN_GROUP_OF: dict[str, str] = {"smooth": "regular", "erratic": "regular", "intermittent": "sparse",
+                                    "lumpy": "sparse"}
+
+#: Where a DC stands on order amplification (methods.amplification), as its row on the pack says.
+AMPLIFICATION_STATES: tuple[Term, ...] = (
+    Term("out_of_line", "Out of line", "its orders vary more than the limit: more swing passed upstream than "
+         "lead time and forecast updates explain"),
+    Term("within_limit", "Within the limit", "above the bound, but within the limit"),
+    Term("below_bound", "Below the bound", "less swing than a moving-average forecast would add at the least"),
+    Term("not_measured", "Not measured", "no item has enough months of successive forecasts and known demand yet"),
+    Term("no_ratio", "No ratio", "its customers' demand did not vary over the months measured"),
+)
 
 #: Methods of the statistical forecast; labels are names a planner can look up.
 STATISTICAL_METHODS: tuple[Term, ...] = (
@@ -407,6 +445,13 @@ MEASURES: tuple[Term, ...] = (
     Term("tracking_signal", "Tracking signal", "cumulative error divided by the mean absolute error",
          "Brown 1959"),
     Term("mase", "MASE", "mean absolute error scaled by that of same-month-last-year", "Hyndman & Koehler 2006"),
+    Term("variance_ratio", "Variance ratio", "how many times as much the orders a DC passes upstream vary as the "
+         "customer demand it serves: Var(orders) ÷ Var(demand)", "Lee, Padmanabhan & Whang 1997"),
+    Term("amplification_bound", "Bound", "the least variance ratio a p-month moving-average forecast gives at "
+         "lead time L: 1 + 2L/p + 2L²/p²", "Chen, Drezner, Ryan & Simchi-Levi 2000"),
+    Term("amplification_limit", "Limit", "the variance ratio above which a DC is out of line: a multiple of its "
+         "bound that leaves room for the sampling noise of a ratio of two variances (the tool's choice, not a "
+         "published value)"),
     Term("n", "Forecasts scored", "how many past forecasts have been compared with actual demand"),
     Term("n_zero_actual", "Months with zero actual", "left out of MAPE, which cannot divide by zero"),
     Term("winkler", "Winkler score", "band width plus a penalty for each actual outside it; lower is better",

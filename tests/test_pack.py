@@ -209,12 +209,12 @@ def test_html_parses_with_balanced_sections_and_inline_svg(draft_inputs, draft_p
     parser.close()
     assert parser.errors == [] and parser.stack == []
     n_families = draft_inputs.items["family"].nunique()
-    for section in ("cover", "summary", "exceptions", "by-family", "scorecard", "value-added", "decisions",
-                    "components", "methods"):
+    for section in ("cover", "summary", "exceptions", "by-family", "scorecard", "patterns", "value-added",
+                    "amplification", "decisions", "components", "methods"):
         assert section in parser.section_ids
     assert sum(1 for s in parser.section_ids if s and s.startswith("family-")) == n_families
-    # One chart per family plus the scorecard history and the value-added steps.
-    assert parser.svg_count == n_families + 2
+    # One chart per family plus the scorecard history, the value-added steps and order amplification by DC.
+    assert parser.svg_count == n_families + 3
     assert draft_pack.html_path.read_text(encoding="utf-8") == draft_pack.html
 
 
@@ -320,12 +320,15 @@ def test_exceptions_are_ranked_by_money_at_stake(draft_inputs):
 def test_pack_renders_with_empty_optional_frames(draft_inputs, tmp_path):
     empties = {name: empty_frame(name) for name in
                ("previous", "disagreement", "decisions", "components", "band_coverage", "scorecard_history",
-                "fva", "missing", "submissions", "scorecard", "weights", "series")}
-    bare = dataclasses.replace(draft_inputs, method_notes={}, **empties)
+                "fva", "missing", "submissions", "scorecard", "weights", "series", "amplification",
+                "accuracy_patterns")}
+    bare = dataclasses.replace(draft_inputs, method_notes={}, amplification_min_months=None, **empties)
     pack = render_pack(bare, pdf_path=tmp_path / "bare.pdf")
     text = " ".join(pdf_pages_text(pack.pdf_path))
     assert "No published previous cycle to compare with." in text
     assert "No overrides this cycle." in text
+    assert squash("No distribution center forecasts to measure yet.") in squash(text)
+    assert squash("No accuracy by demand pattern yet") in squash(text)
     assert pack.refused == ()
 
 
@@ -348,6 +351,16 @@ def test_series_frame_is_optional_for_existing_callers(draft_inputs):
     assert list(bare.series.columns) == list(FRAME_COLUMNS["series"])
     assert bare.series.empty
     assert "Statistical forecast per item" not in build_html(bare)
+
+
+def test_amplification_and_pattern_frames_are_optional_for_existing_callers(draft_inputs):
+    new = ("amplification", "accuracy_patterns", "amplification_min_months")
+    bare = PackInputs(**{f.name: getattr(draft_inputs, f.name) for f in dataclasses.fields(PackInputs)
+                         if f.name not in new})
+    assert bare.amplification.empty and bare.accuracy_patterns.empty and bare.amplification_min_months is None
+    assert list(bare.amplification.columns) == list(FRAME_COLUMNS["amplification"])
+    with pytest.raises(InvalidSpec):
+        dataclasses.replace(draft_inputs, amplification=draft_inputs.amplification.drop(columns=["limit"]))
 
 
 def test_item_method_is_the_most_common_and_wape_is_demand_weighted():

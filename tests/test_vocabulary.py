@@ -33,6 +33,7 @@ REGISTRIES = {
     "weight bases": vocabulary.WEIGHT_BASES, "weight segments": vocabulary.WEIGHT_SEGMENTS,
     "reconciliation methods": vocabulary.RECONCILIATION_METHODS, "band methods": vocabulary.BAND_METHODS,
     "decision kinds": vocabulary.DECISION_KINDS, "measures": vocabulary.MEASURES,
+    "pattern groups": vocabulary.PATTERN_GROUPS, "amplification states": vocabulary.AMPLIFICATION_STATES,
 }
 
 
@@ -157,6 +158,17 @@ def test_exception_counts_and_rules_carry_units_and_numbers():
     assert "80% of the plan over the next 3 months" in vocabulary.describe_exception_rule("band", **rules)
     unknown = vocabulary.describe_exception_rule("disagreement", **{**rules, "disagreement_threshold": None})
     assert "did not record" in unknown
+
+
+def test_the_amplification_rule_and_count_carry_their_numbers_and_unit():
+    # The limit of consensus.methods.amplification: 1.5 times the bound of a 12-month moving average.
+    rules = dict(ts_limit=4.0, change_threshold_pct=25.0, band_ratio_threshold=0.8, band_months=3)
+    rule = vocabulary.describe_exception_rule("amplification", **rules, amplification_multiple=1.5,
+                                              amplification_moving_average_months=12)
+    assert "above 1.5 times the bound of a 12-month moving average at its lead time" in rule
+    assert vocabulary.describe_count(1, "amplification") == "1 DC"
+    assert vocabulary.describe_count(3, "amplification") == "3 DCs"
+    assert set(vocabulary.PATTERN_GROUP_OF.values()) <= {t.key for t in vocabulary.PATTERN_GROUPS}
 
 
 def test_value_added_walks_back_to_a_baseline_that_is_present():
@@ -284,7 +296,8 @@ PLAIN_WORDS = {
     "sales", "marketing", "statistical", "consensus", "item", "family", "region", "total", "smooth", "erratic",
     "intermittent", "lumpy", "set", "delta", "equal", "best", "all", "segment", "late", "missing", "accepted",
     "rejected", "received", "replaced", "unchanged", "draft", "open", "published", "disagreement", "tracking",
-    "change", "band", "empirical", "n", "bias",
+    "change", "band", "empirical", "n", "bias", "amplification", "unknown",
+    "regular", "sparse", "other",
 }
 
 
@@ -359,6 +372,21 @@ def test_every_source_level_state_and_kind_shown_is_a_registry_label(pack_html):
     assert "Family × region" in level_headers
     legend = [e.strip() for e in reader.legend]
     assert set(legend) - {"Actual", "80% band", "95% band", "Last cycle's plan"} <= sources
+    # Order amplification: each DC's standing, and the measures over its columns, are registry labels.
+    amplification_states = {t.label for t in vocabulary.AMPLIFICATION_STATES}
+    stands = _shown(reader, "Where it stands")
+    assert stands and set(stands) <= amplification_states
+    measures = {t.label for t in vocabulary.MEASURES}
+    amplification_headers = {c["text"].strip() for t in reader.tables if _columns(t, "Where it stands")
+                             for c in t["head"][-1]["cells"]}
+    assert {"Variance ratio", "Bound", "Limit"} <= amplification_headers & measures
+    # Accuracy by demand pattern: the patterns over its column groups are the patterns' registry labels.
+    patterns = {t.label for t in vocabulary.DEMAND_PATTERNS}
+    pattern_groups = [c["text"].strip() for t in reader.tables if len(t["head"]) > 1 and _columns(t, "MASE")
+                      for c in t["head"][0]["cells"][1:]]
+    assert pattern_groups
+    for text in pattern_groups:  # the label, then how many series have the pattern this cycle
+        assert any(re.fullmatch(rf"{re.escape(p)}( [\d,]+ series this cycle)?", text) for p in patterns), text
 
 
 def test_exception_headings_are_the_kind_names_with_units_and_rules(pack_html):

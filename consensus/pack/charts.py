@@ -20,6 +20,8 @@ import numpy as np
 from matplotlib import rc_context
 from matplotlib.backends.backend_svg import FigureCanvasSVG
 from matplotlib.figure import Figure
+from matplotlib.lines import Line2D
+from matplotlib.patches import Patch
 from matplotlib.ticker import FuncFormatter, MaxNLocator
 
 from consensus import vocabulary
@@ -374,6 +376,82 @@ def draw_value_added_steps(
         ax.set_ylim(0, (np.nanmax(wape) if np.isfinite(wape).any() else 1) * 1.35)
         ax.set_xticks(x, [_wrap(step, 16) for step in steps])
         ax.tick_params(axis="x", labelsize=6.8)
+    return _figure_to_svg(figure, salt)
+
+
+def draw_amplification(
+    *, locations: Sequence[str], ratio: np.ndarray, bound: np.ndarray, limit: np.ndarray, flagged: np.ndarray,
+    labels: Mapping[str, str], missing_texts: Sequence[str], salt: str = "amplification",
+) -> str:
+    """SVG of each DC's variance ratio (bars) against its bound and its limit (marks), one row per DC.
+
+    ``labels`` names the ratio, bound and limit as the table does, and the
+    out-of-line state ("ratio", "bound", "limit", "out_of_line");
+    ``missing_texts`` is what a DC without a ratio shows instead of a bar (its
+    state, e.g. "Not measured").  An out-of-line bar is amber and hatched, the
+    others blue, so the flag never rests on colour alone.  The ratio 1 (demand
+    passed on as it comes) is a thin rule.
+    """
+    ratio = np.asarray(ratio, dtype=float)
+    bound = np.asarray(bound, dtype=float)
+    limit = np.asarray(limit, dtype=float)
+    flagged = np.asarray(flagged, dtype=bool)
+    n = len(locations)
+    # Rows thin out as DCs are added, so a dozen DCs still leave the page room for its table.
+    row_inches = 0.24 if n <= 6 else max(0.12, 0.24 - 0.012 * (n - 6))
+    height = 0.75 + row_inches * max(n, 1)
+    with rc_context(_RC):
+        figure = Figure(figsize=(7.0, height))
+        bottom = 0.5 / height
+        top = 0.22 / height
+        ax = figure.add_axes((0.11, bottom, 0.86, 1 - bottom - top))
+        y = np.arange(n)[::-1]  # first DC on top
+        colours = [TONE_COLOURS["worse"] if f else _consensus_colour() for f in flagged]
+        shown = np.isfinite(ratio)
+        bars = ax.barh(y[shown], ratio[shown], height=0.62, color=np.asarray(colours, dtype=object)[shown],
+                       edgecolor="white", linewidth=0.6, label=labels["ratio"], zorder=2)
+        for bar, is_flagged in zip(bars, flagged[shown]):
+            bar.set_hatch("////" if is_flagged else "")
+        mark = 150 * (row_inches / 0.24) ** 2  # marker area in pt², as tall as a row
+        ax.scatter(bound, y, marker="|", s=mark, linewidths=1.6, color=ACTUAL_COLOUR, label=labels["bound"], zorder=3)
+        ax.scatter(limit, y, marker="|", s=mark, linewidths=1.4, color=TONE_COLOURS["worse"], label=labels["limit"],
+                   zorder=3)
+        finite = np.concatenate([ratio[shown], bound[np.isfinite(bound)], limit[np.isfinite(limit)], [1.0]])
+        right = float(finite.max()) * 1.18
+        # Each value at its bar's end, moved past a mark that its text would cross, so it stays readable.
+        room = right * 0.075  # about the width of "0.00" at this size
+        ends = ratio.copy()
+        for marks in (bound, limit):
+            crossed = (marks >= ends - right * 0.004) & (marks <= ends + room)
+            ends = np.where(crossed, marks, ends)
+        for yi, value, end, is_flagged in zip(y[shown], ratio[shown], ends[shown], flagged[shown]):
+            ax.text(end + right * 0.012, yi, f"{value:.2f}", va="center", ha="left", fontsize=6.8,
+                    color=TONE_COLOURS["worse"] if is_flagged else "#222222", fontweight="bold" if is_flagged
+                    else "normal", zorder=4)
+        for yi, text in zip(y[~shown], np.asarray(list(missing_texts), dtype=object)[~shown]):
+            ax.text(right * 0.01, yi, str(text), va="center", ha="left", fontsize=6.8, color="#5b6470",
+                    style="italic")
+        ax.axvline(1.0, color="#8a8a8a", linewidth=0.6, zorder=1)
+        ax.set_xlim(0, right)
+        ax.set_ylim(-0.6, n - 0.4)
+        ax.set_yticks(y, list(locations))
+        ax.tick_params(axis="y", length=0, labelsize=7)
+        ax.spines[["top", "right"]].set_visible(False)
+        ax.grid(axis="x", color="#e3e3e3", linewidth=0.5)
+        ax.set_axisbelow(True)
+        ax.xaxis.set_major_locator(MaxNLocator(nbins=6))
+        ax.set_xlabel("variance of orders ÷ variance of demand (1: passed on as it comes)", labelpad=1)
+        # Proxy swatches, so the legend shows the ordinary bar whatever the first DC is, and the out-of-line one.
+        handles = [Patch(facecolor=_consensus_colour(), edgecolor="white", label=labels["ratio"])]
+        if flagged.any():
+            handles.append(Patch(facecolor=TONE_COLOURS["worse"], edgecolor="white", hatch="////",
+                                 label=labels["out_of_line"]))
+        handles += [Line2D([], [], color=ACTUAL_COLOUR, marker="|", linestyle="none", markersize=9,
+                           markeredgewidth=1.6, label=labels["bound"]),
+                    Line2D([], [], color=TONE_COLOURS["worse"], marker="|", linestyle="none", markersize=9,
+                           markeredgewidth=1.4, label=labels["limit"])]
+        figure.legend(handles=handles, loc="upper right", ncol=len(handles), frameon=False, fontsize=6.8,
+                      handlelength=1.6, bbox_to_anchor=(0.97, 1.0), borderaxespad=0.1)
     return _figure_to_svg(figure, salt)
 
 

@@ -238,15 +238,18 @@ def build_pack_context(
     changes_top, changes_flagged = _changes_vs_last_cycle(
         cons, previous, sources, inputs, top_changes, change_threshold_pct, source_names
     )
+    amplification = _amplification(inputs, cons, plan_months[:band_months], with_charts=with_charts)
     thresholds = {
         "disagreement_threshold": inputs.disagreement_threshold, "disagreement_min_units": inputs.disagreement_min_units,
         "ts_limit": ts_limit, "change_threshold_pct": change_threshold_pct,
         "band_ratio_threshold": band_ratio_threshold, "band_months": band_months,
         "quantity_unit": inputs.quantity_unit, "due_date": _due_date(inputs),
+        "amplification_multiple": amplification["multiple"],
+        "amplification_moving_average_months": amplification["moving_average_months"],
     }
     exceptions = _exceptions(
         inputs, cons, sources, items, changes_flagged, exception_rows=exception_rows, thresholds=thresholds,
-        plan_months=plan_months,
+        plan_months=plan_months, amplification=amplification,
     )
     families = _family_pages(
         inputs, fam_plan, fam_act, sources, cons, family_order, source_names, plan_months,
@@ -300,7 +303,9 @@ def build_pack_context(
         "families": families,
         "family_legend": charts.legend_entries(source_names, with_previous=not inputs.previous.empty),
         "scorecard": scorecard,
+        "patterns": _pattern_accuracy(inputs, source_names=source_names),
         "fva": fva,
+        "amplification": amplification,
         "decisions": _decision_rows(inputs.decisions),
         "components": _components(inputs.components, plan_months, component_rows),
         "band_coverage": band_coverage,
@@ -567,11 +572,14 @@ def _changes_vs_last_cycle(
 # --------------------------------------------------------------------------- exceptions
 
 
-def _exceptions(inputs, cons, sources, items, changes_flagged, *, exception_rows, thresholds, plan_months) -> dict[str, Any]:
+def _exceptions(inputs, cons, sources, items, changes_flagged, *, exception_rows, thresholds, plan_months,
+                amplification) -> dict[str, Any]:
     """The exceptions of the cycle, each table ranked by money at stake, plus one ranked list of questions.
 
     Each kind has one name, a count in a stated unit and its rule with the
     thresholds as numbers, all from :data:`consensus.vocabulary.EXCEPTION_KINDS`.
+    ``amplification`` is the order-amplification page's context, whose
+    out-of-line DCs are raised here.
     """
     ts_limit = thresholds["ts_limit"]
     band_months = thresholds["band_months"]
@@ -625,7 +633,7 @@ def _exceptions(inputs, cons, sources, items, changes_flagged, *, exception_rows
     # Only sources the consensus weighs can be corrected or down-weighted; the consensus's own lean and the
     # yardsticks' show on the scorecard.
     score = _as_numeric(inputs.scorecard, ["tracking_signal", "bias_pct", "wape"])
-    weighed = score["source"].astype(str).map(lambda k: vocabulary.source(k).combined)
+    weighed = score["source"].astype(str).map(lambda k: vocabulary.source(k).combined).astype(bool)
     biased = score[(score["tracking_signal"].abs() > ts_limit) & weighed].copy()
     plan_value = (
         sources.assign(value=sources["quantity"] * sources["unit_price"]).groupby("source")["value"].sum()
@@ -695,6 +703,19 @@ def _exceptions(inputs, cons, sources, items, changes_flagged, *, exception_rows
             "at_stake": wide["at_stake"],
         }))
 
+    # DCs whose implied orders vary beyond their limit: the plan value passing through the DC in the near months.
+    amplified = [r for r in amplification["rows"] if r["flagged"]]
+    if amplified:
+        frame = pd.DataFrame(amplified)
+        ranked_parts.append(pd.DataFrame({
+            "kind": "amplification", "scope": frame["location"],
+            "detail": "orders vary " + frame["ratio"].map(lambda v: f"{v:.2f}") + " times as much as demand, limit "
+                      + frame["limit"].map(lambda v: f"{v:.2f}")
+                      + f"; plan value through the DC, next {band_months} months",
+            "question": ask("amplification", frame["location"]),
+            "at_stake": frame["at_stake"],
+        }))
+
     ranked = (
         pd.concat(ranked_parts, ignore_index=True).sort_values("at_stake", ascending=False, kind="stable")
         if ranked_parts else pd.DataFrame(columns=["kind", "scope", "detail", "question", "at_stake"])
@@ -728,6 +749,8 @@ def _exceptions(inputs, cons, sources, items, changes_flagged, *, exception_rows
         "changes_total": int(len(changes_flagged)),
         "wide_bands": _records(wide.head(exception_rows)),
         "wide_bands_total": int(len(wide)),
+        "amplified": sorted(amplified, key=lambda r: -r["at_stake"])[:exception_rows],
+        "amplified_total": len(amplified),
         "ts_limit": ts_limit,
         "ts_limit_text": vocabulary.format_number(ts_limit),
         "change_threshold_pct": thresholds["change_threshold_pct"],
@@ -1322,6 +1345,156 @@ def _band_coverage(frame: pd.DataFrame) -> list[dict]:
     return _records(out.drop(columns="_rank"))
 
 
+# --------------------------------------------------------------------------- accuracy by demand pattern
+
+
+def _pattern_accuracy(inputs: PackInputs, *, source_names) -> dict[str, Any]:
+    """WAPE, MASE and bias by demand pattern for each source scored, regular patterns apart from slow ones.
+
+    Rows are the stored pooled figures (every lag together); patterns are
+    grouped by :data:`consensus.vocabulary.PATTERN_GROUP_OF` and listed in the
+    registry's order, sources in display order.  MASE (Hyndman & Koehler 2006)
+    is mean absolute error ÷ the seasonal naive's in-sample mean absolute
+    error, so below 1 beats that yardstick whatever the volume; for each
+    pattern the source with the lowest MASE is named.
+    """
+    frame = inputs.accuracy_patterns
+    if "lag_bucket" in frame.columns:
+        frame = frame[frame["lag_bucket"].astype(str) == "all"]
+    frame = _as_numeric(frame, ["n", "wape", "mase", "bias_pct"])
+    measures = {key: vocabulary.label(vocabulary.MEASURES, key) for key in ("n", "wape", "mase", "bias_pct")}
+    words = {"measures": measures, "reference": vocabulary.term(vocabulary.MEASURES, "mase").reference,
+             "yardstick_label": vocabulary.source_label("naive")}
+    if frame.empty:
+        return {"groups": [], **words}
+    frame = frame.assign(pattern=frame["pattern"].astype(str), source=frame["source"].astype(str))
+    pattern_rank = {t.key: i for i, t in enumerate(vocabulary.DEMAND_PATTERNS)}
+    patterns = sorted(frame["pattern"].unique(), key=lambda k: (pattern_rank.get(k, len(pattern_rank)), k))
+    sources = vocabulary.ordered(list(source_names) + list(frame["source"].unique()))
+    sources = [s for s in sources if s in set(frame["source"])]
+    n_series = inputs.series["pattern"].astype(str).value_counts() if not inputs.series.empty else pd.Series(dtype=int)
+    cells = frame.drop_duplicates(["pattern", "source"]).set_index(["pattern", "source"])
+    groups = []
+    for group in vocabulary.PATTERN_GROUPS:
+        members = [p for p in patterns if vocabulary.PATTERN_GROUP_OF.get(p, "other") == group.key]
+        if not members:
+            continue
+        columns = []
+        for pattern in members:
+            scored = cells.loc[pattern]
+            best = scored["mase"].dropna()
+            columns.append({
+                "pattern": pattern, "label": vocabulary.label(vocabulary.DEMAND_PATTERNS, pattern),
+                "n_series": int(n_series.get(pattern, 0)) or None,
+                "best_label": vocabulary.source_label(best.idxmin()) if len(best) else None,
+                "best_mase": float(best.min()) if len(best) else None,
+            })
+        rows = []
+        for source in sources:
+            values = []
+            for pattern in members:
+                if (pattern, source) in cells.index:
+                    row = cells.loc[(pattern, source)]
+                    mase = None if pd.isna(row["mase"]) else float(row["mase"])
+                    values.append({"n": row["n"], "wape": row["wape"], "bias_pct": row["bias_pct"], "mase": mase,
+                                   "tone": "" if mase is None or round(mase, 2) == 1 else
+                                   ("better" if mase < 1 else "worse")})
+                else:
+                    values.append(None)
+            if any(v is not None for v in values):
+                rows.append({"source": source, "label": vocabulary.source_label(source), "values": values})
+        groups.append({"key": group.key, "label": group.label, "description": group.description,
+                       "columns": columns, "rows": rows})
+    return {"groups": groups, **words}
+
+
+# --------------------------------------------------------------------------- order amplification
+
+
+#: DCs drawn in the order-amplification chart at most (the most out of line first); the table lists all.
+AMPLIFICATION_CHART_ROWS = 30
+
+
+def _amplification_state(n_series, ratio, bound, flagged) -> str:
+    """Where a DC stands, as :func:`consensus.methods.amplification._explain` words it (registry keys)."""
+    if not n_series:
+        return "not_measured"
+    if ratio is None or not math.isfinite(ratio):
+        return "no_ratio"
+    if flagged:
+        return "out_of_line"
+    return "below_bound" if ratio < bound else "within_limit"
+
+
+def _amplification(inputs: PackInputs, cons: pd.DataFrame, near_months: list[str], *, with_charts: bool) -> dict:
+    """The order-amplification page: each DC's variance ratio against its bound and limit, and what is at stake.
+
+    Ratio Var(orders)/Var(demand) (Lee, Padmanabhan & Whang 1997) and bound
+    1 + 2L/p + 2L²/p² (Chen, Drezner, Ryan & Simchi-Levi 2000) are the run's
+    (:mod:`consensus.methods.amplification`); the pack only lays them out.  The
+    money at stake of an out-of-line DC is the plan value through it over
+    ``near_months``, the orders its swing lands on.  The limit's multiple of
+    the bound and the moving average are read back from the rows (limit ÷
+    bound, p), and fall back to the measure's defaults when no DC is measured.
+    """
+    from consensus.methods.amplification import DEFAULT_FLAG_MULTIPLE, DEFAULT_MOVING_AVERAGE_MONTHS
+
+    frame = _as_numeric(inputs.amplification, ["n_series", "n_months", "ratio", "moving_average_months",
+                                               "lead_time_months", "bound", "limit"])
+    labels = {"ratio": vocabulary.label(vocabulary.MEASURES, "variance_ratio"),
+              "bound": vocabulary.label(vocabulary.MEASURES, "amplification_bound"),
+              "limit": vocabulary.label(vocabulary.MEASURES, "amplification_limit")}
+    references = {"ratio": vocabulary.term(vocabulary.MEASURES, "variance_ratio").reference,
+                  "bound": vocabulary.term(vocabulary.MEASURES, "amplification_bound").reference}
+    multiples = (frame["limit"] / frame["bound"].where(frame["bound"] > 0)).dropna().round(4).unique()
+    windows = frame["moving_average_months"].dropna().unique()
+    multiple = float(multiples[0]) if len(multiples) == 1 else (None if len(multiples) else DEFAULT_FLAG_MULTIPLE)
+    moving = int(windows[0]) if len(windows) == 1 else (None if len(windows) else DEFAULT_MOVING_AVERAGE_MONTHS)
+    out = {"rows": [], "notes": [], "labels": labels, "references": references, "multiple": multiple,
+           "multiple_text": vocabulary.format_number(multiple, digits=2) if multiple is not None else None,
+           "moving_average_months": moving, "bounds": [], "chart": None, "min_months": inputs.amplification_min_months,
+           "n_flagged": 0, "n_not_measured": 0, "n_shown_in_chart": 0, "state_counts": [], "nearest": None,
+           "state_words": {t.key: t.label for t in vocabulary.AMPLIFICATION_STATES}}
+    if frame.empty:
+        return out
+    near = cons[cons["period"].isin(near_months)]
+    through = near.groupby("location")["value"].sum() if not near.empty else pd.Series(dtype=float)
+    regions = inputs.locations.drop_duplicates("location").set_index("location")["region"]
+    flagged = frame["flagged"].fillna(False).astype(bool).to_numpy()
+    table = frame.assign(flagged=flagged, location=frame["location"].astype(str))
+    table["state"] = [_amplification_state(n, r if pd.notna(r) else None, b, f) for n, r, b, f in
+                      zip(table["n_series"].fillna(0), table["ratio"], table["bound"], table["flagged"])]
+    table["state_label"] = table["state"].map(lambda k: vocabulary.label(vocabulary.AMPLIFICATION_STATES, k))
+    table["region"] = table["location"].map(regions)
+    table["at_stake"] = table["location"].map(through).fillna(0.0).where(table["flagged"], 0.0)
+    # Out of line first, then by how near the limit; unmeasured DCs last, in code order.
+    table["_share"] = (table["ratio"] / table["limit"]).fillna(-1.0)
+    table = table.sort_values(["_share", "location"], ascending=[False, True], kind="stable")
+    out["rows"] = _records(table.drop(columns=["_share"]))
+    # The run's own sentence for each out-of-line DC; the other states are defined once under the table.
+    out["notes"] = [r["explanation"] for r in out["rows"] if r["state"] == "out_of_line"]
+    out["n_flagged"] = int(table["flagged"].sum())
+    out["n_not_measured"] = int((table["state"] == "not_measured").sum())
+    counts = table["state"].value_counts()
+    out["state_counts"] = [{"n": int(counts[t.key]), "label": t.label} for t in vocabulary.AMPLIFICATION_STATES
+                           if t.key in counts.index]
+    within = table[table["state"].isin(["within_limit", "below_bound"])]
+    out["nearest"] = _records(within.head(1).drop(columns=["_share"]))[0] if len(within) else None
+    pairs = table[["lead_time_months", "bound"]].dropna().drop_duplicates().sort_values("lead_time_months")
+    out["bounds"] = [{"lead_time_months": int(l), "bound": float(b)} for l, b in pairs.itertuples(index=False)]
+    if with_charts:
+        shown = table.head(AMPLIFICATION_CHART_ROWS)
+        out["n_shown_in_chart"] = int(len(shown))
+        out["chart"] = Markup(charts.draw_amplification(
+            locations=shown["location"].tolist(), ratio=shown["ratio"].to_numpy(float),
+            bound=shown["bound"].to_numpy(float), limit=shown["limit"].to_numpy(float),
+            flagged=shown["flagged"].to_numpy(bool), missing_texts=shown["state_label"].tolist(),
+            labels={**labels, "out_of_line": vocabulary.label(vocabulary.AMPLIFICATION_STATES, "out_of_line")},
+            salt="amplification",
+        ))
+    return out
+
+
 # --------------------------------------------------------------------------- methods page
 
 
@@ -1400,8 +1573,10 @@ def _methods_page(inputs, *, scorecard, band_coverage, thresholds) -> dict[str, 
             "disagreement": vocabulary.describe_exception_rule("disagreement", **thresholds),
             "change": vocabulary.describe_exception_rule("change", **thresholds),
             "band": vocabulary.describe_exception_rule("band", **thresholds),
+            "amplification": vocabulary.describe_exception_rule("amplification", **thresholds),
         },
-        "terms": [vocabulary.term(vocabulary.MEASURES, k) for k in ("wape", "mape", "mad", "bias", "tracking_signal")],
+        "terms": [vocabulary.term(vocabulary.MEASURES, k)
+                  for k in ("wape", "mape", "mad", "bias", "tracking_signal", "mase", "variance_ratio")],
     }
 
 

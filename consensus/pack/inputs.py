@@ -50,6 +50,13 @@ FRAME_COLUMNS: dict[str, tuple[str, ...]] = {
     # One row per item × location of the statistical forecast; holdout_wape is a fraction (0.12 = 12%),
     # fallback is "" when a fitted method was used.
     "series": ("item", "location", "pattern", "method", "holdout_wape", "fallback"),
+    # One row per DC, as consensus.methods.amplification.measure_amplification gives it (ratio NaN when not
+    # measured; limit = the flag multiple × bound; explanation one plain sentence).
+    "amplification": ("location", "n_series", "n_months", "ratio", "moving_average_months", "lead_time_months",
+                      "bound", "limit", "flagged", "explanation"),
+    # Accuracy by demand pattern pooled over every lag, as consensus.methods.scoring stores it (a lag_bucket
+    # column, when present, is kept to its "all" rows); wape and bias_pct in %, mase a ratio.
+    "accuracy_patterns": ("pattern", "source", "n", "wape", "mase", "bias_pct"),
 }
 
 
@@ -81,6 +88,10 @@ class PackInputs:
     method_notes: dict[str, str] = field(default_factory=dict)
     band_coverage: pd.DataFrame = field(default_factory=lambda: empty_frame("band_coverage"))
     series: pd.DataFrame = field(default_factory=lambda: empty_frame("series"))
+    amplification: pd.DataFrame = field(default_factory=lambda: empty_frame("amplification"))
+    accuracy_patterns: pd.DataFrame = field(default_factory=lambda: empty_frame("accuracy_patterns"))
+    # Months of implied orders an item × DC needed before it counted for amplification (None: not recorded).
+    amplification_min_months: int | None = None
     # Labels only: the pack never converts units or currencies.
     quantity_unit: str = "units"
     currency: str = "EUR"
@@ -367,6 +378,10 @@ def example_pack_inputs(
          "coverage": [0.77, 0.93, 0.82, 0.96], "winkler": [41.2, 63.5, 388.0, 602.1]}
     )
     series = _example_series(rng, item_codes[cell_item], loc_codes[cell_loc], hist_qty, items, cycle_idx)
+    # Generators of their own, so the scenario above stays as it was.
+    amplification = example_amplification(np.random.default_rng(seed + 2), cycle=cycle,
+                                           locations=list(loc_codes), not_measured=missing_dc)
+    accuracy_patterns = _example_pattern_accuracy(np.random.default_rng(seed + 3), series)
     return PackInputs(
         company="Demo Kitchenware Co. (invented example)", cycle=cycle, status=status,
         generated_at=generated_at, horizon=horizon, last_actual_month=cycle,
@@ -376,7 +391,88 @@ def example_pack_inputs(
         decisions=decisions, components=components, method_notes=method_notes, band_coverage=band_coverage,
         series=series, weight_scheme="shrunk_mse", weight_segment="family", weight_window_cycles=12,
         reconciliation_method="bottom_up", disagreement_threshold=0.6, disagreement_min_units=0.0,
+        amplification=amplification, accuracy_patterns=accuracy_patterns,
+        amplification_min_months=EXAMPLE_AMPLIFICATION_MIN_MONTHS,
     )
+
+
+#: How each invented DC forecasts its next month: the mean of its last p months of demand, plus noise of this
+#: share of demand's standard deviation.  A p-month moving average with a 1-month lead time gives the variance
+#: ratio 1 + 2/p + 2/p² (Chen, Drezner, Ryan & Simchi-Levi 2000), so 12 months sits near the 12-month bound,
+#: 6 months within the limit (1.5 × that bound) and 3 months (ratio ≈ 1.89) beyond it.
+_EXAMPLE_DC_FORECASTERS = ((12, 0.0), (6, 0.0), (3, 0.0), (12, 0.45), (12, 0.0))
+EXAMPLE_AMPLIFICATION_MIN_MONTHS = 6
+
+
+def example_amplification(
+    rng: np.random.Generator, *, cycle: str, locations: list[str], not_measured: str | None = None,
+    n_items: int = 30, n_months: int = 36, forecasters=_EXAMPLE_DC_FORECASTERS,
+    min_months: int = EXAMPLE_AMPLIFICATION_MIN_MONTHS,
+) -> pd.DataFrame:
+    """Order amplification of invented DCs, measured by :func:`consensus.methods.amplification.measure_amplification`.
+
+    Each DC serves ``n_items`` items of independent demand and each cycle
+    forecasts the next month with a moving average of its own (``forecasters``,
+    one (p, noise) per location, cycled); the DC ``not_measured`` has only
+    four cycles of forecasts, too few for ``min_months``.
+    """
+    from consensus.methods.amplification import measure_amplification
+
+    cycle_idx = month_index(cycle)
+    first = cycle_idx - n_months + 1
+    longest = max(p for p, _ in forecasters)
+    months = np.arange(first - longest, cycle_idx + 1)  # demand back far enough for the first forecasts
+    forecast_rows, actual_rows = [], []
+    for position, location in enumerate(locations):
+        p, noise = forecasters[position % len(forecasters)]
+        mean = rng.uniform(40, 400, size=n_items)
+        demand = rng.gamma(shape=6.0, scale=mean[:, None] / 6.0, size=(n_items, len(months)))
+        window = np.lib.stride_tricks.sliding_window_view(demand, p, axis=1)  # window k ends at month k + p − 1
+        moving = window.mean(axis=2)[:, longest - p:]  # aligned so column j ends at months[longest + j − 1]
+        cycles = months[longest - 1:]
+        forecast = moving + noise * demand.std(axis=1, keepdims=True) * rng.standard_normal(moving.shape)
+        if location == not_measured:
+            cycles, forecast = cycles[-4:], forecast[:, -4:]
+        item_codes = np.asarray([f"AMP-{i + 1:03d}" for i in range(n_items)], dtype=object)
+        forecast_rows.append(pd.DataFrame({
+            "cycle": np.tile(month_names(cycles), n_items), "item": np.repeat(item_codes, len(cycles)),
+            "location": location, "period": np.tile(month_names(cycles + 1), n_items),
+            "quantity": np.maximum(forecast, 0.0).ravel(),
+        }))
+        actual_rows.append(pd.DataFrame({
+            "item": np.repeat(item_codes, len(months)), "location": location,
+            "period": np.tile(month_names(months), n_items), "quantity": demand.ravel(),
+        }))
+    return measure_amplification(pd.concat(forecast_rows, ignore_index=True),
+                                 pd.concat(actual_rows, ignore_index=True), min_months=min_months)
+
+
+#: Invented accuracy by pattern: (WAPE %, MASE) of the consensus, and each source's factor on both.
+_EXAMPLE_PATTERN_ERRORS = {"smooth": (18.0, 0.82), "erratic": (41.0, 0.95), "intermittent": (132.0, 0.88),
+                           "lumpy": (187.0, 1.04)}
+_EXAMPLE_PATTERN_FACTORS = {"consensus": 1.0, "statistical": 1.04, "sales": 1.12, "marketing": 1.3, "dc": 1.08,
+                            "naive": 1.2}
+
+
+def _example_pattern_accuracy(rng: np.random.Generator, series: pd.DataFrame) -> pd.DataFrame:
+    """Accuracy by demand pattern of the invented scenario, pooled over lags, for the patterns its series have.
+
+    Slow and lumpy series get a WAPE above 100% and a MASE near 1, as such series usually do; forecasts of
+    slow series run high (negative bias: actual minus forecast).
+    """
+    counts = series["pattern"].value_counts()
+    rows = []
+    for pattern, (wape, mase) in _EXAMPLE_PATTERN_ERRORS.items():
+        if pattern not in counts.index:
+            continue
+        for source, factor in _EXAMPLE_PATTERN_FACTORS.items():
+            jitter = rng.uniform(0.95, 1.05)
+            lean = -25.0 if pattern in ("intermittent", "lumpy") else 100 * _SOURCE_BIAS.get(source, 0.0)
+            rows.append({"pattern": pattern, "source": source, "lag_bucket": "all",
+                         "n": int(counts[pattern]) * 12 * 6, "wape": round(wape * factor * jitter, 1),
+                         "mase": round(mase * factor * jitter, 2),
+                         "bias_pct": round(lean * rng.uniform(0.6, 1.4) if lean else rng.normal(0, 2), 1)})
+    return pd.DataFrame(rows, columns=["pattern", "source", "lag_bucket", "n", "wape", "mase", "bias_pct"])
 
 
 def _example_scorecard(rng: np.random.Generator, bucket_labels: list[str]) -> pd.DataFrame:

@@ -14,8 +14,9 @@ import pandas as pd
 from sqlalchemy import select
 
 from consensus.methods.decisions import decision_scope
-from consensus.methods.plan import RunSpec
-from consensus.pack.inputs import PackInputs, empty_frame
+# The months the run asks of an item × DC before its amplification counts (the part does not store it).
+from consensus.methods.plan import AMPLIFICATION_MIN_MONTHS, RunSpec
+from consensus.pack.inputs import FRAME_COLUMNS, PackInputs, empty_frame
 from consensus.pack.render import render_pack
 from consensus.store import frames
 from consensus.store.db import session_scope
@@ -115,6 +116,7 @@ def gather_pack_inputs(cycle: str, *, revision: int | None = None, url=None) -> 
     coverage = parts.get("band_coverage", pd.DataFrame())
     coverage = coverage[coverage["lag_bucket"] == "all"] if len(coverage) else empty_frame("band_coverage")
     series = parts.get("series", pd.DataFrame())
+    amplification, accuracy_patterns = _amplification(parts), _pattern_accuracy(parts)
     spec = RunSpec.from_dict(run.spec)
     known = actuals
     return PackInputs(
@@ -139,7 +141,25 @@ def gather_pack_inputs(cycle: str, *, revision: int | None = None, url=None) -> 
         published_by=revision_row.published_by if run.status == "published" else None,
         published_at=revision_row.published_at if run.status == "published" else None,
         run_id=run.id, record_fingerprint=fingerprint,
+        amplification=amplification, accuracy_patterns=accuracy_patterns,
+        amplification_min_months=AMPLIFICATION_MIN_MONTHS if len(amplification) else None,
     )
+
+
+def _amplification(parts: dict[str, pd.DataFrame]) -> pd.DataFrame:
+    """The run's order amplification by DC, with every column the pack reads (a run without DCs stores fewer)."""
+    frame = parts.get("amplification", pd.DataFrame())
+    if frame.empty:
+        return empty_frame("amplification")
+    return frame.reindex(columns=list(dict.fromkeys([*frame.columns, *FRAME_COLUMNS["amplification"]])))
+
+
+def _pattern_accuracy(parts: dict[str, pd.DataFrame]) -> pd.DataFrame:
+    """The run's accuracy by demand pattern pooled over every lag (its "all" rows)."""
+    frame = parts.get("accuracy_patterns", pd.DataFrame())
+    if frame.empty:
+        return empty_frame("accuracy_patterns")
+    return frame[frame["lag_bucket"].astype(str) == "all"].reset_index(drop=True)
 
 
 def _chain_at(session, seq: int) -> str:
