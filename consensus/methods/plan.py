@@ -652,12 +652,15 @@ def _amplification(summary: hist.HistorySummary, current: pd.DataFrame, cycle: C
     now = current[(current["source"] == "dc") & (current["lag"] <= hist.MAX_LEAD_TIME_MONTHS)]
     dc = pd.concat([past, now[["item", "location", "period", "quantity"]].assign(cycle=cycle.name)],
                    ignore_index=True)
-    if dc.empty:
-        return pd.DataFrame(columns=["location", "ratio", "bound", "flagged", "explanation"])
-    dc = dc.assign(lag=periods.lags(dc["cycle"], dc["period"]))
     known = history.known_at(cycle.name)
-    return measure_amplification(dc, known[known["quantity"].notna()], locations=locations,
-                                 min_months=AMPLIFICATION_MIN_MONTHS)
+    if not dc.empty:
+        dc = dc.assign(lag=periods.lags(dc["cycle"], dc["period"]))
+    else:
+        dc = pd.DataFrame({c: pd.Series(dtype=float if c == "quantity" else object)
+                           for c in ["cycle", "item", "location", "period", "lag", "quantity"]})
+    table = measure_amplification(dc, known[known["quantity"].notna()], locations=locations,
+                                  min_months=AMPLIFICATION_MIN_MONTHS)
+    return table.assign(min_months=AMPLIFICATION_MIN_MONTHS)  # the rule the run used, with the figures
 
 
 def _no_errors() -> pd.DataFrame:

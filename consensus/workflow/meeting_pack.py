@@ -15,7 +15,7 @@ from sqlalchemy import select
 
 from consensus.methods.decisions import decision_scope
 # The months the run asks of an item × DC before its amplification counts (the part does not store it).
-from consensus.methods.plan import AMPLIFICATION_MIN_MONTHS, RunSpec
+from consensus.methods.plan import RunSpec
 from consensus.pack.inputs import FRAME_COLUMNS, PackInputs, empty_frame
 from consensus.pack.render import render_pack
 from consensus.store import frames
@@ -142,7 +142,8 @@ def gather_pack_inputs(cycle: str, *, revision: int | None = None, url=None) -> 
         published_at=revision_row.published_at if run.status == "published" else None,
         run_id=run.id, record_fingerprint=fingerprint,
         amplification=amplification, accuracy_patterns=accuracy_patterns,
-        amplification_min_months=AMPLIFICATION_MIN_MONTHS if len(amplification) else None,
+        amplification_min_months=(int(amplification["min_months"].iloc[0]) if "min_months" in amplification
+                                  and len(amplification) else None),
     )
 
 
