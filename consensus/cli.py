@@ -204,7 +204,7 @@ def open_past(ctx: typer.Context,
 
     Example: consensus open-past --from 2026-01 --to 2026-12
     """
-    from consensus.workflow.backcast import open_past_cycles
+    from consensus.workflow.past_cycles import open_past_cycles
     try:
         done = open_past_cycles(first, last, horizon=horizon, url=_url(ctx))
     except ConsensusError as e:

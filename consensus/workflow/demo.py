@@ -13,7 +13,7 @@ from consensus.intake.submission import load_actuals_file, load_master_file, sub
 from consensus.resources import sample_inputs_dir
 from consensus.store.db import get_engine, session_scope
 from consensus.store.models import Setting
-from consensus.workflow.backcast import open_past_cycles
+from consensus.workflow.past_cycles import open_past_cycles
 from consensus.workflow.cycles import open_cycle
 from consensus.workflow.decisions import record_decision
 from consensus.workflow.meeting_pack import write_pack
