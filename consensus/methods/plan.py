@@ -55,7 +55,7 @@ from consensus.methods.bias import BiasSpec, correct_sources, factors_as_known, 
 from consensus.methods.bom import component_totals, explode_bom
 from consensus.methods.combine import combine_sources
 from consensus.methods.decisions import apply_decisions
-from consensus.methods.intervals import apply_bands, band_columns
+from consensus.methods.intervals import BAND_RULES, apply_bands, band_columns, combined_level_errors, stored_level_bands
 from consensus.methods.reconciliation import DEFAULT_RECONCILIATION, RECONCILIATION_METHODS, reconcile_hierarchy
 from consensus.methods.statistical import forecast_statistical
 from consensus.methods.weights import WeightSpec, assign_segments, estimate_weights_from_sums
@@ -63,7 +63,7 @@ from consensus.store.columnar import digest_of, frame_digest
 from consensus.vocabulary import combined_sources, scored_sources
 
 #: Bump when any step changes the numbers, so cached parts made by older code are never read.
-METHOD_VERSION = "2026.12.1"
+METHOD_VERSION = "2026.12.2"
 #: The published plan and its bands are stated in thousandths of a unit.
 PLAN_DECIMALS = 3
 #: Fixed groups of families the statistical fits are spread over (independent of the number of processes).
@@ -86,8 +86,12 @@ class RunSpec:
     bias: BiasSpec = field(default_factory=BiasSpec)
     #: Which errors weigh the sources: each source's segment totals ("segment_totals") or its cells ("cells").
     weights_from: str = "cells"
+    #: How item bands scale past errors to a forecast (consensus.methods.intervals.BAND_RULES).
+    band_rule: str = "relative_by_size"
 
     def __post_init__(self) -> None:
+        if self.band_rule not in BAND_RULES:
+            raise InvalidSpec(f"band_rule must be one of {', '.join(BAND_RULES)}")
         if self.weights_from not in WEIGHT_ERRORS:
             raise InvalidSpec(f"weights_from must be one of {', '.join(WEIGHT_ERRORS)}")
         if self.reconciliation not in RECONCILIATION_METHODS:
@@ -415,7 +419,7 @@ def _history_summary(ctx: _Context, patterns: pd.DataFrame) -> hist.HistorySumma
                           frame_digest(c.published) if c.published is not None else None])
     key = digest_of("history", METHOD_VERSION, cycle, past_keys, ctx.history.digest_at(cycle),
                     inputs.master_digest(), spec.mix_window_months, spec.weights.segment, keep_cells,
-                    list(spec.band_levels), frame_digest(patterns))
+                    list(spec.band_levels), spec.band_rule, frame_digest(patterns))
     found = ctx.cache.get(key)
     if found is not None:
         return hist.HistorySummary.from_frames(found)
@@ -424,7 +428,7 @@ def _history_summary(ctx: _Context, patterns: pd.DataFrame) -> hist.HistorySumma
                                   patterns=patterns)
     ledger = hist.HistoryLedger(book=book, cycle=cycle, segment=spec.weights.segment,
                                 sources=tuple(scored_sources()), keep_cells=keep_cells,
-                                band_levels=spec.band_levels)
+                                band_levels=spec.band_levels, band_rule=spec.band_rule)
     for c in inputs.past:
         frame, _ = cycle_frame(ctx, c)
         frame = frame[frame["period"] <= cycle]
@@ -494,11 +498,15 @@ def _compute(ctx: _Context) -> PlanResult:
     for column in ["consensus", *bands]:
         table[column] = np.round(table[column].astype(float), PLAN_DECIMALS) + 0.0
     cells = _cells_part(table, combined_rows, present, bands)
+    level_bands = stored_level_bands(cells, _level_errors(summary, weights, cycle.name, segments, present, spec),
+                                     items=inputs.items, cycle=cycle.name, levels=spec.band_levels)
+    for column in ["consensus", *bands]:
+        level_bands[column] = np.round(level_bands[column].astype(float), PLAN_DECIMALS) + 0.0
     components = component_totals(explode_bom(cells.rename(columns={"consensus": "quantity"})[
         ["item", "period", "quantity"]], inputs.bom)) if len(inputs.bom) else pd.DataFrame(
         columns=["component", "period", "quantity"])
     parts = {"cells": cells, "weights": combined.weights, "series": stat["series"], "components": components,
-             "band_table": summary.band_table, "bias": bias}
+             "band_table": summary.band_table, "bias": bias, "level_bands": level_bands}
     parts.update(scoring.scorecards(summary, items=inputs.items, locations=inputs.locations,
                                     actuals=ctx.history.known_at(cycle.name)))
     parts["amplification"] = _amplification(summary, current, cycle, ctx.history, inputs.locations)
@@ -532,6 +540,16 @@ def _weights(summary: hist.HistorySummary, cycle: str, segments: list, present: 
     else:
         sums = summary.weight_sums()
     return estimate_weights_from_sums(sums, cycle=cycle, segments=segments, spec=spec.weights, sources=present)
+
+
+def _level_errors(summary: hist.HistorySummary, weights: pd.DataFrame, cycle: str, segments: list, present: list,
+                  spec: RunSpec) -> dict[str, pd.DataFrame]:
+    """The family and total errors the run's combination would have made (for the level bands)."""
+    if spec.weights.segment != "family":
+        return {}  # the sources' family totals are weighed with family weights only
+    factors = factors_as_known(summary.cell_sums, cycle=cycle, window_cycles=spec.weights.window_cycles,
+                               segments=segments, sources=present, spec=spec.bias)
+    return combined_level_errors(summary.node_errors, weights, factors)
 
 
 def _bias_notes(bias: pd.DataFrame, segment: str) -> list[str]:
