@@ -1,44 +1,46 @@
-"""Backtest on the demo: consensus WAPE per reconciliation method, and how well the error bands cover.
+"""Backtest on the sample company: the consensus against every single source at every level, and its bands.
 
-Part 1, the demo store.  The bundled demo inputs are loaded once (intake and
-the statistical backcast, as ``consensus demo`` does); then, for each
-reconciliation method, a copy of that store runs and publishes the 12 past
-cycles in order, as the demo does, with ``RunSpec(reconciliation=method)``.
-Each published consensus is scored against the order history that came in
-after its cycle (nothing the run could have seen):
+The sample company's inputs are loaded once into a store (intake and the
+statistical backcast, as ``consensus demo`` does, without the pack).  Then
+each RunSpec asked for replays the 12 past cycles in order straight through
+:func:`consensus.methods.plan.compute_plan`, no store in between: each
+cycle's result is fed to the later cycles as its published plan
+(``CycleInputs.published``), as publishing it in the store would.  The
+statistical fits and aligned sources do not depend on the spec, so one
+in-memory cache serves every spec.
 
-* WAPE % = 100 · Σ|actual − consensus| / Σ actual at item × location,
-  family × region, family and total (group totals per cycle and month are
-  scored, so errors of cells partly cancel at the upper levels);
-* coverage of the stored 80 % and 95 % bands (share of actuals inside) and
-  the mean Winkler interval score (Winkler 1972; Gneiting & Raftery 2007,
-  eq. 43), by lag bucket and overall.  Target: coverage within 5 points of
-  nominal.
+Each cycle's plan and each source it combined (the ``value_<source>``
+columns of the cells) are scored against the order history that came after
+the cycle (every lag with an actual, months ≤ the last known month):
 
-Part 2, a synthetic benchmark (fixed seed) built only from the library's pure
-methods: the simulated sources of bench/bench_weights.py ("differing
-quality"), weights and combination for every cycle from a 12-cycle window,
-then the bands' rolling-origin check (:func:`consensus.methods.intervals.
-backtest_bands`) of the consensus's own errors, by lag bucket.
+* WAPE % = 100 · Σ|A − F| / Σ A at item × location, family × region, family
+  and total, group totals per cycle and month (so errors of cells partly
+  cancel at the upper levels).  A source is scored on the cells it forecast;
+  the consensus beside it on the same cells, so the two compare like for
+  like, and the consensus overall on all its cells.
+* coverage of the 80 % and 95 % bands (share of actuals inside) and the mean
+  Winkler interval score (Winkler 1972; Gneiting & Raftery 2007, eq. 43),
+  by level and lag bucket: item × location from the cells' bands, family and
+  total from the run's ``level_bands`` part where it has one.
 
-Run:  python bench/bench_backtest.py                  (about 5 minutes on 2 cores)
-      python bench/bench_backtest.py --skip-demo      (synthetic part only, ~1 minute)
-      python bench/bench_backtest.py --methods bottom_up mint_shrink
+Run:  python bench/bench_backtest.py                         (the default spec, under a minute)
+      python bench/bench_backtest.py --specs before default     (the old settings beside the new)
+      python bench/bench_backtest.py --specs default --spec 'k2={"bias": {"shrinkage_cycles": 2}}'
+                                                                (any setting over the default)
 """
 
 from __future__ import annotations
 
 import argparse
+import copy
 import json
-import shutil
 import sys
 import time
-from concurrent.futures import ProcessPoolExecutor
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
-from sqlalchemy import select
 
 # Run from a source checkout without installing: the package sits one folder up.
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
@@ -48,17 +50,15 @@ from consensus import periods  # noqa: E402
 from consensus.errors import InputRejected  # noqa: E402
 from consensus.intake.submission import load_actuals_file, load_master_file, submit_file  # noqa: E402
 from consensus.methods import accuracy, intervals  # noqa: E402
-from consensus.methods.combine import combine_sources  # noqa: E402
-from consensus.methods.weights import WeightSpec, estimate_weights  # noqa: E402
+from consensus.methods.plan import RunSpec, compute_plan  # noqa: E402
 from consensus.resources import sample_inputs_dir  # noqa: E402
 from consensus.store import frames  # noqa: E402
 from consensus.store.db import get_engine, session_scope  # noqa: E402
-from consensus.store.models import ConsensusLine, ConsensusRun, Setting  # noqa: E402
-from consensus.workflow.backcast import backcast_cycles  # noqa: E402
+from consensus.store.models import Setting  # noqa: E402
+from consensus.vocabulary import combined_sources  # noqa: E402
+from consensus.workflow.backcast import open_past_cycles  # noqa: E402
 from consensus.workflow.cycles import open_cycle  # noqa: E402
-from consensus.workflow.publish import publish_cycle  # noqa: E402
-from consensus.methods.reconciliation import DEFAULT_RECONCILIATION, RECONCILIATION_METHODS  # noqa: E402
-from consensus.workflow.run import RunSpec, run_cycle  # noqa: E402
+from consensus.workflow.inputs import PUBLISHED_CELL_COLUMNS, load_plan_inputs  # noqa: E402
 
 LEVELS = ("item", "family_region", "family", "total")
 LEVEL_NAMES = {"item": "item × location", "family_region": "family × region", "family": "family", "total": "total"}
@@ -66,224 +66,302 @@ BAND_LEVELS = (0.8, 0.95)
 COVERAGE_TOLERANCE = 0.05
 
 
-def prepare_store(db_file: Path) -> list[str]:
-    """The demo inputs loaded and backcast into ``db_file``, no consensus run yet; returns the past cycles."""
+# --------------------------------------------------------------------------- the store, once
+
+
+def prepare_store(db_file: Path) -> tuple[list[str], str]:
+    """The sample inputs loaded and backcast into ``db_file``, no run yet; returns the past cycles' names and url."""
     inputs = sample_inputs_dir()
     manifest = json.loads((inputs / "manifest.json").read_text(encoding="utf-8"))
-    if db_file.exists():
-        db_file.unlink()
     url = f"sqlite:///{db_file}"
+    done = db_file.with_name(db_file.name + ".done")  # a store left half-made by an interrupted run is rebuilt
+    if db_file.exists() and done.exists():
+        return list(manifest["past_cycles"]), url
     get_engine.cache_clear()
-    with session_scope(url) as session:
+    for stale in (db_file, db_file.with_name(db_file.name + "-wal"), db_file.with_name(db_file.name + "-shm")):
+        stale.unlink(missing_ok=True)
+    build = url
+    with session_scope(build) as session:
         session.add(Setting(key="company", value=manifest["company"]))
     horizon = int(manifest.get("horizon", 18))
-    for name in [*manifest["past_cycles"], manifest["current_cycle"]]:
-        open_cycle(name, horizon=horizon, url=url)
-    for entry in manifest["files"]:
-        path = inputs / entry["path"]
-        kind, by = entry["kind"], entry.get("submitted_by", "")
-        if kind in ("items", "locations", "bom"):
-            load_master_file(path, kind=kind, url=url, submitted_by=by)
-        elif kind == "actuals":
-            load_actuals_file(path, url=url, submitted_by=by)
+    first = [e for e in manifest["files"] if e["kind"] in ("items", "locations", "bom", "actuals")]
+    for entry in first:
+        path, by = inputs / entry["path"], entry.get("submitted_by", "")
+        if entry["kind"] == "actuals":
+            load_actuals_file(path, url=build, submitted_by=by)
         else:
-            try:
-                submit_file(path, url=url, source=entry.get("source"), cycle=entry.get("cycle"), submitted_by=by)
-            except InputRejected:
-                if entry.get("expect") != "rejected":
-                    raise
+            load_master_file(path, kind=entry["kind"], url=build, submitted_by=by)
+    for name in [*manifest["past_cycles"], manifest["current_cycle"]]:
+        open_cycle(name, horizon=horizon, url=build)
+    for entry in manifest["files"]:
+        if entry in first:
+            continue
+        try:
+            submit_file(inputs / entry["path"], url=build, source=entry.get("source"), cycle=entry.get("cycle"),
+                        submitted_by=entry.get("submitted_by", ""))
+        except InputRejected:
+            if entry.get("expect") != "rejected":
+                raise
     first_past = manifest["past_cycles"][0]
-    backcast_cycles(periods.shift_month(first_past, -12), periods.shift_month(first_past, -1), horizon=horizon,
-                    url=url)
+    open_past_cycles(periods.shift_month(first_past, -12), periods.shift_month(first_past, -1), horizon=horizon,
+                     url=build)
     get_engine.cache_clear()
-    return list(manifest["past_cycles"])
+    done.write_text("prepared\n", encoding="utf-8")
+    return list(manifest["past_cycles"]), url
 
 
-def run_method(base: str, target: str, method: str, cycles: list[str]) -> tuple[str, float]:
-    """Copy the prepared store and run + publish each past cycle in order with ``method``."""
-    shutil.copyfile(base, target)
-    get_engine.cache_clear()
-    url = f"sqlite:///{target}"
-    started = time.perf_counter()
-    for name in cycles:
-        run_cycle(name, url=url, spec=RunSpec(reconciliation=method))
-        publish_cycle(name, url=url)
-    get_engine.cache_clear()
-    return method, time.perf_counter() - started
+class MemoryCache:
+    """A :class:`consensus.methods.plan.Cache` in a dict, shared by every spec of one backtest."""
+
+    def __init__(self):
+        self.entries: dict[str, dict[str, pd.DataFrame]] = {}
+
+    def get(self, key):
+        found = self.entries.get(key)
+        return None if found is None else {name: frame.copy() for name, frame in found.items()}
+
+    def put(self, key, *, kind, cycle, frames):
+        self.entries[key] = {name: frame.copy() for name, frame in frames.items()}
 
 
-def published_lines(db_file: str) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame, pd.DataFrame]:
-    """Every published run's consensus and bands as [cycle, item, location, period, consensus, bands…]."""
-    get_engine.cache_clear()
-    with session_scope(f"sqlite:///{db_file}") as session:
-        cr, cl = ConsensusRun.__table__, ConsensusLine.__table__
-        columns = ["cycle", "item", "location", "period", "consensus", "lower_80", "upper_80", "lower_95", "upper_95"]
-        lines = frames.read_frame(session, select(cr.c.cycle, cl.c.item, cl.c.location, cl.c.period, cl.c.consensus,
-                                                  cl.c.lower_80, cl.c.upper_80, cl.c.lower_95, cl.c.upper_95)
-                                  .join(cr, cr.c.id == cl.c.run_id).where(cr.c.status == "published"), columns)
-        actuals = frames.load_actuals(session)
-        items, locations = frames.load_items(session), frames.load_locations(session)
-    get_engine.cache_clear()
-    return lines, actuals, items, locations
+def load_cycles(url: str, cycles: list[str]) -> dict:
+    """Each cycle's PlanInputs as the store holds them (nothing published yet)."""
+    return {name: load_plan_inputs(name, url=url, spec=RunSpec(), require_open=False).inputs for name in cycles}
 
 
-def score_levels(lines: pd.DataFrame, actuals: pd.DataFrame, items, locations,
-                 method: str) -> tuple[dict, pd.DataFrame]:
-    """WAPE % per level, and the cell errors with their bands."""
-    forecasts = lines.rename(columns={"consensus": "quantity"}).assign(source=method)
-    errors = accuracy.forecast_errors(forecasts, actuals)
-    total_actual = float(errors["actual"].sum())
-    wape = {}
-    for level in LEVELS:
-        table = accuracy.accuracy_table(errors, level=level, items=items, locations=locations, by=("source",))
-        # Σ over groups of Σ|group error| = Σ (MAD · n); over the same actuals, so levels compare.
-        wape[LEVEL_NAMES[level]] = 100 * float((table["mad"] * table["n"]).sum()) / total_actual
-    banded = errors.merge(lines.drop(columns="consensus"), on=["cycle", "item", "location", "period"], how="left")
-    return wape, banded
+def replay(loaded: dict, spec: RunSpec, cache: MemoryCache) -> dict[str, dict]:
+    """Compute every cycle in order, each result fed to the later cycles as their published plan."""
+    published: dict[str, pd.DataFrame] = {}
+    results = {}
+    for name, inputs in loaded.items():
+        past = tuple(replace(c, published=published.get(c.name), published_run=None) for c in inputs.past)
+        result = compute_plan(replace(inputs, past=past), spec, cache=cache)
+        cells = result.parts["cells"]
+        published[name] = cells[[c for c in PUBLISHED_CELL_COLUMNS if c in cells.columns]].copy()
+        results[name] = {"parts": result.parts, "notes": result.notes}
+    return results
 
 
-def per_cycle_wape(banded: pd.DataFrame, items, locations) -> pd.DataFrame:
-    """WAPE % of each cycle's consensus per level (cycles × levels), for paired comparisons."""
-    per_cycle_actual = banded.groupby("cycle")["actual"].sum()
-    out = {}
-    for level in LEVELS:
-        table = accuracy.accuracy_table(banded, level=level, items=items, locations=locations, by=("source", "cycle"))
-        out[LEVEL_NAMES[level]] = 100 * (table["mad"] * table["n"]).groupby(table["cycle"]).sum() / per_cycle_actual
-    return pd.DataFrame(out)
+# --------------------------------------------------------------------------- scoring
 
 
-def paired_against_default(per_cycle: dict) -> pd.DataFrame:
-    """Each method minus the default, per cycle: mean ± standard error, and in how many cycles it was better/worse."""
+def _with_hierarchy(frame: pd.DataFrame, items: pd.DataFrame, locations: pd.DataFrame) -> pd.DataFrame:
+    family = items.drop_duplicates("item").set_index("item")["family"]
+    region = locations.drop_duplicates("location").set_index("location")["region"]
+    return frame.assign(family=frame["item"].map(family).fillna("?"), region=frame["location"].map(region)
+                        .fillna("?"), all="all")
+
+
+LEVEL_KEYS = {"item": ["item", "location"], "family_region": ["family", "region"], "family": ["family"],
+              "total": ["all"]}
+
+
+def cell_errors(results: dict, actuals: pd.DataFrame, items, locations) -> pd.DataFrame:
+    """[cycle, item, location, period, lag, lag_bucket, actual, consensus, value_<source>…, bands…] of every scored cell."""
     rows = []
-    base = per_cycle[DEFAULT_RECONCILIATION]
-    for method, table in per_cycle.items():
-        if method == DEFAULT_RECONCILIATION:
+    for name, result in results.items():
+        cells = result["parts"]["cells"]
+        rows.append(cells.assign(cycle=name))
+    cells = pd.concat(rows, ignore_index=True)
+    scored = accuracy.forecast_errors(cells.rename(columns={"consensus": "quantity"}).assign(source="consensus"),
+                                      actuals)
+    keep = scored[["cycle", "item", "location", "period", "lag", "lag_bucket", "actual"]]
+    out = keep.merge(cells, on=["cycle", "item", "location", "period"], how="left")
+    return _with_hierarchy(out, items, locations)
+
+
+def wape_by_level(errors: pd.DataFrame, sources: list[str]) -> pd.DataFrame:
+    """Level × (consensus, each source, consensus on that source's cells) WAPE %."""
+    rows = []
+    for level in LEVELS:
+        keys = ["cycle", "period", *LEVEL_KEYS[level]]
+        row = {"level": LEVEL_NAMES[level]}
+        g = errors.groupby(keys, sort=False)[["consensus", "actual"]].sum()
+        row["consensus"] = 100 * float((g["actual"] - g["consensus"]).abs().sum() / g["actual"].sum())
+        for source in sources:
+            column = f"value_{source}"
+            if column not in errors:
+                continue
+            mine = errors[errors[column].notna()]
+            g = mine.groupby(keys, sort=False)[[column, "consensus", "actual"]].sum()
+            row[source] = 100 * float((g["actual"] - g[column]).abs().sum() / g["actual"].sum())
+            row[f"consensus on {source}'s cells"] = 100 * float((g["actual"] - g["consensus"]).abs().sum()
+                                                                / g["actual"].sum())
+        rows.append(row)
+    return pd.DataFrame(rows).set_index("level")
+
+
+def misses(table: pd.DataFrame, sources: list[str]) -> list[str]:
+    """Where the consensus is worse than a single source on that source's cells (points of WAPE)."""
+    out = []
+    for level, row in table.iterrows():
+        for source in sources:
+            if source not in row or pd.isna(row[source]):
+                continue
+            gap = row[f"consensus on {source}'s cells"] - row[source]
+            if gap > 1e-9:
+                mine = row[f"consensus on {source}'s cells"]
+                out.append(f"{level}: consensus {mine:.2f} % against {source} {row[source]:.2f} % "
+                           f"(+{gap:.2f} points)")
+    return out
+
+
+def band_scores(errors: pd.DataFrame, results: dict, actuals: pd.DataFrame, items, locations) -> pd.DataFrame:
+    """Coverage and Winkler by level (item × location, family, total) and lag bucket."""
+    tables = []
+    tables.append(_coverage(errors, "item × location"))
+    level_rows = [r["parts"]["level_bands"].assign(cycle=name) for name, r in results.items()
+                  if "level_bands" in r["parts"] and len(r["parts"]["level_bands"])]
+    if level_rows:
+        bands = pd.concat(level_rows, ignore_index=True)
+        for level in ("family", "total"):
+            mine = bands[bands["level"] == level]
+            if mine.empty:
+                continue
+            observed = _level_actuals(errors, level).drop(columns="lag")
+            scored = mine.rename(columns={"node": LEVEL_KEYS[level][0]}).merge(
+                observed, on=["cycle", "period", LEVEL_KEYS[level][0]], how="inner")
+            tables.append(_coverage(scored, f"{level} (own errors)"))
+    for level in ("family", "total"):  # what the pack used to print, for comparison
+        tables.append(_coverage(_independence_bands(errors, level), f"{level} (√Σ item deviations²)"))
+    return pd.concat(tables, ignore_index=True)
+
+
+def _level_actuals(errors: pd.DataFrame, level: str) -> pd.DataFrame:
+    keys = ["cycle", "period", *LEVEL_KEYS[level]]
+    return errors.groupby(keys, sort=True).agg(actual=("actual", "sum"), lag=("lag", "first")).reset_index()
+
+
+def _independence_bands(errors: pd.DataFrame, level: str) -> pd.DataFrame:
+    """The old pack's family band: consensus ± √Σ(item half-width²), as a comparison."""
+    keys = ["cycle", "period", *LEVEL_KEYS[level]]
+    frame = errors.copy()
+    for pct in (80, 95):
+        frame[f"_lo{pct}"] = (frame["consensus"] - frame[f"lower_{pct}"]) ** 2
+        frame[f"_hi{pct}"] = (frame[f"upper_{pct}"] - frame["consensus"]) ** 2
+    g = frame.groupby(keys, sort=True)
+    out = g.agg(consensus=("consensus", "sum"), actual=("actual", "sum"), lag=("lag", "first"),
+                **{f"_lo{p}": (f"_lo{p}", "sum") for p in (80, 95)},
+                **{f"_hi{p}": (f"_hi{p}", "sum") for p in (80, 95)}).reset_index()
+    for pct in (80, 95):
+        out[f"lower_{pct}"] = np.maximum(out["consensus"] - np.sqrt(out[f"_lo{pct}"]), 0)
+        out[f"upper_{pct}"] = out["consensus"] + np.sqrt(out[f"_hi{pct}"])
+    return out
+
+
+def _coverage(frame: pd.DataFrame, level: str) -> pd.DataFrame:
+    frame = frame.assign(lag_bucket=periods.lag_bucket_labels(frame["lag"].to_numpy()))
+    rows = []
+    buckets = [label for label, _, _ in periods.DEFAULT_LAG_BUCKETS]
+    for bucket in [*buckets, "all"]:
+        group = frame if bucket == "all" else frame[frame["lag_bucket"] == bucket]
+        if group.empty:
             continue
-        for level in table.columns:
-            d = (table[level] - base[level]).dropna()
-            rows.append({"method": method, "level": level, "mean diff (points)": round(float(d.mean()), 3),
-                         "std error": round(float(d.std(ddof=1) / np.sqrt(len(d))), 3) if len(d) > 1 else np.nan,
-                         "better": int((d < -1e-9).sum()), "worse": int((d > 1e-9).sum()),
-                         "same": int((d.abs() <= 1e-9).sum())})
-    return pd.DataFrame(rows)
-
-
-def coverage_table(banded: pd.DataFrame) -> pd.DataFrame:
-    """Coverage and mean Winkler score per lag bucket and overall, at each band level."""
-    rows = []
-    groups = [(bucket, banded[banded["lag_bucket"] == bucket]) for bucket in
-              [label for label, _, _ in periods.DEFAULT_LAG_BUCKETS]] + [("all", banded)]
-    for bucket, group in groups:
-        row = {"lag bucket": bucket}
-        for level in BAND_LEVELS:
-            pct = int(round(100 * level))
+        row = {"level": level, "lag bucket": bucket}
+        for nominal in BAND_LEVELS:
+            pct = int(round(100 * nominal))
             lo, hi, y = group[f"lower_{pct}"], group[f"upper_{pct}"], group["actual"]
-            keep = lo.notna() & hi.notna()
+            keep = (lo.notna() & hi.notna()).to_numpy()
             row["n"] = int(keep.sum())
-            row[f"cover {pct}%"] = round(100 * intervals.interval_coverage(lo[keep], hi[keep], y[keep]), 1)
-            scores = intervals.winkler_score(lo[keep], hi[keep], y[keep], level=level)
-            row[f"winkler {pct}%"] = round(float(np.mean(scores)), 1) if keep.any() else np.nan
+            row[f"cover {pct}%"] = round(100 * intervals.interval_coverage(lo[keep], hi[keep], y[keep]), 1) \
+                if keep.any() else np.nan
+            row[f"winkler {pct}%"] = round(float(np.mean(intervals.winkler_score(lo[keep], hi[keep], y[keep],
+                                                                                 level=nominal))), 1) \
+                if keep.any() else np.nan
         rows.append(row)
     return pd.DataFrame(rows)
 
 
-def within_target(table: pd.DataFrame) -> bool:
-    overall = table[table["lag bucket"] == "all"].iloc[0]
-    return all(abs(overall[f"cover {int(round(100 * level))}%"] - 100 * level) <= 100 * COVERAGE_TOLERANCE
-               for level in BAND_LEVELS)
+def bands_within_target(table: pd.DataFrame) -> list[str]:
+    """Levels whose overall coverage is more than 5 points from nominal (the stored bands; not the old √Σ rows)."""
+    out = []
+    for _, row in table[(table["lag bucket"] == "all") & ~table["level"].str.contains("√")].iterrows():
+        for nominal in BAND_LEVELS:
+            pct = int(round(100 * nominal))
+            value = row[f"cover {pct}%"]
+            if not abs(value - 100 * nominal) <= 100 * COVERAGE_TOLERANCE:
+                out.append(f"{row['level']} {pct}%: {value:.1f} %")
+    return out
 
 
-def demo_backtest(workdir: Path, methods: list[str]) -> None:
-    workdir.mkdir(parents=True, exist_ok=True)
-    base = workdir / "prepared.db"
-    started = time.perf_counter()
-    cycles = prepare_store(base)
-    print(f"demo inputs loaded and backcast in {time.perf_counter() - started:.0f} s; past cycles "
-          f"{cycles[0]} … {cycles[-1]}; methods {', '.join(methods)}\n", flush=True)
-    targets = {m: str(workdir / f"backtest_{m}.db") for m in methods}
-    with ProcessPoolExecutor(max_workers=2) as pool:
-        futures = [pool.submit(run_method, str(base), targets[m], m, cycles) for m in methods]
-        timings = dict(f.result() for f in futures)
-    wape_rows, coverage, per_cycle = {}, {}, {}
-    for method in methods:
-        lines, actuals, items, locations = published_lines(targets[method])
-        wape_rows[method], banded = score_levels(lines, actuals, items, locations, method)
-        coverage[method] = coverage_table(banded)
-        per_cycle[method] = per_cycle_wape(banded, items, locations)
-    wape = pd.DataFrame(wape_rows).T
-    wape["seconds for 12 runs"] = [round(timings[m], 0) for m in wape.index]
-    print("Consensus WAPE % on the demo's 12 past cycles (every lag with an actual), by level:")
-    print(wape.round(2).to_string())
-    best = wape["item × location"].idxmin()
-    gap = 100 * (wape.loc[DEFAULT_RECONCILIATION, "item × location"] / wape.loc[best, "item × location"] - 1) \
-        if DEFAULT_RECONCILIATION in wape.index else float("nan")
-    print(f"\nbest at item × location: {best}; default {DEFAULT_RECONCILIATION} is {gap:.1f} % behind it "
-          "(the default stays bottom_up unless another method wins by more than noise, ~2 %)")
-    if DEFAULT_RECONCILIATION in per_cycle and len(per_cycle) > 1:
-        print(f"\nPaired per cycle, method minus {DEFAULT_RECONCILIATION} (WAPE points; negative = better):")
-        print(paired_against_default(per_cycle).to_string(index=False))
-    for method in methods:
-        print(f"\nBand coverage and Winkler score of the stored bands, {method} "
-              f"(target: coverage within {100 * COVERAGE_TOLERANCE:.0f} points of nominal):")
-        table = coverage[method]
-        print(table.to_string(index=False))
-        print("overall within target:", within_target(table))
-    print(f"\nrerun: python bench/bench_backtest.py --workdir {workdir} --methods {' '.join(methods)}")
+# --------------------------------------------------------------------------- specs
 
 
-def synthetic_backtest(*, n_cells: int, seed: int) -> None:
-    """Bands of a combined consensus on simulated sources, checked by rolling origin."""
-    from bench_weights import HISTORY_CYCLES, SCENARIOS, SOURCES, simulate
+def spec_over_default(overrides: dict) -> RunSpec:
+    """The default RunSpec with ``overrides`` (nested dicts for weights and bias) laid over it."""
+    data = RunSpec().to_dict()
+    for key, value in overrides.items():
+        if isinstance(value, dict):
+            data[key] = {**data[key], **value}
+        else:
+            data[key] = value
+    return RunSpec.from_dict(data)
 
-    name, sigmas, biases = SCENARIOS[1]
-    items, locations, actuals, forecasts, _ = simulate(sigmas, biases, n_cells=n_cells, seed=seed)
-    errors = accuracy.forecast_errors(forecasts, actuals)
-    spec = WeightSpec()
-    consensus = []
-    cycle_months = sorted(forecasts["cycle_m"].unique())
-    for cycle_m in cycle_months[12:]:
-        cycle = periods.month_name(cycle_m)
-        aligned = forecasts[forecasts["cycle_m"] == cycle_m][["source", "item", "location", "period", "lag",
-                                                             "quantity"]]
-        weights = estimate_weights(errors, cycle=cycle, items=items, locations=locations, spec=spec, sources=SOURCES)
-        combo = combine_sources(aligned, weights, items=items, locations=locations, spec=spec)
-        consensus.append(combo.consensus[["item", "location", "period", "consensus"]].assign(cycle=cycle))
-    table = pd.concat(consensus, ignore_index=True)
-    own = accuracy.forecast_errors(table.rename(columns={"consensus": "quantity"}).assign(source="consensus"),
-                                   actuals)
-    first_test = periods.month_name(cycle_months[HISTORY_CYCLES - 6])
-    rows = []
-    for label, first, last in [*periods.DEFAULT_LAG_BUCKETS, ("all", 1, None)]:
-        subset = own if label == "all" else own[own["lag_bucket"] == label]
-        if subset.empty:
-            continue
-        result = intervals.backtest_bands(subset, levels=BAND_LEVELS, first_test_cycle=first_test)
-        row = {"lag bucket": label}
-        for r in result.itertuples(index=False):
-            pct = int(round(100 * r.level))
-            row["n"] = r.n
-            row[f"cover {pct}%"] = round(100 * r.coverage, 1)
-            row[f"winkler {pct}%"] = round(r.mean_winkler, 1)
-        rows.append(row)
-    out = pd.DataFrame(rows)
-    print(f"\nSynthetic benchmark ({name}, {n_cells} cells, seed {seed}): consensus bands by rolling origin from "
-          f"{first_test}, bands per lag bucket from the consensus's own past errors")
-    print(out.to_string(index=False))
-    print("overall within target:", within_target(out))
-    print(f"rerun: python bench/bench_backtest.py --skip-demo --cells {n_cells} --seed {seed}")
+
+def named_specs() -> dict[str, RunSpec]:
+    """The specs the command line can ask for by name."""
+    from consensus.methods.bias import BiasSpec
+    from consensus.methods.weights import WeightSpec
+
+    return {
+        "default": RunSpec(),
+        # the settings before persistent-bias correction, level bands and size-class item bands
+        "before": RunSpec(bias=BiasSpec(mode="off"), weights_from="cells", band_rule="relative"),
+        "no_bias": RunSpec(bias=BiasSpec(mode="off")),
+        "segment_totals": RunSpec(weights_from="segment_totals"),
+        "mint_shrink": RunSpec(reconciliation="mint_shrink"),
+        "additive_bias": RunSpec(weights=WeightSpec(bias_correction=True), bias=BiasSpec(mode="off")),
+    }
 
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--workdir", type=Path, default=Path("/tmp/consensus_backtest"))
-    parser.add_argument("--methods", nargs="+", default=list(RECONCILIATION_METHODS), choices=RECONCILIATION_METHODS)
-    parser.add_argument("--skip-demo", action="store_true")
-    parser.add_argument("--cells", type=int, default=800)
-    parser.add_argument("--seed", type=int, default=20260101)
+    parser.add_argument("--specs", nargs="*", default=["default"])
+    parser.add_argument("--spec", action="append", default=[], metavar="NAME=JSON",
+                        help='a further spec: settings over the default, e.g. x=\'{"weights": {"min_cycles": 2}}\'')
+    parser.add_argument("--quiet", action="store_true", help="the WAPE table and the verdicts only")
     args = parser.parse_args()
-    if not args.skip_demo:
-        demo_backtest(args.workdir, args.methods)
-    synthetic_backtest(n_cells=args.cells, seed=args.seed)
+    specs = named_specs()
+    for text in args.spec:
+        name, _, body = text.partition("=")
+        specs[name] = spec_over_default(json.loads(body))
+        args.specs.append(name)
+    unknown = [s for s in args.specs if s not in specs]
+    if unknown:
+        parser.error(f"unknown spec(s) {unknown}; choose from {sorted(specs)}")
+    args.workdir.mkdir(parents=True, exist_ok=True)
+    started = time.perf_counter()
+    cycles, url = prepare_store(args.workdir / "prepared.db")
+    loaded = load_cycles(url, cycles)
+    with session_scope(url, write=False) as session:
+        actuals = frames.load_actuals(session)
+        items, locations = frames.load_items(session), frames.load_locations(session)
+    print(f"sample company loaded in {time.perf_counter() - started:.0f} s; past cycles {cycles[0]} … {cycles[-1]}",
+          flush=True)
+    cache = MemoryCache()
+    sources = list(combined_sources())
+    for name in args.specs:
+        spec = specs[name]
+        started = time.perf_counter()
+        results = replay(loaded, spec, cache)
+        seconds = time.perf_counter() - started
+        errors = cell_errors(results, actuals, items, locations)
+        table = wape_by_level(errors, sources)
+        print(f"\n== spec '{name}' ({seconds:.0f} s for {len(cycles)} cycles): {json.dumps(spec.to_dict())}")
+        print("WAPE % by level: the consensus overall; each source on the cells it forecast, and the consensus "
+              "on the same cells")
+        print(table.round(2).T.to_string())
+        print("consensus worse than a single source:", misses(table, sources) or "nowhere")
+        bands = band_scores(errors, results, actuals, items, locations)
+        if args.quiet:
+            print("band levels outside the target:", bands_within_target(bands) or "none")
+            continue
+        print("\nBand coverage % and mean Winkler score by level and lag bucket "
+              f"(target: within {100 * COVERAGE_TOLERANCE:.0f} points of nominal)")
+        print(bands.to_string(index=False))
+        print("levels outside the target:", bands_within_target(bands) or "none")
+    print(f"\nrerun: python bench/bench_backtest.py --workdir {args.workdir} --specs {' '.join(args.specs)}")
 
 
 if __name__ == "__main__":

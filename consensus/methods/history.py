@@ -129,6 +129,8 @@ class HistoryLedger:
     sources: tuple[str, ...]
     keep_cells: bool = False
     band_levels: tuple[float, ...] = (0.8, 0.95)
+    #: The item bands' scaling rule (consensus.methods.intervals.BAND_RULES); set by the run's RunSpec.band_rule.
+    band_rule: str = "relative"
     _cell_sums: list = field(default_factory=list)
     _pattern_sums: list = field(default_factory=list)
     _nodes: list = field(default_factory=list)
@@ -278,7 +280,7 @@ class HistoryLedger:
             source = "consensus and statistical"
         if chosen.empty:
             return pd.DataFrame(), "none"
-        return band_table(chosen, levels=self.band_levels), source
+        return band_table(chosen, levels=self.band_levels, rule=self.band_rule), source
 
     def _cell_key(self, sid: np.ndarray, month: np.ndarray) -> np.ndarray:
         return sid.astype(np.int64) * 10_000 + (month - self.book.first_month)

@@ -607,3 +607,101 @@ def backtest_bands_by_level(errors: pd.DataFrame, *, items: pd.DataFrame | None 
                 continue
             rows += [{"level": level, "lag_bucket": bucket, **row} for row in _coverage_rows(part, levels)]
     return pd.DataFrame(rows, columns=SCORE_COLUMNS)
+
+
+# ---------------------------------------------------------------------------
+# Level bands a run stores: family and total plans banded from those levels' own past errors.
+# ---------------------------------------------------------------------------
+
+#: Levels a run stores bands for besides item × location.
+STORED_BAND_LEVELS = ("family", "total")
+LEVEL_BAND_COLUMNS = ["level", "node", "period", "lag", "consensus", "band_method"]
+
+
+def combined_level_errors(node_errors: pd.DataFrame, weights: pd.DataFrame, factors: pd.DataFrame | None = None
+                          ) -> dict[str, pd.DataFrame]:
+    """The family and total errors today's combination would have made in past cycles: {level: [cycle, node, period, lag, forecast, actual]}.
+
+    For each past (cycle, month) and family, each source's family total
+    (``node_errors`` of level "family") is corrected by the factor that cycle
+    applied (``factors``: [cycle, segment, lag_bucket, source, factor], from
+    :func:`consensus.methods.bias.factors_as_known`) and turned into a
+    relative error r_i = (A_i − k_i·F_i) / A_i over the cells it covered;
+    the combination's relative error is r = Σ w_i r_i / Σ w_i over the
+    sources present, with the run's weights w of the family and lag bucket
+    (the in-sample combined residuals of Wickramasuriya, Athanasopoulos &
+    Hyndman 2019, as :mod:`consensus.methods.reconciliation` forms them for
+    MinT).  Forecast = A·(1 − r) with A the family's actual over its most
+    covered source's cells; the total sums the families of a month.  Only
+    months that every weighed source forecast count.
+
+    These errors are the level's own (items that miss together move them
+    together), and they measure the combination the run uses now rather
+    than the earlier cycles' published plans, which were made with a
+    shorter record.
+    """
+    columns = ["cycle", "node", "period", "lag", "forecast", "actual"]
+    empty = {level: pd.DataFrame(columns=columns) for level in STORED_BAND_LEVELS}
+    if node_errors is None or node_errors.empty or weights is None or weights.empty:
+        return empty
+    fam = node_errors[(node_errors["level"] == "family") & node_errors["source"].isin(set(weights["source"]))]
+    fam = fam[fam["actual"] > 0]
+    if fam.empty:
+        return empty
+    fam = fam.assign(segment=fam["node_item"].astype(object),
+                     lag_bucket=lag_bucket_labels(fam["lag"].to_numpy(int)))
+    keys = ["segment", "lag_bucket", "source"]
+    fam = fam.merge(weights[keys + ["weight"]], on=keys, how="inner")
+    if factors is not None and len(factors):
+        fam = fam.merge(factors[["cycle", *keys, "factor"]], on=["cycle", *keys], how="left")
+        k = fam["factor"].fillna(1.0).to_numpy(float)
+    else:
+        k = np.ones(len(fam))
+    fam["weighted"] = fam["weight"] * (fam["actual"] - k * fam["forecast"]) / fam["actual"]
+    grouped = fam.groupby(["cycle", "segment", "period", "lag"], sort=True)
+    out = pd.DataFrame({"weighted": grouped["weighted"].sum(), "w": grouped["weight"].sum(),
+                        "actual": grouped["actual"].max(), "n_sources": grouped["source"].nunique()}).reset_index()
+    # Only months every weighed source forecast: a cycle before the people's record began is not today's method.
+    out = out[(out["w"] > 0) & (out["n_sources"] == weights["source"].nunique())]
+    out["forecast"] = out["actual"] * (1 - out["weighted"] / out["w"])
+    family = out.rename(columns={"segment": "node"})[columns]
+    total = family.groupby(["cycle", "period", "lag"], sort=True)[["forecast", "actual"]].sum().reset_index()
+    return {"family": family, "total": total.assign(node="all")[columns]}
+
+
+def stored_level_bands(consensus: pd.DataFrame, level_errors: Mapping[str, pd.DataFrame], *, items: pd.DataFrame,
+                       cycle: str, levels: Sequence[float] = (0.8, 0.95), min_errors: int = 30) -> pd.DataFrame:
+    """Bands of the family and total plans from errors of the family and total plans themselves.
+
+    ``consensus``: the run's cells [item, location, period, consensus];
+    ``level_errors``: {level: [lag, forecast, actual]} of that level (e.g.
+    :func:`combined_level_errors`).  Band = F_g·(1 + quantile of e_g/F_g)
+    by lag bucket (Williams & Goodman 1971), the normal MAD band while a lag
+    bucket has fewer than ``min_errors`` errors (:func:`apply_bands`).
+    Because the errors are the level's own, items that miss together widen
+    the family band as they should; no independence between items is assumed.
+
+    Returns [level, node, period, lag, consensus, band_method, lower_/upper_
+    per level]; ``node`` is the family's name (or "all" for the total).
+    """
+    levels = _check_levels(levels)
+    family = items.drop_duplicates("item").set_index("item")["family"]
+    cells = consensus[["item", "period", "consensus"]].assign(
+        family=consensus["item"].map(family).fillna("(unknown family)").astype(object))
+    parts = []
+    for level in STORED_BAND_LEVELS:
+        node = cells["family"] if level == "family" else pd.Series("all", index=cells.index, dtype=object)
+        summed = cells.assign(node=node).groupby(["node", "period"], sort=True)["consensus"].sum().reset_index()
+        summed["lag"] = lags(pd.Series(cycle, index=summed.index), summed["period"]) if len(summed) else []
+        summed["lag_bucket"] = lag_bucket_labels(summed["lag"].to_numpy(int))
+        past = level_errors.get(level)
+        if past is None or past.empty:
+            banded = summed.assign(**{c: np.nan for c in band_columns(levels)}, band_method="no error history yet")
+        else:
+            past = past.assign(lag_bucket=lag_bucket_labels(past["lag"].to_numpy(int)))
+            table = band_table(past[["lag_bucket", "forecast", "actual"]], levels=levels, min_errors=min_errors)
+            banded = apply_bands(summed, table, levels=levels, min_errors=min_errors)
+            banded["band_method"] = f"{level} plan's own errors: " + banded["band_method"].astype(str)
+        parts.append(banded.assign(level=level))
+    out = pd.concat(parts, ignore_index=True)
+    return out[[*LEVEL_BAND_COLUMNS, *band_columns(levels)]].reset_index(drop=True)

@@ -52,24 +52,27 @@ from consensus.methods import history as hist
 from consensus.methods import scoring
 from consensus.methods.accuracy import month_indexes_factorized
 from consensus.methods.alignment import historical_mix
+from consensus.methods.bias import BiasSpec, correct_sources, factors_as_known, persistent_bias, segment_weight_sums
 from consensus.methods.bom import component_totals, explode_bom
 from consensus.methods.combine import combine_sources
 from consensus.methods.decisions import apply_decisions
-from consensus.methods.intervals import apply_bands, band_columns
+from consensus.methods.intervals import BAND_RULES, apply_bands, band_columns, combined_level_errors, stored_level_bands
 from consensus.methods.reconciliation import DEFAULT_RECONCILIATION, RECONCILIATION_METHODS, reconcile_hierarchy
 from consensus.methods.statistical import forecast_statistical
-from consensus.methods.weights import WeightSpec, estimate_weights_from_sums
+from consensus.methods.weights import WeightSpec, assign_segments, estimate_weights_from_sums
 from consensus.store.columnar import digest_of, frame_digest, pack_frames, unpack_frames
 from consensus.vocabulary import combined_sources, scored_sources
 
 #: Bump when any step changes the numbers, so cached parts made by older code are never read.
-METHOD_VERSION = "2026.12.1"
+METHOD_VERSION = "2026.12.2"
 #: The published plan and its bands are stated in thousandths of a unit.
 PLAN_DECIMALS = 3
 #: Fixed groups of families the statistical fits are spread over (independent of the number of processes).
 STATISTICAL_GROUPS = 16
 #: Fewer series than this and the fits stay in one process (starting processes would cost more).
 PARALLEL_MIN_SERIES = 4000
+#: The errors source weights can be estimated from (see RunSpec.weights_from).
+WEIGHT_ERRORS = ("segment_totals", "cells")
 
 
 @dataclass(frozen=True)
@@ -80,8 +83,18 @@ class RunSpec:
     band_levels: tuple[float, ...] = (0.8, 0.95)
     mix_window_months: int = 12
     reconciliation: str = DEFAULT_RECONCILIATION
+    #: When a source's persistent bias is corrected before it is combined (consensus.methods.bias).
+    bias: BiasSpec = field(default_factory=BiasSpec)
+    #: Which errors weigh the sources: each source's segment totals ("segment_totals") or its cells ("cells").
+    weights_from: str = "cells"
+    #: How item bands scale past errors to a forecast (consensus.methods.intervals.BAND_RULES).
+    band_rule: str = "relative_by_size"
 
     def __post_init__(self) -> None:
+        if self.band_rule not in BAND_RULES:
+            raise InvalidSpec(f"band_rule must be one of {', '.join(BAND_RULES)}")
+        if self.weights_from not in WEIGHT_ERRORS:
+            raise InvalidSpec(f"weights_from must be one of {', '.join(WEIGHT_ERRORS)}")
         if self.reconciliation not in RECONCILIATION_METHODS:
             raise InvalidSpec(f"reconciliation must be one of {', '.join(RECONCILIATION_METHODS)}")
         levels = tuple(float(level) for level in self.band_levels)
@@ -102,9 +115,10 @@ class RunSpec:
     def from_dict(cls, data: dict) -> "RunSpec":
         data = dict(data)
         weights = WeightSpec(**data.pop("weights", {}))
+        bias = BiasSpec(**data.pop("bias", {}))
         if "band_levels" in data:
             data["band_levels"] = tuple(data["band_levels"])
-        return cls(weights=weights, **data)
+        return cls(weights=weights, bias=bias, **data)
 
 
 @dataclass(frozen=True)
@@ -523,7 +537,8 @@ def _history_key(ctx: _Context) -> str:
                           frame_digest(c.published) if c.published is not None else None])
     return digest_of("history", METHOD_VERSION, inputs.cycle.name, past_keys, ctx.history.digest_at(inputs.cycle.name),
                      inputs.master_digest(), spec.mix_window_months, spec.weights.segment,
-                     spec.reconciliation != "bottom_up", list(spec.band_levels), _statistical_key(ctx, inputs.cycle))
+                     spec.reconciliation != "bottom_up", list(spec.band_levels), spec.band_rule,
+                     _statistical_key(ctx, inputs.cycle))
 
 
 def _history_summary(ctx: _Context, patterns: pd.DataFrame, key: str,
@@ -538,7 +553,7 @@ def _history_summary(ctx: _Context, patterns: pd.DataFrame, key: str,
                                   patterns=patterns)
     ledger = hist.HistoryLedger(book=book, cycle=cycle, segment=spec.weights.segment,
                                 sources=tuple(scored_sources()), keep_cells=keep_cells,
-                                band_levels=spec.band_levels)
+                                band_levels=spec.band_levels, band_rule=spec.band_rule)
     global _WORKER_LEDGER
     _WORKER_LEDGER = ledger
     _prepare(ctx, list(inputs.past))
@@ -603,12 +618,12 @@ def _compute(ctx: _Context) -> PlanResult:
                                history_key, history_found)
     ctx.progress("weights")
     segments = _segments(spec.weights.segment, inputs.items, inputs.locations)
-    weights = estimate_weights_from_sums(summary.weight_sums(), cycle=cycle.name, segments=segments,
-                                         spec=spec.weights, sources=present)
-    combined = combine_sources(combined_rows, weights, items=inputs.items, locations=inputs.locations,
+    bias, corrected_rows = _corrected_sources(summary, combined_rows, cycle.name, segments, present, inputs, spec)
+    weights = _weights(summary, cycle.name, segments, present, spec)
+    combined = combine_sources(corrected_rows, weights, items=inputs.items, locations=inputs.locations,
                                spec=spec.weights)
     table = combined.consensus
-    reconciled = reconcile_hierarchy(table, combined_rows, summary.cell_errors if summary.cell_errors is not None
+    reconciled = reconcile_hierarchy(table, corrected_rows, summary.cell_errors if summary.cell_errors is not None
                                      else _no_errors(), items=inputs.items, locations=inputs.locations,
                                      method=spec.reconciliation, weight_spec=spec.weights, cycle=cycle.name,
                                      actuals=inputs.actuals[inputs.actuals["quantity"].notna()])
@@ -622,20 +637,64 @@ def _compute(ctx: _Context) -> PlanResult:
     for column in ["consensus", *bands]:
         table[column] = np.round(table[column].astype(float), PLAN_DECIMALS) + 0.0
     cells = _cells_part(table, combined_rows, present, bands)
+    level_bands = stored_level_bands(cells, _level_errors(summary, weights, cycle.name, segments, present, spec),
+                                     items=inputs.items, cycle=cycle.name, levels=spec.band_levels)
+    for column in ["consensus", *bands]:
+        level_bands[column] = np.round(level_bands[column].astype(float), PLAN_DECIMALS) + 0.0
     components = component_totals(explode_bom(cells.rename(columns={"consensus": "quantity"})[
         ["item", "period", "quantity"]], inputs.bom)) if len(inputs.bom) else pd.DataFrame(
         columns=["component", "period", "quantity"])
     parts = {"cells": cells, "weights": combined.weights, "series": stat["series"], "components": components,
-             "band_table": summary.band_table}
+             "band_table": summary.band_table, "bias": bias, "level_bands": level_bands}
     parts.update(scoring.scorecards(summary, items=inputs.items, locations=inputs.locations,
                                     actuals=ctx.history.known_at(cycle.name)))
     parts["amplification"] = _amplification(summary, current, cycle, ctx.history, inputs.locations)
     notes = {"warnings": list(dict.fromkeys(ctx.warnings)), "decisions_applied": applied,
              "reconciliation": reconciled.notes, "statistical_made": ctx.made, "band_source": summary.band_source,
-             "unknown_months": list(inputs.unknown_months), "method_version": METHOD_VERSION}
+             "unknown_months": list(inputs.unknown_months), "method_version": METHOD_VERSION,
+             "bias_correction": _bias_notes(bias, spec.weights.segment)}
     summary_line = {"cells": int(len(cells)), "total": float(cells["consensus"].sum()), "sources": present,
                     "flagged": int(cells["flagged"].sum())}
     return PlanResult(parts=parts, notes=notes, summary=summary_line)
+
+
+def _corrected_sources(summary: hist.HistorySummary, rows: pd.DataFrame, cycle: str, segments: list, present: list,
+                       inputs: PlanInputs, spec: RunSpec) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """The bias table of every (segment, lag bucket, source) and the rows to combine, persistent biases corrected."""
+    bias = persistent_bias(summary.cell_sums, cycle=cycle, window_cycles=spec.weights.window_cycles,
+                           segments=segments, sources=present, spec=spec.bias)
+    segment_of = assign_segments(rows, segment=spec.weights.segment, items=inputs.items, locations=inputs.locations)
+    corrected = correct_sources(rows, bias, segment_of=segment_of).drop(columns="bias_factor")
+    return bias, corrected
+
+
+def _weights(summary: hist.HistorySummary, cycle: str, segments: list, present: list,
+             spec: RunSpec) -> pd.DataFrame:
+    """Source weights from the errors RunSpec.weights_from names (segment totals after correction, or cells)."""
+    if spec.weights_from == "segment_totals":
+        window = spec.weights.window_cycles
+        known = factors_as_known(summary.cell_sums, cycle=cycle, window_cycles=window, segments=segments,
+                                 sources=present, spec=spec.bias)
+        sums = segment_weight_sums(summary.cell_sums, known, cycle=cycle, window_cycles=window, sources=present)
+    else:
+        sums = summary.weight_sums()
+    return estimate_weights_from_sums(sums, cycle=cycle, segments=segments, spec=spec.weights, sources=present)
+
+
+def _level_errors(summary: hist.HistorySummary, weights: pd.DataFrame, cycle: str, segments: list, present: list,
+                  spec: RunSpec) -> dict[str, pd.DataFrame]:
+    """The family and total errors the run's combination would have made (for the level bands)."""
+    if spec.weights.segment != "family":
+        return {}  # the sources' family totals are weighed with family weights only
+    factors = factors_as_known(summary.cell_sums, cycle=cycle, window_cycles=spec.weights.window_cycles,
+                               segments=segments, sources=present, spec=spec.bias)
+    return combined_level_errors(summary.node_errors, weights, factors)
+
+
+def _bias_notes(bias: pd.DataFrame, segment: str) -> list[str]:
+    """One line per corrected (segment, lag bucket, source), for the run's notes."""
+    on = bias[bias["persistent"]]
+    return [f"{r.source}, {segment} {r.segment}, lag {r.lag_bucket}: {r.note}" for r in on.itertuples(index=False)]
 
 
 #: Fewest months of implied orders an item × DC needs before its variance counts (a stated choice: a

@@ -186,9 +186,8 @@ def build_pack_context(
     sources for disagreement, the change for a moved plan, half the 80% band
     width for a wide band, |bias %| × the source's plan value for a biased source,
     and the next ``band_months`` of plan value in scope for a missing input.
-    Family bands combine item × location bands as √Σ(deviation²), which assumes
-    independent errors (normal approximation); errors that move together would
-    make family bands wider.
+    Family bands are the run's own family bands (``inputs.level_bands``), read
+    off the family plans' past errors, not a sum of item bands.
     """
     if any(int(w) < 1 for w in summary_windows):
         raise InvalidSpec(f"summary windows must be positive month counts, got {summary_windows!r}")
@@ -210,13 +209,9 @@ def build_pack_context(
     sources = _with_master(_as_numeric(inputs.sources, ["quantity"]), items)
     source_names = vocabulary.ordered(sources["source"].unique()) if not sources.empty else []
 
-    # One family × month table for the whole cycle: consensus, band deviations, last cycle, last year.
-    cons["dev_lo80"] = (cons["consensus"] - cons["lower_80"]) ** 2
-    cons["dev_hi80"] = (cons["upper_80"] - cons["consensus"]) ** 2
-    cons["dev_lo95"] = (cons["consensus"] - cons["lower_95"]) ** 2
-    cons["dev_hi95"] = (cons["upper_95"] - cons["consensus"]) ** 2
+    # One family × month table for the whole cycle: consensus, last cycle, last year (bands: the run's own).
     fam_plan = cons.groupby(["family", "period"], as_index=False)[
-        ["consensus", "value", "dev_lo80", "dev_hi80", "dev_lo95", "dev_hi95"]
+        ["consensus", "value"]
     ].sum()
     fam_prev = previous.groupby(["family", "period"], as_index=False)["consensus"].sum().rename(
         columns={"consensus": "previous"}
@@ -803,9 +798,10 @@ def _family_pages(
     coverage = covered.div(n_cells, axis=0).reindex(family_order)
 
     plan = fam_plan.merge(src_wide, on=["family", "period"], how="left")
-    for key in ("80", "95"):
-        plan[f"lower_{key}"] = (plan["consensus"] - np.sqrt(plan[f"dev_lo{key}"])).clip(lower=0)
-        plan[f"upper_{key}"] = plan["consensus"] + np.sqrt(plan[f"dev_hi{key}"])
+    stored = _as_numeric(inputs.level_bands, ["lower_80", "upper_80", "lower_95", "upper_95"])
+    stored = stored[stored["level"] == "family"].rename(columns={"node": "family"})
+    plan = plan.merge(stored[["family", "period", "lower_80", "upper_80", "lower_95", "upper_95"]],
+                      on=["family", "period"], how="left")
     plan = plan[plan["period"].isin(plan_months)]
     hist = fam_act[fam_act["period"].isin(hist_months)]
 

@@ -47,6 +47,7 @@ FRAME_COLUMNS: dict[str, tuple[str, ...]] = {
     "decisions": ("at", "author", "scope", "period", "change", "reason"),
     "components": ("component", "period", "quantity"),
     "band_coverage": ("level", "nominal", "coverage", "winkler"),
+    "level_bands": ("level", "node", "period", "lower_80", "upper_80", "lower_95", "upper_95"),
     # One row per item × location of the statistical forecast; holdout_wape is a fraction (0.12 = 12%),
     # fallback is "" when a fitted method was used.
     "series": ("item", "location", "pattern", "method", "holdout_wape", "fallback"),
@@ -87,6 +88,8 @@ class PackInputs:
     components: pd.DataFrame
     method_notes: dict[str, str] = field(default_factory=dict)
     band_coverage: pd.DataFrame = field(default_factory=lambda: empty_frame("band_coverage"))
+    # Family and total bands as the run stored them, from those levels' own errors (node: family, or "all").
+    level_bands: pd.DataFrame = field(default_factory=lambda: empty_frame("level_bands"))
     series: pd.DataFrame = field(default_factory=lambda: empty_frame("series"))
     amplification: pd.DataFrame = field(default_factory=lambda: empty_frame("amplification"))
     accuracy_patterns: pd.DataFrame = field(default_factory=lambda: empty_frame("accuracy_patterns"))
@@ -369,7 +372,8 @@ def example_pack_inputs(
         ),
         "Bands": (
             "The 80% and 95% bands come from the spread of past forecast errors at the same lag, widening "
-            "with the horizon. Family and total bands combine item bands assuming errors are independent."
+            "with the horizon. Family and total bands come from the past errors of family and total plans "
+            "themselves, so items that miss together widen them."
         ),
         "Reconciliation": "Item, family and total figures add up: family numbers are sums of their items.",
     }
@@ -389,6 +393,7 @@ def example_pack_inputs(
         sources=sources, consensus=consensus, previous=previous, weights=weights, scorecard=scorecard,
         scorecard_history=scorecard_history, disagreement=disagreement.reset_index(drop=True), fva=fva,
         decisions=decisions, components=components, method_notes=method_notes, band_coverage=band_coverage,
+        level_bands=_example_level_bands(consensus, items),
         series=series, weight_scheme="shrunk_mse", weight_segment="family", weight_window_cycles=12,
         reconciliation_method="bottom_up", disagreement_threshold=0.6, disagreement_min_units=0.0,
         amplification=amplification, accuracy_patterns=accuracy_patterns,
@@ -473,6 +478,19 @@ def _example_pattern_accuracy(rng: np.random.Generator, series: pd.DataFrame) ->
                          "mase": round(mase * factor * jitter, 2),
                          "bias_pct": round(lean * rng.uniform(0.6, 1.4) if lean else rng.normal(0, 2), 1)})
     return pd.DataFrame(rows, columns=["pattern", "source", "lag_bucket", "n", "wape", "mase", "bias_pct"])
+
+
+def _example_level_bands(consensus: pd.DataFrame, items: pd.DataFrame) -> pd.DataFrame:
+    """Family bands of the example: the items' distances to the consensus added up (items missing together)."""
+    frame = consensus.merge(items[["item", "family"]], on="item")
+    out = {"consensus": frame.groupby(["family", "period"])["consensus"].sum()}
+    for key in ("80", "95"):
+        out[f"lower_{key}"] = out["consensus"] - (frame["consensus"] - frame[f"lower_{key}"]).groupby(
+            [frame["family"], frame["period"]]).sum()
+        out[f"upper_{key}"] = out["consensus"] + (frame[f"upper_{key}"] - frame["consensus"]).groupby(
+            [frame["family"], frame["period"]]).sum()
+    table = pd.DataFrame(out).reset_index().rename(columns={"family": "node"}).assign(level="family")
+    return table[list(FRAME_COLUMNS["level_bands"])]
 
 
 def _example_scorecard(rng: np.random.Generator, bucket_labels: list[str]) -> pd.DataFrame:

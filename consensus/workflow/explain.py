@@ -13,7 +13,9 @@ from dataclasses import dataclass
 import pandas as pd
 
 from consensus.errors import NotFound
+from consensus.methods.bias import correct_sources
 from consensus.methods.combine import combine_sources
+from consensus.methods.weights import assign_segments
 from consensus.methods.plan import RunSpec, trace_cell
 from consensus.periods import lag_bucket_labels, lags
 from consensus.store import frames
@@ -45,7 +47,7 @@ def explain_cell(cycle: str, *, item: str, location: str, period: str, revision:
     """Gather the audit of one cell and write it as a short explanation."""
     with session_scope(url, write=False) as session:
         run = latest_run(session, cycle, revision=revision)
-        parts = run_parts(session, run, ["cells", "weights", "series"])
+        parts = run_parts(session, run, ["cells", "weights", "series", "bias"])
         items = frames.load_items(session, through=run.through_seq)
         locations = frames.load_locations(session, through=run.through_seq)
         decisions = load_decisions(session, cycle, through=run.through_seq)
@@ -60,6 +62,10 @@ def explain_cell(cycle: str, *, item: str, location: str, period: str, revision:
     rows = pd.DataFrame({"source": [s for s, _ in values], "item": item, "location": location, "period": period,
                          "lag": line["lag"], "quantity": [v for _, v in values]})
     weights = parts["weights"]
+    corrections = _corrections(parts.get("bias"), rows, spec, items, locations)
+    if len(corrections):
+        rows = correct_sources(rows, parts["bias"], segment_of=assign_segments(
+            rows, segment=spec.weights.segment, items=items, locations=locations)).drop(columns="bias_factor")
     sources = combine_sources(rows, weights, items=items, locations=locations, spec=spec.weights).contributions \
         if len(rows) else pd.DataFrame(columns=["source", "value", "weight", "contribution", "bias_correction",
                                                 "weight_basis", "note"])
@@ -69,7 +75,7 @@ def explain_cell(cycle: str, *, item: str, location: str, period: str, revision:
     mine = decisions[(decisions["period"] == period) & ((decisions["item"] == item) | (decisions["family"] == family))]
     series = parts["series"]
     method = series[(series["item"] == item) & (series["location"] == location)] if len(series) else series
-    text = _write(cycle, run, spec, line, family, sources, traces, weights, mine)
+    text = _write(cycle, run, spec, line, family, sources, traces, weights, mine, corrections)
     if len(method):
         text += "\n" + describe_method(method.iloc[0])
     return CellExplanation(line, sources, traces, weights, mine, text)
@@ -90,7 +96,18 @@ def describe_method(row: pd.Series) -> str:
     return text + "."
 
 
-def _write(cycle, run, spec: RunSpec, line, family, sources, traces, weights, decisions) -> str:
+def _corrections(bias: pd.DataFrame | None, rows: pd.DataFrame, spec: RunSpec, items, locations) -> pd.DataFrame:
+    """The stored bias corrections that apply to this cell's sources: [source, factor, note]."""
+    if bias is None or bias.empty or rows.empty:
+        return pd.DataFrame(columns=["source", "factor", "note"])
+    keyed = rows.assign(segment=assign_segments(rows, segment=spec.weights.segment, items=items,
+                                                locations=locations),
+                        lag_bucket=lag_bucket_labels(rows["lag"].to_numpy()))
+    found = keyed.merge(bias, on=["segment", "lag_bucket", "source"], how="inner")
+    return found.loc[found["persistent"].astype(bool), ["source", "factor", "note"]].reset_index(drop=True)
+
+
+def _write(cycle, run, spec: RunSpec, line, family, sources, traces, weights, decisions, corrections=None) -> str:
     out = [f"Cycle {cycle}, revision {run.revision}, run #{run.id} ({run.status}): item {line['item']} at "
            f"{line['location']}, {line['period']} (lag {int(line['lag'])})",
            f"Consensus {_fmt(line['consensus'])} units."]
@@ -116,6 +133,10 @@ def _write(cycle, run, spec: RunSpec, line, family, sources, traces, weights, de
                    f"adds {_fmt(s.contribution):>9}  {why}")
         if s.bias_correction:
             out.append(f"  {'':<22} bias correction {s.bias_correction:+,.1f} units")
+    if corrections is not None and len(corrections):
+        out.append("Persistent bias corrected before weighing (tracking signal of the source's family totals):")
+        for c in corrections.itertuples(index=False):
+            out.append(f"  {source_label(c.source)}: {c.note}")
     if line.get("missing_sources"):
         missing = ", ".join(source_label(m.strip()) for m in str(line["missing_sources"]).split(","))
         out.append(f"Missing here: {missing}; the weights of the sources present were renormalised to sum to 100%.")

@@ -130,6 +130,8 @@ def gather_pack_inputs(cycle: str, *, revision: int | None = None, url=None) -> 
         disagreement=flagged[["item", "location", "period", "family", "spread", "spread_ratio", "flagged"]],
         fva=fva, decisions=active if len(active) else empty_frame("decisions"),
         components=parts.get("components", empty_frame("components")), band_coverage=coverage,
+        level_bands=parts.get("level_bands", empty_frame("level_bands")).reindex(
+            columns=list(empty_frame("level_bands").columns)),
         series=series.reindex(columns=list(empty_frame("series").columns)) if len(series) else empty_frame("series"),
         weight_scheme=spec.weights.scheme, weight_segment=spec.weights.segment,
         weight_window_cycles=spec.weights.window_cycles, reconciliation_method=spec.reconciliation,
