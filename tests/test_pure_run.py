@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import hashlib
 import shutil
+import sys
 from pathlib import Path
 
 import pandas as pd
@@ -161,6 +162,7 @@ def test_any_number_of_processes_gives_the_same_digits_on_ten_thousand_series(tm
     spec = importlib.util.spec_from_file_location("scale_store", Path(__file__).parent.parent / "bench" /
                                                   "scale_store.py")
     scale_store = importlib.util.module_from_spec(spec)
+    sys.modules["scale_store"] = scale_store  # dataclasses look their module up by name
     spec.loader.exec_module(scale_store)
     url = f"sqlite:///{tmp_path / 'scale.db'}"
     get_engine.cache_clear()
