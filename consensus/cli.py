@@ -642,6 +642,23 @@ def store_upgrade(ctx: typer.Context) -> None:
                f"store schema upgraded from {before} to {after}")
 
 
+@store_app.command("check")
+def store_check(ctx: typer.Context) -> None:
+    """Check the whole store: the journal's hash chain, every stored file and frame, the database file itself.
+
+    Example: consensus store check
+    """
+    from consensus.workflow.verify import check_store
+    try:
+        report = check_store(url=_url(ctx))
+    except ConsensusError as e:
+        _fail(e)
+    for line in report.lines():
+        typer.echo(line)
+    if not report.ok:
+        raise typer.Exit(1)
+
+
 @settings_app.command("list")
 def settings_list(ctx: typer.Context, fmt: str = FormatOpt) -> None:
     """List the store's settings with their values and what each means.
