@@ -341,7 +341,7 @@ def status(ctx: typer.Context, cycle: str = CycleOpt, fmt: str = FormatOpt) -> N
     when = table["submitted_at"].astype(str).str.slice(0, 10).replace({"NaT": "", "None": "", "nan": ""})
     states = []
     for state, days in zip(table["state"], table["days_late"].astype(object)):
-        known = days is not None and days == days and days is not pd.NA
+        known = days is not None and days is not pd.NA and days == days
         text = describe_submission_state(state, days_late=days if known else None)
         if state == "not_received" and known and days <= 0:
             text += f" ({-int(days)} days left)" if days < 0 else " (due today)"
