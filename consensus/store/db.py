@@ -163,8 +163,9 @@ def get_engine(url: str | None = None, *, check_schema: bool = True) -> Engine:
         raise StoreError(f"the store {_shown(resolved)} cannot be read: {str(error.orig).strip()}") from None
     except DatabaseError as error:  # e.g. SQLite's "file is not a database": --db names some other file
         engine.dispose()
-        raise StoreError(f"the store {_shown(resolved)} cannot be read: {str(error.orig).strip()}; is it a "
-                         "consensus store?") from None
+        guess = "; is it a consensus store?" if engine.dialect.name == "sqlite" else ""
+        reason = str(error.orig).strip().splitlines()[0] if error.orig else str(error)
+        raise StoreError(f"the store {_shown(resolved)} cannot be read: {reason}{guess}") from None
     return engine
 
 
