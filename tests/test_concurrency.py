@@ -154,7 +154,8 @@ def test_a_submit_while_another_write_holds_the_store_waits_then_records(store_u
     together = Together(_submit_when_released, [(store_url, str(p), f"submitter {k}")
                                                 for k, p in enumerate(_versions(tmp_path), start=1)])
     held = threading.Event()
-    holder = threading.Thread(target=_hold_the_store, args=(store_url, held, 5.0))
+    # longer than the five seconds SQLite waits for a lock by default (what the first wave relied on)
+    holder = threading.Thread(target=_hold_the_store, args=(store_url, held, 8.0))
     holder.start()
     assert held.wait(timeout=60)
     started = time.monotonic()
@@ -163,7 +164,7 @@ def test_a_submit_while_another_write_holds_the_store_waits_then_records(store_u
     waited = time.monotonic() - started
     holder.join()
     _check_recorded(results)
-    assert waited > 4.0  # they waited for the holder instead of failing at once
+    assert waited > 7.0  # they waited for the holder instead of failing at once
     assert not dc_values(store_url).duplicated(["item", "location", "period"]).any()
 
 
