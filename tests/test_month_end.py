@@ -115,6 +115,22 @@ def test_a_declared_scope_covers_its_places_so_a_row_left_out_is_no_longer_forec
     assert set(values["location"]) == {"DC-E1"}
 
 
+def test_the_same_file_with_another_declared_scope_is_a_new_submission(sqlite_store):
+    """Found while writing these tests: the same bytes sent again with --scope "region EAST" were "already in
+    force; nothing changed", so the scope the planner gave was silently dropped (DC-E2 kept its old file)."""
+    load_company(sqlite_store, dc=False)
+    ok(sqlite_store, "submit", DC_FILES["DC-E2"], "--cycle", CYCLE, "--source", "dc")
+    first = ok(sqlite_store, "submit", DC_FILES["DC-E1"], "--cycle", CYCLE, "--source", "dc")
+    wider = ok(sqlite_store, "submit", DC_FILES["DC-E1"], "--cycle", CYCLE, "--source", "dc", "--scope",
+               "region EAST")
+    assert "accepted as #" in wider.out and "(region EAST)" in wider.out, wider
+    assert "in force again" not in wider.out and f"#{_submission_id(first)}" in wider.out
+    assert set(dc_values(sqlite_store)["location"]) == {"DC-E1"}
+    same = ok(sqlite_store, "submit", DC_FILES["DC-E1"], "--cycle", CYCLE, "--source", "dc", "--scope",
+              "region EAST")
+    assert "nothing changed" in same.out
+
+
 def test_resubmitting_an_earlier_version_makes_it_current_again_and_says_so(sqlite_store, tmp_path):
     """Finding: A, then B, then A again was refused as "already received; nothing changed" (exit 0), B in force."""
     load_company(sqlite_store, dc=False)
