@@ -31,6 +31,12 @@ def _submit_when_released(barrier, url: str, path: str, name: str, queue) -> Non
     queue.put((name, said.code, said.out, said.err))
 
 
+def _command_when_released(barrier, url: str, args: tuple, name: str, queue) -> None:
+    barrier.wait(timeout=START_TIMEOUT_S)
+    said = cli(url, *args)
+    queue.put((name, said.code, said.out, said.err))
+
+
 def _settings_when_released(barrier, url: str, name: str, queue) -> None:
     barrier.wait(timeout=START_TIMEOUT_S)
     said = cli(url, "settings", "list", "--format", "csv")
@@ -196,3 +202,26 @@ def test_submits_during_a_run_record_and_a_rerun_gives_the_numbers_of_an_undistu
     ok(quiet, "submit", newest, "--cycle", CYCLE, "--source", "dc")
     ok(quiet, "run", "--cycle", CYCLE, "--jobs", "1")
     pd.testing.assert_frame_equal(plan_numbers(disturbed), plan_numbers(exported(quiet, tmp_path)))
+
+
+@pytest.mark.parametrize("late", ["submit", "decide"])
+def test_a_late_change_and_publish_at_the_same_moment_never_both_succeed(store_url, tmp_path, late):
+    """Finding: a late file replaced the file the published run was built from; decisions recorded after
+    publication could never be published.  Whichever is first, the published plan is the run it names."""
+    load_company(store_url)
+    ok(store_url, "run", "--cycle", CYCLE, "--jobs", "1")
+    change = {"submit": ("submit", str(write_variant(DC_FILES["DC-E1"], tmp_path / "late.csv", factor=2)),
+                         "--cycle", CYCLE, "--source", "dc"),
+              "decide": ("decide", "--cycle", CYCLE, "--family", "PARTS", "--period", "2026-11", "--pct", "5",
+                         "--reason", "late", "--by", "R. Tester")}[late]
+    results = dict((name, (code, out, err)) for name, code, out, err in _together(
+        _command_when_released, [(store_url, change, late), (store_url, ("publish", "--cycle", CYCLE, "--by",
+                                                                         "P. Lead"), "publish")]))
+    for name, (code, out, err) in results.items():
+        assert CRASH not in out + err and (code == 0 or err.startswith("error: ")), (name, code, out, err)
+    assert [results[late][0], results["publish"][0]].count(0) == 1, results  # exactly one of them went through
+    if results["publish"][0] == 0:
+        assert "cycle reopen" in results[late][2]
+    else:
+        assert "since run #" in results["publish"][2] and f"consensus run --cycle {CYCLE}" in results["publish"][2]
+    assert "intact" in ok(store_url, "store", "check").out
