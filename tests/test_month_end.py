@@ -193,6 +193,23 @@ def test_months_without_orders_are_refused_or_planned_as_unknown_never_as_zero(t
     assert unknown_drop < zero_drop / 2, totals  # planned as unknown, the forecast stays near the complete one
 
 
+@pytest.mark.parametrize("first, words", [
+    ("2023-06", "cycle 2023-06 comes before the first month of order history (2023-11); a past cycle is planned "
+                "from the orders known then: start --from at 2023-11 or later"),
+    ("2024-01", "cycle 2024-03: no order history for 2024-03; load those months with 'consensus actuals FILE'"),
+])
+def test_past_cycles_without_order_history_are_refused_with_advice_open_past_can_follow(sqlite_store, tmp_path,
+                                                                                     first, words):
+    """Found while writing these tests: open-past told the planner to use --allow-missing-history, which it lacks."""
+    orders = pd.read_csv(DATA / "orders.csv")
+    orders[orders["period"] != "2024-03"].to_csv(tmp_path / "orders_hole.csv", index=False)
+    load_company(sqlite_store, dc=False, orders=tmp_path / "orders_hole.csv", extra_open=("--allow-missing-history",))
+    said = cli(sqlite_store, "open-past", "--from", first, "--to", "2024-06", "--horizon", 12)
+    assert said.code == 1 and words in said.err and "--allow-missing-history" not in said.err, said
+    listing = ok(sqlite_store, "cycle", "list", "--format", "csv").out
+    assert listing.count("\n") == 2  # the header and the open cycle: nothing half-opened
+
+
 def test_a_refused_decision_changes_nothing_and_a_withdrawn_one_stops_applying(sqlite_store, tmp_path):
     """Findings: decide --delta inf was accepted and every later run crashed; no command removed a decision;
     decide --pct -500 quietly set demand to 0."""
