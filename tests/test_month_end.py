@@ -277,6 +277,8 @@ def test_an_item_left_out_of_the_items_file_stays_unless_replaced_and_then_the_r
 
 def _published_company(url, tmp_path) -> pd.DataFrame:
     load_company(url, due="2026-10-25")
+    ok(url, "decide", "--cycle", CYCLE, "--item", "PK-200", "--period", shift(CYCLE, 3), "--delta", "12",
+       "--reason", "pond season", "--by", "R. Tester")
     ok(url, "run", "--cycle", CYCLE, "--jobs", "1")
     ok(url, "publish", "--cycle", CYCLE, "--by", "P. Lead")
     return exported(url, tmp_path)
@@ -294,6 +296,7 @@ def test_a_published_cycle_refuses_files_decisions_and_runs_and_says_how_to_reop
                       "--pct", "5", "--reason", "late", "--by", "R. Tester"),
         "run": cli(store_url, "run", "--cycle", CYCLE, "--jobs", "1"),
         "publish": cli(store_url, "publish", "--cycle", CYCLE, "--by", "R. Tester"),
+        "withdraw": cli(store_url, "decide", "--withdraw", "1", "--reason", "late", "--by", "R. Tester"),
     }
     for command, said in attempts.items():
         assert said.code == 1 and CRASH not in said.text, (command, said)
