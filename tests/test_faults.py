@@ -263,9 +263,8 @@ def test_kill_9_during_run_on_sqlite(reference, tmp_path):
 
 
 @pytest.mark.postgres
+@pytest.mark.parametrize("store_url", ["postgres"], indirect=True)  # the SQLite store has its own tests above
 def test_kill_9_during_submit_and_run_on_postgres(store_url, reference, tmp_path):
-    if not store_url.startswith("postgresql"):
-        pytest.skip("the SQLite store has its own tests above")
     load_company(store_url, past=2)
     killed = _submit_trials(store_url, reference, tmp_path, random_kills=1)
     assert killed[-1], "the submit finished before it was seen writing"
