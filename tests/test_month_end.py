@@ -19,6 +19,7 @@ the command line, as a planner would).  Each test names the finding it stands fo
 
 from __future__ import annotations
 
+import io
 import sqlite3
 
 import numpy as np
@@ -28,9 +29,6 @@ from sqlalchemy import create_engine, text
 
 from small_company import (CRASH, CYCLE, DATA, DC_FILES, cli, dc_values, exported, file_values, load_company, ok,
                            plan_numbers, shift, status_rows, write_variant)
-
-pytestmark = pytest.mark.filterwarnings("ignore::DeprecationWarning")
-
 
 @pytest.fixture
 def sqlite_store(tmp_path) -> str:
@@ -267,7 +265,7 @@ def test_a_refused_decision_changes_nothing_and_a_withdrawn_one_stops_applying(s
     pd.testing.assert_frame_equal(plan_numbers(cut[~touched]), plan_numbers(before[~touched]))
 
     ok(sqlite_store, "decide", "--withdraw", decision_id, "--reason", "recall called off", "--by", "R. Tester")
-    log = pd.read_csv(__import__("io").StringIO(ok(sqlite_store, "decisions", "--cycle", CYCLE, "--format",
+    log = pd.read_csv(io.StringIO(ok(sqlite_store, "decisions", "--cycle", CYCLE, "--format",
                                                    "csv").out))
     assert log[["id", "withdrawn_by", "withdrawn_reason"]].values.tolist() == [
         [int(decision_id), "R. Tester", "recall called off"]]
@@ -357,7 +355,7 @@ def test_reopening_starts_revision_2_keeps_revision_1_and_the_pack_says_so(sqlit
     ok(sqlite_store, "run", "--cycle", CYCLE, "--jobs", "1")
     ok(sqlite_store, "publish", "--cycle", CYCLE, "--by", "Q. Lead")
 
-    listing = pd.read_csv(__import__("io").StringIO(ok(sqlite_store, "cycle", "list", "--format", "csv").out))
+    listing = pd.read_csv(io.StringIO(ok(sqlite_store, "cycle", "list", "--format", "csv").out))
     assert listing[["name", "revision", "published_by"]].values.tolist() == [[CYCLE, 2, "Q. Lead"]]
     assert listing["status"].str.lower().tolist() == ["published"]
     first = exported(sqlite_store, tmp_path, revision=1)
