@@ -341,7 +341,7 @@ def status(ctx: typer.Context, cycle: str = CycleOpt, fmt: str = FormatOpt) -> N
     when = table["submitted_at"].astype(str).str.slice(0, 10).replace({"NaT": "", "None": "", "nan": ""})
     states = []
     for state, days in zip(table["state"], table["days_late"].astype(object)):
-        known = days is not None and days == days and days is not pd.NA
+        known = days is not None and days is not pd.NA and days == days
         text = describe_submission_state(state, days_late=days if known else None)
         if state == "not_received" and known and days <= 0:
             text += f" ({-int(days)} days left)" if days < 0 else " (due today)"
@@ -640,6 +640,23 @@ def store_upgrade(ctx: typer.Context) -> None:
         _fail(e)
     typer.echo(f"store schema {before} is current" if before == after else
                f"store schema upgraded from {before} to {after}")
+
+
+@store_app.command("check")
+def store_check(ctx: typer.Context) -> None:
+    """Check the whole store: the journal's hash chain, every stored file and frame, the database file itself.
+
+    Example: consensus store check
+    """
+    from consensus.workflow.verify import check_store
+    try:
+        report = check_store(url=_url(ctx))
+    except ConsensusError as e:
+        _fail(e)
+    for line in report.lines():
+        typer.echo(line)
+    if not report.ok:
+        raise typer.Exit(1)
 
 
 @settings_app.command("list")

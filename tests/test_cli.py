@@ -195,6 +195,12 @@ BROKEN = [
     ["--db", "sqlite:///{tmp}/no/such/folder/x.db", "cycle", "list"],
     ["--db", "carrier-pigeon://x", "cycle", "list"],
     ["--db", "postgresql+psycopg://nobody@127.0.0.1:9/none", "cycle", "list"],
+    ["--db", "sqlite:///{tmp}", "cycle", "list"],  # a folder, not a file
+    ["--db", "sqlite:///{good}/items.csv", "cycle", "list"],  # a file that is not a store
+    ["--db", "sqlite:///{good}/items.csv", "store", "upgrade"],
+    ["cycle", "open", "2026-12"],  # no order history loaded: refused, saying how to go on
+    ["decide", "--cycle", "2026-11", "--period", "2027-01", "--item", "A100", "--set", "1e308", "--reason", "r",
+     "--by", "b"],
 ]
 
 
@@ -208,6 +214,45 @@ def test_broken_arguments_give_a_plain_message_and_no_traceback(cli_store, tmp_p
     text = out.out + out.err
     assert code in (1, 2), (code, text)
     assert "Traceback" not in text and "Error:" not in text.replace("error:", "")
+    assert "unexpected problem" not in text, text  # the last line of defence is a crash too, told politely
     lines = [line for line in out.err.splitlines() if line.strip()]
     assert lines and lines[0].startswith(("error:", "Usage")) or code == 2, text
     assert len(lines) <= 3 or code == 2, text
+
+
+# Output paths that cannot work, on a store that has a run to write (the list above stops earlier: no run yet).
+BROKEN_OUT = [
+    (["export", "--out", "{tmp}"], "is a folder"),
+    (["export", "--out", "{tmp}/"], "is a folder"),
+    (["export", "--out", "{tmp}/no/such/folder/c.csv"], "the folder {tmp}/no/such/folder does not exist"),
+    (["components", "--out", "{tmp}"], "is a folder"),
+    (["components", "--out", "{tmp}/no/such/folder/c.csv"], "does not exist"),
+    (["pack", "--out", "{tmp}"], "is a folder"),
+    (["pack", "--out", "{tmp}/no/such/folder/p.pdf"], "the folder {tmp}/no/such/folder does not exist"),
+    (["pack", "--out", "{tmp}/p.pdf", "--html", "{tmp}/no/such/folder/p.html"], "does not exist"),
+]
+
+
+@pytest.fixture(scope="module")
+def run_store(tmp_path_factory):
+    """The small company of tests/data/month_end with a run of its cycle."""
+    from small_company import load_company, ok
+
+    url = f"sqlite:///{tmp_path_factory.mktemp('run_store') / 'store.db'}"
+    get_engine.cache_clear()
+    load_company(url)
+    ok(url, "run", "--cycle", "2026-10", "--jobs", "1")
+    return url
+
+
+@pytest.mark.parametrize("args, words", BROKEN_OUT, ids=[" ".join(a)[:50] for a, _ in BROKEN_OUT])
+def test_an_output_path_that_cannot_work_is_refused_in_one_line_and_nothing_is_written(run_store, tmp_path, capsys,
+                                                                                       args, words):
+    """Finding of a month end: export or pack --out pointing at a folder or into a missing folder gave tracebacks."""
+    filled = [a.replace("{tmp}", str(tmp_path)) for a in args]
+    before = sorted(tmp_path.rglob("*"))
+    code = run_cli(["--db", run_store, filled[0], "--cycle", "2026-10", *filled[1:]])
+    err = capsys.readouterr().err
+    assert code == 1 and err.startswith("error: ") and words.replace("{tmp}", str(tmp_path)) in err, err
+    assert len(err.strip().splitlines()) == 1 and "unexpected problem" not in err
+    assert sorted(tmp_path.rglob("*")) == before  # not a file, not a folder, not a temporary left behind

@@ -282,7 +282,7 @@ def submit_file(path: Path | str, *, url=None, source: str | None = None, cycle:
         detail["families"] = _families_of(clean, items)
         return _store_forecast(url, path=path, content=intake.content, kind=intake.kind, source=source, detail=detail,
                                clean=clean, submitted_by=submitted_by, file_format=intake.file_format,
-                               horizons=horizons)
+                               horizons=horizons, locations=locations)
 
 
 def _families_of(clean: pd.DataFrame, items: pd.DataFrame) -> list[str]:
@@ -304,7 +304,7 @@ def _describe(detail: dict) -> str:
 
 
 def _store_forecast(url, *, path: Path, content: bytes, kind: str, source: str, detail: dict, clean: pd.DataFrame,
-                    submitted_by: str, file_format: dict, horizons: dict) -> SubmissionOutcome:
+                    submitted_by: str, file_format: dict, horizons: dict, locations: pd.DataFrame) -> SubmissionOutcome:
     cycles = sorted(clean["cycle"].dropna().astype(str).unique().tolist())
     sha = file_sha256(content)
     lines = clean.drop(columns=[c for c in ("source",) if c in clean.columns]).reset_index(drop=True)
@@ -323,11 +323,14 @@ def _store_forecast(url, *, path: Path, content: bytes, kind: str, source: str, 
             c.opened_seq = journal.record(session, "cycle", c, cycle=name).seq
         earlier = _newest_of_source(session, source, cycles, kind)
         same_cycles = earlier
+        # the same bytes answering for the same places: a different --scope is a different submission
+        same_file = (same_cycles["sha256"] == sha) & same_cycles["scope_detail"].map(
+            lambda theirs: _same_places(theirs, detail)).astype(bool)
         newest = same_cycles.iloc[-1] if len(same_cycles) else None
-        if newest is not None and newest["sha256"] == sha and len(cycles) == 1:
+        if newest is not None and bool(same_file.iloc[-1]) and len(cycles) == 1:
             return SubmissionOutcome(path.name, "unchanged", int(newest["id"]), kind=kind, source=source,
                                      cycles=cycles, scope=newest["scope"])
-        reinstated = same_cycles[same_cycles["sha256"] == sha]
+        reinstated = same_cycles[same_file]
         first_cycle = session.get(Cycle, cycles[0])
         at = utcnow()
         late = _late_days(first_cycle, at) if len(cycles) == 1 else 0
@@ -344,19 +347,35 @@ def _store_forecast(url, *, path: Path, content: bytes, kind: str, source: str, 
         for name in cycles:
             session.add(SubmissionCycle(submission_id=sub.id, cycle=name))
         _record(session, sub, sub.cycle)
-        takes_over = _overlapping(same_cycles, detail)
+        takes_over = _overlapping(same_cycles, detail, locations)
         return SubmissionOutcome(path.name, "accepted", sub.id, kind=kind, source=source, cycles=cycles,
                                  scope=sub.scope, rows=len(clean), takes_over=takes_over,
                                  reinstates=sub.reinstates, late_days=late)
 
 
-def _overlapping(earlier: pd.DataFrame, detail: dict) -> list[int]:
-    """Earlier submissions whose places overlap this one's (they lose the cells this one covers)."""
+def _same_places(theirs, mine: dict) -> bool:
+    """Two scopes in closed form answer for the same places (declared or not, the same place kind and names)."""
+    theirs = theirs or {}
+    return all(theirs.get(k) == mine.get(k) for k in ("declared", "place")) and \
+        sorted(theirs.get("places", [])) == sorted(mine.get("places", []))
+
+
+def _overlapping(earlier: pd.DataFrame, detail: dict, locations: pd.DataFrame) -> list[int]:
+    """Earlier submissions whose places overlap this one's (they lose the cells this one covers).
+
+    Places are compared as the locations they cover, so "region EAST" overlaps "location DC-E1"; events
+    files name events, and overlap when they name the same one; a file for "all" overlaps every other.
+    """
+    def reach(scope: dict) -> set[str]:
+        if scope.get("place") == "events":
+            return {f"event {name}" for name in scope.get("places", [])}
+        return set(scope_locations(scope, locations))
+
     out = []
-    mine = set(detail.get("places", []))
+    mine = reach(detail)
     for row in earlier.itertuples(index=False):  # a handful of earlier files of one source and cycle
         theirs = row.scope_detail or {}
-        if "all" in (theirs.get("place"), detail.get("place")) or mine & set(theirs.get("places", [])):
+        if "all" in (theirs.get("place"), detail.get("place")) or mine & reach(theirs):
             out.append(int(row.id))
     return out
 

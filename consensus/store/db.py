@@ -29,7 +29,7 @@ from pathlib import Path
 
 from sqlalchemy import event, inspect, text
 from sqlalchemy.engine import Engine, make_url
-from sqlalchemy.exc import ArgumentError, NoSuchModuleError, OperationalError, ProgrammingError
+from sqlalchemy.exc import ArgumentError, DatabaseError, NoSuchModuleError, OperationalError, ProgrammingError
 from sqlalchemy.pool import StaticPool
 from sqlmodel import Session, create_engine
 
@@ -161,6 +161,11 @@ def get_engine(url: str | None = None, *, check_schema: bool = True) -> Engine:
     except ProgrammingError as error:
         engine.dispose()
         raise StoreError(f"the store {_shown(resolved)} cannot be read: {str(error.orig).strip()}") from None
+    except DatabaseError as error:  # e.g. SQLite's "file is not a database": --db names some other file
+        engine.dispose()
+        guess = "; is it a consensus store?" if engine.dialect.name == "sqlite" else ""
+        reason = str(error.orig).strip().splitlines()[0] if error.orig else str(error)
+        raise StoreError(f"the store {_shown(resolved)} cannot be read: {reason}{guess}") from None
     return engine
 
 
@@ -180,7 +185,7 @@ def upgrade_store(url: str | None = None) -> tuple[str, str]:
                              "consensus; upgrade consensus to use it")
         migrations.upgrade(engine)
         return state or "(empty)", migrations.current_revision(engine) or ""
-    except OperationalError as error:
+    except DatabaseError as error:  # OperationalError (unreachable, locked) and a file that is no database
         reason = str(error.orig).strip().splitlines()[0] if error.orig else str(error)
         raise StoreError(f"cannot open the store {_shown(resolved)}: {reason}") from None
     finally:

@@ -35,6 +35,7 @@ class LoadedInputs:
     through_seq: int
     revision: int
     submission_ids: list[int]
+    notes: tuple[str, ...] = ()  # what the loader left out, for the run to say
 
 
 def line_loader(url):
@@ -95,6 +96,7 @@ def load_plan_inputs(cycle_name: str, *, url=None, spec: RunSpec, through: int |
         missing = missing_history_months(actuals, cycle.name)
         if missing and not cycle.allow_missing_history:
             raise missing_history_error(cycle.name, missing, empty=actuals.empty)
+        actuals, notes = planned_history(actuals, items, locations, cycle.name)
         window = [periods.shift_month(cycle.name, -k) for k in range(spec.weights.window_cycles, 0, -1)]
         c = Cycle.__table__
         open_past = {row.name: row.horizon for row in session.execute(
@@ -117,7 +119,30 @@ def load_plan_inputs(cycle_name: str, *, url=None, spec: RunSpec, through: int |
     inputs = PlanInputs(cycle=current, past=tuple(past), items=items, locations=locations, bom=bom,
                         actuals=actuals, decisions=decisions, lines=line_loader(url), unknown_months=tuple(missing))
     return LoadedInputs(inputs=inputs, through_seq=seq, revision=revision,
-                        submission_ids=sorted(int(i) for i in subs["id"]))
+                        submission_ids=sorted(int(i) for i in subs["id"]), notes=notes)
+
+
+def planned_history(actuals: pd.DataFrame, items: pd.DataFrame, locations: pd.DataFrame,
+                    cycle: str) -> tuple[pd.DataFrame, tuple[str, ...]]:
+    """The order history of items and locations in the master in force, and a note naming what was left out.
+
+    An item or location that left the master (``consensus master --replace``)
+    is no longer planned: its orders stay stored, but no statistical forecast
+    is made from them and no accuracy is measured on them.
+    """
+    gone_item = ~actuals["item"].isin(set(items["item"]))
+    gone_location = ~actuals["location"].isin(set(locations["location"]))
+    notes = []
+    for mask, column, word in ((gone_item, "item", "item"), (gone_location, "location", "location")):
+        names = sorted(actuals.loc[mask, column].astype(str).unique())
+        if names:
+            shown = ", ".join(names[:5]) + (f" and {len(names) - 5} more" if len(names) > 5 else "")
+            notes.append(f"cycle {cycle}: {len(names)} {word}{'s' if len(names) != 1 else ''} with order history "
+                         f"{'are' if len(names) != 1 else 'is'} no longer in the {word}s master and not planned "
+                         f"({shown})")
+    if not notes:
+        return actuals, ()
+    return actuals[~(gone_item | gone_location)].reset_index(drop=True), tuple(notes)
 
 
 def _cycle_links(session, ids: list[int]) -> pd.DataFrame:

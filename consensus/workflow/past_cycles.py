@@ -10,11 +10,11 @@ accuracy record from the first real cycle.
 from __future__ import annotations
 
 from consensus import periods
-from consensus.errors import ConsensusError
+from consensus.errors import ConsensusError, CycleStateError
 from consensus.store import frames
 from consensus.store.db import session_scope
 from consensus.store.models import Cycle
-from consensus.workflow.cycles import open_cycle
+from consensus.workflow.cycles import describe_missing, missing_history_months, open_cycle
 
 
 def open_past_cycles(first: str, last: str, *, horizon: int = 18, url=None) -> list[dict]:
@@ -28,6 +28,16 @@ def open_past_cycles(first: str, last: str, *, horizon: int = 18, url=None) -> l
         actuals = frames.load_actuals(session)
     if actuals.empty:
         raise ConsensusError("no order history loaded; load it with 'consensus actuals FILE'")
+    first_orders = str(actuals["period"].min())
+    for name in periods.month_range(first, last):  # refuse before opening any, naming what open-past can do
+        if name < first_orders:
+            raise CycleStateError(f"cycle {name} comes before the first month of order history ({first_orders}); "
+                                  f"a past cycle is planned from the orders known then: start --from at "
+                                  f"{first_orders} or later, or load the earlier orders with 'consensus actuals FILE'")
+        missing = missing_history_months(actuals, name)
+        if missing:
+            raise CycleStateError(f"cycle {name}: no order history for {describe_missing(missing)}; load those "
+                                  "months with 'consensus actuals FILE' before opening past cycles over them")
     done = []
     for name in periods.month_range(first, last):
         with session_scope(url, write=False) as session:

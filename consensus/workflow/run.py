@@ -66,6 +66,8 @@ def compute_cycle(cycle_name: str, *, url=None, spec: RunSpec | None = None, job
     loaded = load_plan_inputs(cycle_name, url=url, spec=spec, through=through, require_open=require_open)
     cache = StoreCache(url, enabled=use_cache)
     result = compute_plan(loaded.inputs, spec, cache=cache, jobs=jobs or default_jobs(), progress=progress)
+    if loaded.notes:
+        result.notes["warnings"] = [*loaded.notes, *result.notes["warnings"]]
     return loaded, result, cache
 
 

@@ -38,10 +38,21 @@ def head_revision() -> str:
 
 
 def upgrade(engine: Engine, revision: str = "head") -> None:
-    """Bring the store's schema to ``revision`` (the newest by default), in one transaction."""
+    """Bring the store's schema to ``revision`` (the newest by default), in one transaction.
+
+    On PostgreSQL the transaction first takes the store's write lock, so when
+    several processes open a new store at once one creates the schema and the
+    others, waiting, find it made (without the lock all of them tried to create
+    the tables and all but one failed).  SQLite's ``BEGIN IMMEDIATE`` does the same.
+    """
     from alembic import command
+    from sqlalchemy import text
+
+    from consensus.store.db import _ADVISORY_LOCK
 
     with engine.begin() as connection:
+        if connection.dialect.name == "postgresql":
+            connection.execute(text("SELECT pg_advisory_xact_lock(:key)"), {"key": _ADVISORY_LOCK})
         command.upgrade(config(connection), revision)
 
 
