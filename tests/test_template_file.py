@@ -242,7 +242,8 @@ def test_wide_xlsx_shows_references_under_each_row_and_locks_all_but_the_cells_t
     assert header == ["family", "region", "line", "2026-10", "2026-11", *WIDE_HORIZON, "note"]
     lines = [sheet.cell(row=r, column=3).value for r in range(header_row + 1, sheet.max_row + 1)]
     assert lines == ["Your forecast", "Reference: orders", "Reference: orders a year earlier",
-                     "Reference: last consensus (cycle 2026-10)", "Reference: statistical forecast (not yet computed)"] * 2
+                     "Reference: last consensus (cycle 2026-10)",
+                     "Reference: statistical forecast (not yet computed)"] * 2
     first, second = header_row + 1, header_row + 6
     assert [sheet.cell(row=first + 1, column=c).value for c in (4, 5)] == [40, 44]  # whole units
     assert sheet.cell(row=first + 2, column=6).value == 31  # a year before the first planned month

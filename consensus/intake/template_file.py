@@ -234,7 +234,7 @@ def write_wide_template(path: Path, book: WideTemplate) -> Path:
 
 
 def wide_grid(book: WideTemplate) -> pd.DataFrame:
-    """The table of a wide template, row by row: keys, ``line``, one column per month, ``note`` (and ``_line``, its key).
+    """The table of a wide template, row by row: keys, ``line``, a column per month, ``note`` (and ``_line``, its key).
 
     Each key's row to fill in comes first (months blank), then its reference
     lines; reference values are whole units (the references are a guide, and
@@ -276,7 +276,7 @@ _GREY_TEXT = "595959"
 
 def _write_wide_xlsx(path: Path, book: WideTemplate, grid: pd.DataFrame, meta: dict[str, str]) -> None:
     from openpyxl import Workbook
-    from openpyxl.styles import Alignment, Border, Font, PatternFill, Protection, Side
+    from openpyxl.styles import Alignment, Border, Font, PatternFill, Side
     from openpyxl.utils import get_column_letter
     from openpyxl.worksheet.datavalidation import DataValidation
 
@@ -290,9 +290,6 @@ def _write_wide_xlsx(path: Path, book: WideTemplate, grid: pd.DataFrame, meta: d
     letter = {c: get_column_letter(i) for c, i in position.items()}
 
     solid = lambda colour: PatternFill("solid", fgColor=colour)  # noqa: E731
-    unlocked = Protection(locked=False)
-    thin = Side(style="thin", color="BFBFBF")
-    block_end = Border(bottom=Side(style="thin", color="808080"))
 
     sheet.cell(row=1, column=1, value=book.title).font = Font(bold=True, size=14)
     for offset, note in enumerate(book.notes, start=2):
@@ -323,6 +320,14 @@ def _write_wide_xlsx(path: Path, book: WideTemplate, grid: pd.DataFrame, meta: d
         open_input = name == NOTE_COLUMN or (name in horizon and name not in frozen)
         cell.fill = solid(_FILL_HEADER_INPUT if open_input else (_FILL_FROZEN if name in frozen else _FILL_HEADER))
 
+    styles = _cell_styles(workbook)
+    month_set = set(history) | set(horizon)
+    # Each column's style on the row to fill in and on a reference line, chosen once per column.
+    input_kind = ["input_key" if c in key_columns or c == LINE_COLUMN else
+                  "input_open" if c == NOTE_COLUMN or (c in horizon and c not in frozen) else
+                  "input_frozen" if c in frozen else "input_history" for c in columns]
+    reference_kind = ["reference_number" if c in month_set else "reference_text" for c in columns]
+    is_month = [c in month_set for c in columns]
     lines = grid["_line"].to_numpy()
     input_rows = []
     last_of_block = np.r_[lines[1:] == "forecast", True]
@@ -332,28 +337,15 @@ def _write_wide_xlsx(path: Path, book: WideTemplate, grid: pd.DataFrame, meta: d
         is_input = lines[offset] == "forecast"
         if is_input:
             input_rows.append(row)
-        for name, value in zip(columns, values):
-            if name in history or name in horizon:
-                value = None if value is None or pd.isna(value) else int(value)
-            elif value is not None and pd.isna(value):
+        kinds = input_kind if is_input else reference_kind
+        end = "_end" if last_of_block[offset] else ""
+        for column, (value, kind, month) in enumerate(zip(values, kinds, is_month), start=1):
+            if value is not None and pd.isna(value):
                 value = None
-            cell = sheet.cell(row=row, column=position[name], value=value)
-            if is_input:
-                if name in key_columns or name == LINE_COLUMN:
-                    cell.font = Font(bold=True)
-                elif name == NOTE_COLUMN or (name in horizon and name not in frozen):
-                    cell.fill, cell.protection = solid(_FILL_INPUT), unlocked
-                    cell.border = Border(left=thin, right=thin, top=thin, bottom=thin)
-                elif name in frozen:
-                    cell.fill = solid(_FILL_FROZEN)
-                else:
-                    cell.fill = solid(_FILL_LOCKED)
-            else:
-                cell.font = Font(italic=True, color=_GREY_TEXT)
-                if name in history or name in horizon:
-                    cell.number_format = "#,##0"
-            if last_of_block[offset]:
-                cell.border = block_end if not (is_input and cell.protection.locked is False) else cell.border
+            elif month and value is not None:
+                value = int(value)
+            cell = sheet.cell(row=row, column=column, value=value)
+            cell.style = styles[kind + ("" if kind == "input_open" else end)]
 
     open_months = [m for m in horizon if m not in frozen]
     if open_months and input_rows:
@@ -392,8 +384,38 @@ def _write_wide_xlsx(path: Path, book: WideTemplate, grid: pd.DataFrame, meta: d
     save_workbook(workbook, path)
 
 
+def _cell_styles(workbook) -> dict[str, str]:
+    """Named styles of the wide sheet, registered once (a style per cell costs openpyxl a lookup, not a new style)."""
+    from openpyxl.styles import Border, Font, NamedStyle, PatternFill, Protection, Side
+
+    thin = Side(style="thin", color="BFBFBF")
+    boxed = Border(left=thin, right=thin, top=thin, bottom=thin)
+    block_end = Border(bottom=Side(style="thin", color="808080"))
+    grey = Font(italic=True, color=_GREY_TEXT)
+    kinds = {
+        "input_key": dict(font=Font(bold=True)),
+        "input_open": dict(fill=PatternFill("solid", fgColor=_FILL_INPUT), border=boxed,
+                           protection=Protection(locked=False)),
+        "input_frozen": dict(fill=PatternFill("solid", fgColor=_FILL_FROZEN)),
+        "input_history": dict(fill=PatternFill("solid", fgColor=_FILL_LOCKED)),
+        "reference_text": dict(font=grey),
+        "reference_number": dict(font=grey, number_format="#,##0"),
+    }
+    names = {}
+    for kind, looks in kinds.items():
+        for end in ("", "_end"):
+            name = f"consensus {kind}{end}".replace("_", " ")
+            style = NamedStyle(name=name, **looks)
+            if end and kind != "input_open":
+                style.border = block_end
+            if name not in workbook.named_styles:
+                workbook.add_named_style(style)
+            names[kind + end] = name
+    return names
+
+
 def _protect(sheet) -> None:
-    """Lock every cell not unlocked; column widths and row heights stay adjustable (no password: a guard, not security)."""
+    """Lock every cell not unlocked; widths and heights stay adjustable (no password: a guard, not security)."""
     sheet.protection.sheet = True
     sheet.protection.formatColumns = False
     sheet.protection.formatRows = False

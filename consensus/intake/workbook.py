@@ -288,7 +288,7 @@ def _describe_keys(key_text: dict[str, pd.Series], keys: list[str], index: pd.In
 def _repeated_keys(problems: list[Problem], file: str, key_text: dict[str, pd.Series], keys: list[str],
                    readable: np.ndarray, rows: np.ndarray, letters: list[str], column_of: dict,
                    row_about: pd.Series) -> np.ndarray:
-    """Rows that repeat an earlier row's key (codes compared ignoring case, as the checks match them), listed as problems.
+    """Rows that repeat an earlier row's key (codes compared ignoring case, as the checks match them), as problems.
 
     Returns the mask of those rows, which are then not read: the problem is
     the row, not each of its months.
@@ -406,7 +406,7 @@ def _sheet_row(cells: CellMap, long_row: int) -> str:
 
 def _frozen_problems(returned: ReturnedFile, file: str, frozen_months: int, default_cycle: str | None,
                      horizons: dict[str, list[str]]) -> list[Problem]:
-    """A number in a frozen month: the cycle's rules keep the first ``frozen_months`` months of the horizon as planned."""
+    """A number in a frozen month: the cycle's rules keep the horizon's first ``frozen_months`` months as planned."""
     frame, cells = returned.raw.frame, returned.cells
     if frozen_months <= 0 or not len(frame):
         return []

@@ -34,7 +34,7 @@ from consensus.vocabulary import (WEIGHT_BASES, WEIGHT_SCHEMES, describe_lag_buc
 POOLED_COLUMNS = ["lag_bucket", "n", "n_groups", "n_unrecovered", "wape", "bias_pct", "tracking_signal", "ts_flag"]
 #: Below this size (in % of orders) a bias reads as "about right on average" (common practice: rounding noise).
 NEUTRAL_BIAS_PCT = 0.5
-#: A weight within this share of equal (5% either way) reads as "about an equal share" (common practice: rounding noise).
+#: A weight within 5% of the equal share either way reads as "about an equal share" (common practice).
 NEAR_EQUAL = 0.05
 
 
