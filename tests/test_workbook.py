@@ -387,3 +387,16 @@ def test_item_by_location_rows_melt_with_their_cells(tmp_path):
         ["A100", "L1", MONTHS[2], 1.5], ["C100", "L3", MONTHS[3], 2.0]]
     assert returned.cells.value_cells.tolist() == ["C2", "D3"]
     assert np.asarray(returned.cells.sheet_rows).tolist() == [2, 3]
+
+
+def test_a_wide_file_melting_into_more_rows_than_a_long_file_may_have_is_refused(tmp_path):
+    """Each filled month cell is a long row; the long layout's row limit holds for them too."""
+    from consensus.intake.reader import ReadLimits
+
+    frame = pd.DataFrame({"family": ["FAM1", "FAM2"], "region": ["NORTH"] * 2, MONTHS[0]: ["1", "2"],
+                          MONTHS[1]: ["3", "4"]})
+    path = tmp_path / "wide.csv"
+    frame.to_csv(path, index=False)
+    with pytest.raises(InputRejected, match="at most 3 filled month cells .*this one has 4"):
+        read_returned_file(path, limits=ReadLimits(max_rows=3))
+    assert len(read_returned_file(path, limits=ReadLimits(max_rows=4)).raw.frame) == 4

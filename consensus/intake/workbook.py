@@ -122,7 +122,7 @@ def read_returned_file(path: Path | str, *, limits: ReadLimits = DEFAULT_READ_LI
     if not is_zip:
         raw = reader.read_table(path, limits=limits)
         if not only_templates and _is_wide(list(raw.frame.columns), raw.meta):
-            return _melt_table(raw)
+            return _melt_table(raw, limits)
         return ReturnedFile(raw=raw, layout=LONG)
     sheet = reader.read_xlsx_rows(path, limits=limits)
     said_wide = str(sheet.meta.get(LAYOUT_KEY, "")).strip().lower() == WIDE
@@ -134,7 +134,7 @@ def read_returned_file(path: Path | str, *, limits: ReadLimits = DEFAULT_READ_LI
                 f"a header row with an 'item' or 'family' column and month columns (YYYY-MM) in the first "
                 f"{HEADER_SEARCH_ROWS} rows of sheet {sheet.sheet!r}, as the template has it")])
         return ReturnedFile(raw=reader.table_from_rows(sheet), layout=LONG)
-    return _melt_sheet(sheet, header_at)
+    return _melt_sheet(sheet, header_at, limits)
 
 
 # ---------------------------------------------------------------------------
@@ -170,7 +170,7 @@ def _find_header(sheet: reader.SheetRows) -> int | None:
 # melting
 
 
-def _melt_sheet(sheet: reader.SheetRows, header_at: int) -> ReturnedFile:
+def _melt_sheet(sheet: reader.SheetRows, header_at: int, limits: ReadLimits) -> ReturnedFile:
     header = list(sheet.rows[header_at])
     body = sheet.rows[header_at + 1:]
     numbers = np.asarray(sheet.numbers[header_at + 1:], dtype=int)
@@ -183,21 +183,26 @@ def _melt_sheet(sheet: reader.SheetRows, header_at: int) -> ReturnedFile:
     file_format = {"kind": "xlsx", "encoding": None, "delimiter": None, "sheet": sheet.sheet}
     return _melt(sheet.file, frame.fillna(""), names, [cell_text(v, column="period") for v in header],
                  positions=list(range(1, width + 1)), rows=numbers, header_row=int(sheet.numbers[header_at]),
-                 file_format=file_format, meta=sheet.meta)
+                 file_format=file_format, meta=sheet.meta, limits=limits)
 
 
-def _melt_table(raw: RawTable) -> ReturnedFile:
+def _melt_table(raw: RawTable, limits: ReadLimits) -> ReturnedFile:
     frame = raw.frame.copy()
     names = list(frame.columns)
     frame.columns = range(len(names))
     positions = list(raw.column_positions) or list(range(1, len(names) + 1))
     return _melt(raw.file, frame, names, list(raw.columns_seen), positions=positions, rows=np.asarray(raw.rows),
-                 header_row=raw.header_row, file_format=dict(raw.file_format), meta=raw.meta)
+                 header_row=raw.header_row, file_format=dict(raw.file_format), meta=raw.meta, limits=limits)
 
 
 def _melt(file: str, frame: pd.DataFrame, names: list[str], header_texts: list[str], *, positions: list[int],
-          rows: np.ndarray, header_row: int, file_format: dict, meta: dict) -> ReturnedFile:
-    """One long row per filled month cell of the rows to read, with the cell each came from."""
+          rows: np.ndarray, header_row: int, file_format: dict, meta: dict, limits: ReadLimits) -> ReturnedFile:
+    """One long row per filled month cell of the rows to read, with the cell each came from.
+
+    The long rows are held to ``limits.max_rows``, the long layout's own
+    bound: a wide sheet within the cell limits could otherwise melt into
+    many times the rows a long file may have.
+    """
     from openpyxl.utils import get_column_letter
 
     letters = [get_column_letter(p) for p in positions]
@@ -241,6 +246,10 @@ def _melt(file: str, frame: pd.DataFrame, names: list[str], header_texts: list[s
 
     values = frame[month_at].to_numpy(dtype=object) if month_at else np.empty((len(frame), 0), dtype=object)
     filled = (values != "") & ~(is_reference | repeated)[:, None]
+    if int(filled.sum()) > limits.max_rows:
+        raise InputRejected(file=file, problems=[Problem(
+            file, None, None, None, f"at most {limits.max_rows:,} filled month cells (the rows a long file may have); "
+                                    f"this one has {int(filled.sum()):,} (split it, by region or location)")])
     at_row, at_month = np.nonzero(filled)  # row-major: the sheet's order, row by row, month by month
     months = np.asarray([names[j] for j in month_at], dtype=object)
     month_letters = np.asarray([letters[j] for j in month_at], dtype=object)
