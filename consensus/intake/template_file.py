@@ -467,30 +467,32 @@ def _write_track_record(sheet, book: WideTemplate) -> None:
         _protect(sheet)
         return
     cycles = record.cycles
-    span = f"{cycles[0]} … {cycles[-1]} ({len(cycles)} cycle{'s' if len(cycles) != 1 else ''})" if cycles else \
-        "no cycles yet"
-    line(f"How your forecasts compared with what customers actually ordered, as the consensus run of cycle "
-         f"{record.run_cycle} (run #{record.run_id}, {record.run_status}) measured them over the cycles {span}.", grey)
-    line("Errors are actual orders minus your forecast: a negative bias means your forecasts ran high.", grey)
-    row += 1
-
+    run_words = f"the consensus run of cycle {record.run_cycle} (run #{record.run_id}, {record.run_status})"
     level_words = label(LEVELS, record.level).lower()
-    line(f"By how far ahead you forecast, all your groups ({level_words}) together", bold)
-    pooled = record.pooled
-    table(["How far ahead", "Lag bucket", "Forecasts scored", "Groups", "WAPE %", "Bias %", "Tracking signal",
-           "In plain words"],
-          [(describe_lag_bucket(r.lag_bucket), str(r.lag_bucket), int(r.n), int(r.n_groups), float(r.wape),
-            float(r.bias_pct), float(r.tracking_signal), r.sentence) for r in pooled.itertuples(index=False)],
-          [None, None, "0", "0", "0.0", "0.0", "0.0", None], sentence_columns=(8,))
-
-    line(f"By group ({level_words}), as the scorecard shows them", bold)
-    groups = record.groups
-    table(["Product", "Place", "Lag bucket", "Forecasts scored", "WAPE %", "Bias %", "Tracking signal",
-           "Steady lean"],
-          [(str(r.node_item), str(r.node_location), str(r.lag_bucket), int(r.n), float(r.wape), float(r.bias_pct),
-            float(r.tracking_signal), "yes: the misses kept to one side" if bool(r.ts_flag) else "")
-           for r in groups.itertuples(index=False)],
-          [None, None, None, "0", "0.0", "0.0", "0.0", None])
+    if record.groups.empty:
+        line(f"None of your forecasts has been compared with what customers ordered in {run_words} yet.", grey)
+        row += 1
+    else:
+        span = f"{cycles[0]} … {cycles[-1]} ({len(cycles)} cycle{'s' if len(cycles) != 1 else ''})" if cycles \
+            else "of its window"
+        line(f"How your forecasts compared with what customers actually ordered, as {run_words} measured them over "
+             f"the cycles {span}.", grey)
+        line("Errors are actual orders minus your forecast: a negative bias means your forecasts ran high.", grey)
+        row += 1
+        line(f"By how far ahead you forecast, all your groups ({level_words}) together", bold)
+        table(["How far ahead", "Lag bucket", "Forecasts scored", "Groups", "WAPE %", "Bias %", "Tracking signal",
+               "In plain words"],
+              [(describe_lag_bucket(r.lag_bucket), str(r.lag_bucket), int(r.n), int(r.n_groups), float(r.wape),
+                float(r.bias_pct), float(r.tracking_signal), r.sentence)
+               for r in record.pooled.itertuples(index=False)],
+              [None, None, "0", "0", "0.0", "0.0", "0.0", None], sentence_columns=(8,))
+        line(f"By group ({level_words}), as the scorecard shows them", bold)
+        table(["Product", "Place", "Lag bucket", "Forecasts scored", "WAPE %", "Bias %", "Tracking signal",
+               "Steady lean"],
+              [(str(r.node_item), str(r.node_location), str(r.lag_bucket), int(r.n), float(r.wape),
+                float(r.bias_pct), float(r.tracking_signal), "yes: the misses kept to one side" if bool(r.ts_flag)
+                else "") for r in record.groups.itertuples(index=False)],
+              [None, None, None, "0", "0.0", "0.0", "0.0", None])
 
     line(f"The weight the consensus of cycle {record.run_cycle} gave your forecast "
          f"({scheme_label(record.scheme)})", bold)
