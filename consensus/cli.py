@@ -305,18 +305,24 @@ def template(ctx: typer.Context, cycle: str = CycleOpt,
              grain: str = typer.Option("item,location", metavar="PRODUCT,PLACE",
                                        help="item or family, and location or region."),
              region: Optional[str] = typer.Option(None, metavar="REGION", help="Only this region's keys."),
-             location: Optional[str] = typer.Option(None, metavar="LOCATION", help="Only this location's keys.")) -> None:
+             location: Optional[str] = typer.Option(None, metavar="LOCATION", help="Only this location's keys."),
+             layout: str = typer.Option("wide", metavar="wide|long",
+                                        help="wide: a row per key, a column per month, references and a track "
+                                             "record; long: a row per key and month (earlier versions)."),
+             statistical: str = typer.Option("run", metavar="run|compute",
+                                             help="Statistical reference from the cycle's run (run), or computed "
+                                                  "now when the cycle has no run yet (compute).")) -> None:
     """Write the fill-in file for a submitter, every key and month ready, references beside them.
 
     Example: consensus template --cycle 2027-03 --source sales --grain family,region --region NORTH --out north.xlsx
     """
     from consensus.workflow.templates import make_template
     try:
-        written, rows = make_template(cycle, source=source, out=out, grain=grain, region=region, location=location,
-                                      url=_url(ctx))
+        written = make_template(cycle, source=source, out=out, grain=grain, region=region, location=location,
+                                layout=layout, statistical=statistical, url=_url(ctx))
     except ConsensusError as e:
         _fail(e)
-    typer.echo(f"wrote {written} ({rows:,} rows to fill in)")
+    typer.echo(written.line())
 
 
 @app.command()

@@ -31,19 +31,31 @@ class OutputNotWritable(ConsensusError):
 
 @dataclass(frozen=True)
 class Problem:
-    """One thing wrong with one cell of an input file, as the user sees it."""
+    """One thing wrong with one cell of an input file, as the user sees it.
+
+    ``cell`` names the spreadsheet cell ("F7") when one cell of a wide
+    layout holds the problem, and ``about`` says what that cell stands for
+    ("family DRIP-KITS × region NORTH, 2027-05"); a problem with a cell reads
+    "north.xlsx, cell F7 (…)", one without reads "north.xlsx, row 7, column …".
+    """
 
     file: str
     row: int | None  # spreadsheet row number (header is row 1); None for file-level problems
     column: str | None
     value: str | None
     expected: str
+    cell: str | None = None
+    about: str | None = None
 
     def __str__(self) -> str:
         where = self.file
-        if self.row is not None:
+        if self.cell:
+            where += f", cell {self.cell}"
+        elif self.row is not None:
             where += f", row {self.row}"
-        if self.column:
+        if self.about:
+            where += f" ({self.about})"
+        if self.column and not self.cell:
             where += f", column '{self.column}'"
         got = f": got {self.value!r}" if self.value is not None else ""
         return f"{where}{got}; expected {self.expected}"

@@ -531,3 +531,31 @@ def format_number(value: float, *, digits: int = 1) -> str:
     if "." in text:
         text = text.rstrip("0").rstrip(".")
     return text.replace("-", "\u2212")
+
+
+# --------------------------------------------------------------------------- fill-in workbooks
+
+#: Every reference line of a fill-in workbook starts with this word; a returned file's reader skips those lines.
+REFERENCE_LINE_PREFIX = "Reference"
+
+#: The lines of a fill-in workbook: the one the submitter fills in, and the references printed beside it.
+TEMPLATE_LINES: tuple[Term, ...] = (
+    Term("forecast", "Your forecast", "the line to fill in: units a month, 0 or more; a blank cell is no forecast"),
+    Term("orders", "Reference: orders", "what customers ordered in each of the last 12 months"),
+    Term("orders_last_year", "Reference: orders a year earlier", "what customers ordered in the same month a year "
+         "before"),
+    Term("last_consensus", "Reference: last consensus", "the plan of the previous cycle"),
+    Term("statistical", "Reference: statistical forecast", "the tool's forecast from order history, with "
+         "marketing's events"),
+)
+
+
+def describe_lag_bucket(bucket) -> str:
+    """A lag bucket as a planner reads it: "1" → "1 month ahead", "2-3" → "2–3 months ahead", "7+" → "7 or more months ahead"."""
+    text = str(bucket).strip()
+    if text.endswith("+"):
+        return f"{text[:-1]} or more months ahead"
+    if "-" in text:
+        first, last = text.split("-", 1)
+        return f"{first}\u2013{last} months ahead"
+    return "1 month ahead" if text == "1" else f"{text} months ahead"

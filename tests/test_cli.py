@@ -129,9 +129,18 @@ def test_template_writes_every_key_and_month(cli_store, tmp_path):
     result = runner.invoke(app, ["--db", cli_store, "template", "--cycle", "2026-11", "--source", "sales",
                                  "--grain", "family,region", "--region", "NORTH", "--out", str(out)])
     assert result.exit_code == 0, result.output
+    assert "3 rows × 18 months: 54 cells to fill in" in result.output  # 3 families × 1 region
+    frame = pd.read_csv(out, encoding="utf-8-sig", dtype=str)
+    assert list(frame.columns[:3]) == ["family", "region", "line"] and frame.columns[-1] == "note"
+    to_fill = frame[frame["line"] == "Your forecast"]
+    assert len(to_fill) == 3 and to_fill.iloc[:, 3:].isna().all().all()
+    assert frame["line"].str.startswith(("Your forecast", "Reference:")).all()
+    long = runner.invoke(app, ["--db", cli_store, "template", "--cycle", "2026-11", "--source", "sales", "--grain",
+                               "family,region", "--region", "NORTH", "--layout", "long", "--out", str(out)])
+    assert long.exit_code == 0, long.output
     frame = pd.read_csv(out, encoding="utf-8-sig")
     assert list(frame.columns[:4]) == ["family", "region", "period", "quantity"]
-    assert len(frame) == 3 * 1 * 18 and frame["quantity"].isna().all()  # 3 families × 1 region × 18 months
+    assert len(frame) == 3 * 1 * 18 and frame["quantity"].isna().all()  # the long layout of earlier versions
 
 
 @pytest.mark.parametrize("fmt", ["csv", "json"])
@@ -170,6 +179,7 @@ BROKEN = [
     ["submit", "{good}/forecast.csv", "--cycle", "2026-11", "--source", "dc", "--scope", "region NOWHERE"],
     ["template", "--cycle", "2026-11", "--source", "sales", "--out", "{tmp}", "--grain", "family,region"],
     ["template", "--cycle", "2026-11", "--source", "sales", "--out", "{tmp}/t.xlsx", "--grain", "colour"],
+    ["template", "--cycle", "2026-11", "--source", "sales", "--out", "{tmp}/t.xlsx", "--layout", "tall"],
     ["status", "--cycle", "nope"],
     ["run", "--cycle", "2026-11", "--bands", "eighty"],
     ["run", "--cycle", "2026-11", "--jobs", "0"],

@@ -130,8 +130,8 @@ def test_row_and_column_are_named(master_store):
 def test_flags_must_agree_with_template_meta(master_store, tmp_path):
     from consensus.workflow.templates import make_template
 
-    path, _ = make_template("2026-11", source="sales", out=tmp_path / "t.xlsx", grain="family,region",
-                            region="NORTH", url=master_store)
+    path = make_template("2026-11", source="sales", out=tmp_path / "t.xlsx", grain="family,region",
+                         region="NORTH", url=master_store).path
     with pytest.raises(InputRejected) as caught:
         submit_file(path, url=master_store, source="dc")
     assert "agree" in str(caught.value)
@@ -157,18 +157,22 @@ def test_folder_of_templates_submits_without_flags(master_store, tmp_path):
 
     folder = tmp_path / "returns"
     folder.mkdir()
-    path, rows = make_template("2026-11", source="sales", out=folder / "north.xlsx", grain="family,region",
-                               region="NORTH", url=master_store)
-    wb = load_workbook(path)
+    written = make_template("2026-11", source="sales", out=folder / "north.xlsx", grain="family,region",
+                            region="NORTH", url=master_store)
+    wb = load_workbook(written.path)
     ws = wb["forecast"]
-    header = [c.value for c in ws[1]]
-    qcol = header.index("quantity") + 1
-    for r in range(2, ws.max_row + 1):
-        ws.cell(row=r, column=qcol, value=10)
-    wb.save(path)
-    outcome = submit_file(path, url=master_store)
+    header = next(r for r in ws.iter_rows() if any(c.value == "line" for c in r))
+    months = {c.column for c in header if c.value and str(c.value)[:2] == "20"}
+    filled = 0
+    for row in ws.iter_rows(min_row=header[0].row + 1):  # every unlocked month cell is one to fill in
+        for cell in row:
+            if cell.protection.locked is False and cell.column in months:
+                cell.value = 10
+                filled += 1
+    wb.save(written.path)
+    outcome = submit_file(written.path, url=master_store)
     assert outcome.status == "accepted" and outcome.source == "sales" and outcome.scope == "region NORTH"
-    assert outcome.rows == rows
+    assert outcome.rows == written.cells == filled == 3 * 18  # families FAM1, FAM2, FAM3 × region NORTH × 18 months
 
 
 def _submit_any(path, url):

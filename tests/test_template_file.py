@@ -196,3 +196,104 @@ def test_a_template_that_fails_to_save_leaves_the_previous_one(tmp_path, monkeyp
         write_template(path, _scope_frame(), meta=META)
     assert path.read_bytes() == before
     assert [p.name for p in tmp_path.iterdir()] == ["t.xlsx"]
+
+
+# ---- the wide layout ---------------------------------------------------------------------------------
+# Read back with openpyxl, the reference reader of the format: what is locked, what may be typed, what is checked.
+from consensus.intake.template_file import ReferenceLine, WideTemplate, wide_grid, write_wide_template  # noqa: E402
+
+WIDE_HORIZON = tuple(HORIZONS[CYCLE][:6])
+WIDE_KEYS = pd.DataFrame({"family": ["FAM1", "FAM2"], "region": ["NORTH", "NORTH"]})
+
+
+def _wide_book(**changes) -> WideTemplate:
+    orders = pd.DataFrame({"family": ["FAM1", "FAM1", "FAM2"], "region": ["NORTH"] * 3,
+                           "period": ["2026-10", "2026-11", "2026-11"], "quantity": [40.0, 44.4, 9.0]})
+    last_year = pd.DataFrame({"family": ["FAM1"], "region": ["NORTH"], "period": [WIDE_HORIZON[0]],
+                              "quantity": [31.0]})
+    consensus = pd.DataFrame({"family": ["FAM2"] * 2, "region": ["NORTH"] * 2, "period": list(WIDE_HORIZON[:2]),
+                              "quantity": [12.6, 13.4]})
+    values = dict(keys=WIDE_KEYS, history_months=("2026-10", "2026-11"), horizon_months=WIDE_HORIZON,
+                  frozen_months=WIDE_HORIZON[:1],
+                  references=(ReferenceLine("orders", "Reference: orders", orders),
+                              ReferenceLine("orders_last_year", "Reference: orders a year earlier", last_year),
+                              ReferenceLine("last_consensus", "Reference: last consensus (cycle 2026-10)", consensus),
+                              ReferenceLine("statistical", "Reference: statistical forecast (not yet computed)",
+                                            orders.iloc[0:0])),
+                  meta={"source": "sales", "cycle": CYCLE, "scope": "region NORTH",
+                        "generated_at": "2026-11-30T08:00:00+00:00"},
+                  title="Sales forecast, cycle 2026-11, region NORTH", notes=("Type in the yellow cells.",))
+    values.update(changes)
+    return WideTemplate(**values)
+
+
+def _header(sheet) -> tuple[int, list]:
+    row = next(r for r in sheet.iter_rows() if any(c.value == "line" for c in r))
+    return row[0].row, [c.value for c in row]
+
+
+def test_wide_xlsx_shows_references_under_each_row_and_locks_all_but_the_cells_to_fill(tmp_path):
+    path = write_wide_template(tmp_path / "north.xlsx", _wide_book())
+    workbook = openpyxl.load_workbook(path)
+    assert workbook.sheetnames == ["forecast", "Your track record", "_consensus"]
+    sheet = workbook["forecast"]
+    assert sheet["A1"].value == "Sales forecast, cycle 2026-11, region NORTH" and sheet["A1"].font.bold
+    header_row, header = _header(sheet)
+    assert header == ["family", "region", "line", "2026-10", "2026-11", *WIDE_HORIZON, "note"]
+    lines = [sheet.cell(row=r, column=3).value for r in range(header_row + 1, sheet.max_row + 1)]
+    assert lines == ["Your forecast", "Reference: orders", "Reference: orders a year earlier",
+                     "Reference: last consensus (cycle 2026-10)",
+                     "Reference: statistical forecast (not yet computed)"] * 2
+    first, second = header_row + 1, header_row + 6
+    assert [sheet.cell(row=first + 1, column=c).value for c in (4, 5)] == [40, 44]  # whole units
+    assert sheet.cell(row=first + 2, column=6).value == 31  # a year before the first planned month
+    assert [sheet.cell(row=second + 3, column=c).value for c in (6, 7)] == [13, 13]
+    assert all(sheet.cell(row=first + 4, column=c).value is None for c in range(4, 12))
+
+    assert sheet.protection.sheet
+    unlocked = {c.coordinate for row in sheet.iter_rows() for c in row if c.protection.locked is False}
+    letters = "GHIJK"  # the five open months; the frozen first month (F) and the history (D, E) stay locked
+    assert unlocked == {f"{x}{r}" for r in (first, second) for x in [*letters, "L"]}
+    assert all(sheet[f"{x}{first}"].fill.fgColor.rgb.endswith("FFF2CC") for x in letters)
+    rules = sheet.data_validations.dataValidation
+    assert len(rules) == 1 and rules[0].type == "decimal" and rules[0].operator == "greaterThanOrEqual"
+    assert rules[0].formula1 == "0" and rules[0].allow_blank
+    assert str(rules[0].sqref) == f"G{first}:K{first} G{second}:K{second}"
+    assert sheet.freeze_panes == f"D{first}"
+    band = {sheet.cell(row=header_row - 1, column=c).value for c in range(1, 13)}
+    assert {"Reference: orders, last 12 months", "Frozen: shown, not open to change"} <= band
+    meta = {r[0]: r[1] for r in workbook["_consensus"].iter_rows(min_row=2, values_only=True)}
+    assert meta["layout"] == "wide" and meta["frozen_months"] == "1" and meta["scope"] == "region NORTH"
+    assert workbook["_consensus"].sheet_state == "hidden"
+
+
+def test_wide_csv_is_the_same_table_without_title_or_locks(tmp_path):
+    path = write_wide_template(tmp_path / "north.csv", _wide_book())
+    frame = pd.read_csv(path, dtype=str, keep_default_na=False, encoding="utf-8-sig")
+    assert list(frame.columns) == ["family", "region", "line", "2026-10", "2026-11", *WIDE_HORIZON, "note"]
+    assert frame["line"].tolist()[:2] == ["Your forecast", "Reference: orders"]
+    assert frame.loc[frame["line"] == "Your forecast", list(WIDE_HORIZON)].eq("").all().all()
+    assert frame.loc[1, "2026-11"] == "44"
+
+
+def test_wide_grid_keeps_each_key_with_its_own_references():
+    grid = wide_grid(_wide_book())
+    assert grid["_line"].tolist()[:5] == ["forecast", "orders", "orders_last_year", "last_consensus", "statistical"]
+    assert (grid.groupby("family")["_line"].size() == 5).all()
+    assert grid.loc[(grid["family"] == "FAM2") & (grid["_line"] == "orders"), "2026-11"].tolist() == [9.0]
+
+
+def test_wide_template_writes_formula_like_text_as_text(tmp_path):
+    path = write_wide_template(tmp_path / "t.xlsx", _wide_book(title="=HYPERLINK(\"http://x.invalid\")",
+                                                               meta={"source": "sales", "cycle": CYCLE,
+                                                                     "scope": "=region NORTH"}))
+    workbook = openpyxl.load_workbook(path)
+    assert workbook["forecast"]["A1"].data_type == "s" and workbook["forecast"]["A1"].quotePrefix
+    assert workbook["Your track record"]["A1"].data_type == "s"
+
+
+def test_track_record_sheet_says_when_there_is_none(tmp_path):
+    path = write_wide_template(tmp_path / "t.xlsx", _wide_book(track_record_missing="No run yet."))
+    sheet = openpyxl.load_workbook(path)["Your track record"]
+    assert sheet["A1"].value == "Your track record: Sales, region NORTH" and sheet["A2"].value == "No run yet."
+    assert sheet.protection.sheet

@@ -121,6 +121,9 @@ class RawTable:
     header texts as written.  ``file_format`` says how the file was read:
     ``kind`` ("csv" | "xlsx"), ``encoding``, ``delimiter`` and ``sheet``.
     ``meta`` holds the key/value rows of a hidden ``_consensus`` sheet.
+    ``header_row`` is the header's row number and ``column_positions[j]``
+    the spreadsheet column (1 = A) of ``frame``'s column ``j``, so a cell can
+    be named.
     """
 
     frame: pd.DataFrame
@@ -129,6 +132,26 @@ class RawTable:
     file_format: dict
     meta: dict = field(default_factory=dict)
     file: str = ""
+    header_row: int = 1
+    column_positions: tuple[int, ...] = ()
+
+
+@dataclass(frozen=True)
+class SheetRows:
+    """The filled rows of one workbook sheet as the cells' values, before any row is taken as the header.
+
+    ``rows[i]`` holds the values of sheet row ``numbers[i]``, cut after its
+    last filled cell; fully empty rows are left out and ``rows[0]`` (the
+    first filled row, padded to the widest row) is where :func:`read_table`
+    takes the header from.  ``sheet`` is the sheet read, ``meta`` the
+    key/value rows of the hidden ``_consensus`` sheet.
+    """
+
+    file: str
+    sheet: str
+    rows: list[tuple]
+    numbers: list[int]
+    meta: dict = field(default_factory=dict)
 
 
 def read_table(path: Path, *, sheet: str | None = None, limits: ReadLimits = DEFAULT_READ_LIMITS) -> RawTable:
@@ -297,8 +320,21 @@ def _header_delimiter(text: str, name: str) -> str:
 
 
 def _read_xlsx(path: Path, name: str, *, sheet: str | None, limits: ReadLimits) -> RawTable:
+    return table_from_rows(read_xlsx_rows(path, sheet=sheet, limits=limits))
+
+
+def read_xlsx_rows(path: Path, *, sheet: str | None = None, limits: ReadLimits = DEFAULT_READ_LIMITS) -> SheetRows:
+    """Read the filled rows of a workbook's sheet (the first visible one unless named) with every check of :func:`read_table`.
+
+    The archive is checked against ``limits`` before anything is inflated and
+    rows are counted as they stream in; a damaged workbook, a missing or
+    empty sheet, or a sheet with a header only is refused as by
+    :func:`read_table`.
+    """
     import openpyxl  # imported here so CSV-only use does not pay for it
 
+    path = Path(path)
+    name = path.name
     _check_archive(path, name, limits)
     try:
         workbook = openpyxl.load_workbook(path, read_only=True, data_only=True)
@@ -310,21 +346,31 @@ def _read_xlsx(path: Path, name: str, *, sheet: str | None, limits: ReadLimits) 
         others = [ws.title for ws in workbook.worksheets if ws.title not in (worksheet.title, META_SHEET)]
         header_cells, header_row, data_rows, data_numbers = _sheet_cells(worksheet, name, others=others, limits=limits)
         meta = _read_meta(workbook, name)
+        title = worksheet.title
     except (InputRejected, MemoryError):
         raise
     except Exception as exc:  # XML, zip, KeyError for a missing part, ValueError for a bad cell reference …
         _refuse_damaged(name, exc)
     finally:
         workbook.close()
+    return SheetRows(file=name, sheet=title, rows=[header_cells, *data_rows], numbers=[header_row, *data_numbers],
+                     meta=meta)
+
+
+def table_from_rows(sheet_rows: SheetRows) -> RawTable:
+    """A :class:`RawTable` of a sheet's rows, the first filled row taken as the header (what :func:`read_table` does)."""
+    header_cells, header_row = sheet_rows.rows[0], sheet_rows.numbers[0]
     header_texts = [cell_text(v, column="") for v in header_cells]
     columns = [normalise_column(h) for h in header_texts]
     width = len(header_texts)
     cells = pd.DataFrame(
-        [[cell_text(v, column=c) for v, c in zip(row + (None,) * (width - len(row)), columns)] for row in data_rows],
+        [[cell_text(v, column=c) for v, c in zip(row + (None,) * (width - len(row)), columns)]
+         for row in sheet_rows.rows[1:]],
         dtype="str",
     )
-    file_format = {"kind": "xlsx", "encoding": None, "delimiter": None, "sheet": worksheet.title}
-    return _assemble(name, header_texts, header_row, cells, np.asarray(data_numbers, dtype=int), file_format, meta=meta)
+    file_format = {"kind": "xlsx", "encoding": None, "delimiter": None, "sheet": sheet_rows.sheet}
+    return _assemble(sheet_rows.file, header_texts, header_row, cells, np.asarray(sheet_rows.numbers[1:], dtype=int),
+                     file_format, meta=sheet_rows.meta)
 
 
 def _check_archive(path: Path, name: str, limits: ReadLimits) -> None:
@@ -520,6 +566,8 @@ def _assemble(name, header, header_row: int, cells: pd.DataFrame, row_numbers, f
         file_format=file_format,
         meta=meta,
         file=name,
+        header_row=int(header_row),
+        column_positions=tuple(p + 1 for p in keep),
     )
 
 

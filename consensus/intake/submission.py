@@ -27,7 +27,7 @@ from sqlmodel import Session
 
 from consensus import periods
 from consensus.errors import ConsensusError, CycleStateError, InputRejected, Problem
-from consensus.intake import checks, reader
+from consensus.intake import checks, reader, workbook
 from consensus.intake.scope import derive_scope, describe_scope, parse_scope, rows_outside, scope_locations
 from consensus.store import blobs, frames, journal
 from consensus.store.db import session_scope
@@ -234,7 +234,8 @@ def submit_file(path: Path | str, *, url=None, source: str | None = None, cycle:
     path = Path(path)
     with _kept_if_rejected(path, url=url, kind="forecast", submitted_by=submitted_by, source=source,
                            cycle=cycle) as intake:
-        raw = reader.read_table(path)
+        returned = workbook.read_returned_file(path)  # the wide layout melted to long rows, or a long file as read
+        raw = returned.raw
         intake.file_format = dict(raw.file_format)
         # submit expects a forecast or events file, so its own checks name a missing column precisely;
         # only files that look like order lines or master data are sent to the general kind detection
@@ -266,9 +267,11 @@ def submit_file(path: Path | str, *, url=None, source: str | None = None, cycle:
                 if existing is not None and existing.status == "published":
                     raise CycleStateError(frozen_message(existing))
             horizons = _horizons(session, bulk)
+            from consensus.workflow.settings import frozen_months
+            frozen = frozen_months(session)
         check = checks.check_event_rows if intake.kind == "events" else checks.check_forecast_rows
-        result = check(raw, filename=path.name, items=items, locations=locations, horizons=horizons,
-                       default_cycle=cycle)
+        result = workbook.check_returned(returned, check, frozen_months=frozen, filename=path.name, items=items,
+                                         locations=locations, horizons=horizons, default_cycle=cycle)
         result.raise_if_problems(path.name)
         clean = result.clean.copy()
         clean["cycle"] = clean["cycle"].fillna(cycle) if "cycle" in clean else cycle
@@ -276,10 +279,11 @@ def submit_file(path: Path | str, *, url=None, source: str | None = None, cycle:
         if detail["declared"] and intake.kind == "forecast":
             outside = rows_outside(clean, detail, locations=locations, rows=clean["row"].to_numpy(), filename=path.name)
             if outside:
-                raise InputRejected(file=path.name, problems=outside)
+                raise InputRejected(file=path.name, problems=workbook.name_problem_cells(outside, returned))
         if intake.kind == "events" and not scope:
             detail = {"declared": False, "place": "events", "places": sorted(clean["event"].astype(str).unique())}
         detail["families"] = _families_of(clean, items)
+        clean = workbook.with_sheet_rows(clean, returned)
         return _store_forecast(url, path=path, content=intake.content, kind=intake.kind, source=source, detail=detail,
                                clean=clean, submitted_by=submitted_by, file_format=intake.file_format,
                                horizons=horizons, locations=locations)
@@ -470,7 +474,8 @@ def load_actuals_file(path: Path | str, *, url=None, submitted_by: str = "") -> 
     """Load customer-order history into monthly buckets; a later file's month replaces the same month's bucket."""
     path = Path(path)
     with _kept_if_rejected(path, url=url, kind="actuals", submitted_by=submitted_by) as intake:
-        raw = reader.read_table(path)
+        # A fill-in workbook given here is read in its layout, so its hidden sheet refuses it as a template.
+        raw = workbook.read_returned_file(path, only_templates=True).raw
         intake.file_format = dict(raw.file_format)
         with session_scope(url, write=False) as session:
             items, locations = frames.load_items(session), frames.load_locations(session)

@@ -22,6 +22,7 @@ class SettingKind:
     default: str
     meaning: str
     number: bool = False
+    whole: bool = False  # a whole number of 0 or more (a count, e.g. of months)
 
 
 SETTINGS: tuple[SettingKind, ...] = (
@@ -31,6 +32,7 @@ SETTINGS: tuple[SettingKind, ...] = (
     SettingKind("limit.max_value", "1e12", "largest money value a forecast file may hold", number=True),
     SettingKind("limit.max_unit_price", "1e7", "largest unit price an items file may hold", number=True),
     SettingKind("limit.earliest_month", "2000-01", "earliest month an order history file may hold"),
+    SettingKind("cycle.frozen_months", "0", "first months of each horizon locked in fill-in workbooks", whole=True),
 )
 _BY_KEY = {s.key: s for s in SETTINGS}
 
@@ -46,9 +48,19 @@ def get_setting(session, key: str) -> str:
     return row.value if row is not None else _kind(key).default
 
 
+def frozen_months(session) -> int:
+    """How many months at the start of each cycle's horizon are frozen (setting ``cycle.frozen_months``, default 0)."""
+    return int(get_setting(session, "cycle.frozen_months"))
+
+
 def set_setting(key: str, value: str, *, url=None) -> str:
     kind = _kind(key)
-    if kind.number:
+    if kind.whole:
+        text = str(value).strip()
+        if not (text.isascii() and text.isdigit()) or int(text) > 60:
+            raise ConsensusError(f"{key} takes a whole number from 0 to 60, not {value!r}")
+        value = str(int(text))
+    elif kind.number:
         try:
             number = float(value)
         except ValueError:
