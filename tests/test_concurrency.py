@@ -19,6 +19,9 @@ import pytest
 from small_company import (CRASH, CYCLE, DC_FILES, Said, cli, dc_values, exported, file_values, load_company, ok,
                            plan_numbers, start_child, status_rows, write_variant)
 
+#: The slow tier: it starts many processes and waits for the store's busy timeout (the fast tier is pytest -m 'not slow').
+pytestmark = pytest.mark.slow
+
 SUBMITTERS = 8
 #: Seconds a child may take to start and import before the barrier gives up (the machine is shared).
 START_TIMEOUT_S = 120

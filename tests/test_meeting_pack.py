@@ -14,6 +14,9 @@ from consensus import periods
 from consensus.store import frames
 from consensus.store.db import session_scope
 
+#: The slow tier: it reads the demo store the README's command builds (the fast tier is pytest -m 'not slow').
+pytestmark = pytest.mark.slow
+
 CYCLE = "2026-11"
 
 

@@ -192,13 +192,9 @@ def test_months_without_orders_are_refused_or_planned_as_unknown_never_as_zero(t
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(strict=True, reason="order history is known missing per month, not per location: a month some "
-                                       "DCs' orders reached counts as known for all (workflow.cycles."
-                                       "missing_history_months), and unknown months apply to every series "
-                                       "(methods.plan.statistical_for_cycle)")
 def test_a_location_whose_orders_for_the_cycle_month_are_not_in_is_not_planned_as_zero(tmp_path):
-    """Still wrong: DC-E1's orders for 2026-10 are in, DC-E2's and DC-W1's are not.  The cycle opens without a
-    word and plans their 2026-10 as zero demand (their statistical totals fall by about 29% and 13%).
+    """DC-E1's orders for 2026-10 are in, DC-E2's and DC-W1's are not.  The first wave opened the cycle without a
+    word and planned their 2026-10 as zero demand (their statistical totals fell by about 29% and 13%).
     Either answer would do: refuse, naming the locations, or plan their month as unknown."""
     from consensus.store.db import get_engine
 
@@ -211,9 +207,8 @@ def test_a_location_whose_orders_for_the_cycle_month_are_not_in_is_not_planned_a
         ok(partial, "master", DATA / f"{kind}.csv", "--kind", kind)
     ok(partial, "actuals", tmp_path / "part.csv")
     opened = cli(partial, "cycle", "open", CYCLE, "--horizon", 12)
-    if opened.code != 0:
-        assert "DC-E2" in opened.err and "DC-W1" in opened.err, opened
-        return
+    assert opened.code == 1 and "DC-E2" in opened.err and "DC-W1" in opened.err, opened  # refused, named
+    ok(partial, "cycle", "open", CYCLE, "--horizon", 12, "--allow-missing-history")  # knowingly: as unknown
     totals = {}
     for name, url in (("complete", complete), ("partial", partial)):
         ok(url, "run", "--cycle", CYCLE, "--jobs", "1")

@@ -28,6 +28,9 @@ from consensus.pack.textgrid import GridColumn, lay_out_text_grid
 from consensus.periods import horizon_months
 from consensus.resources import reports_dir
 
+#: The slow tier: it lays out PDF packs with WeasyPrint (the fast tier is pytest -m 'not slow').
+pytestmark = pytest.mark.slow
+
 pypdf = pytest.importorskip("pypdf")
 
 HOSTILE = '<b>x</b><img src="http://example.invalid/a.png">'

@@ -24,6 +24,9 @@ from consensus.pack.paginate import lay_out
 
 from test_vocabulary import _columns, read_page
 
+#: The slow tier: it lays out PDF packs with WeasyPrint (the fast tier is pytest -m 'not slow').
+pytestmark = pytest.mark.slow
+
 pypdf = pytest.importorskip("pypdf")
 
 

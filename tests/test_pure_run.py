@@ -141,6 +141,7 @@ def test_views_leave_the_store_as_it_was(demo_dir, tmp_path):
     assert _store_state(url) == before
 
 
+@pytest.mark.slow
 def test_any_number_of_processes_gives_the_same_digits_on_the_sample_company(demo_url, monkeypatch):
     monkeypatch.setattr(plan, "PARALLEL_MIN_SERIES", 0)  # spread the sample company's few series too
     with session_scope(demo_url, write=False) as s:

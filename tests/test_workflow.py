@@ -22,6 +22,9 @@ from consensus.workflow.explain import explain_cell
 from consensus.workflow.inputs import run_parts
 from consensus.workflow.publish import latest_run, run_lines
 
+#: The slow tier: it reads the demo store the README's command builds (the fast tier is pytest -m 'not slow').
+pytestmark = pytest.mark.slow
+
 CYCLE = "2026-11"
 
 

@@ -73,7 +73,8 @@ class SeriesBook:
 
 
 def build_series_book(actuals: pd.DataFrame, *, items: pd.DataFrame, locations: pd.DataFrame, cycle: str,
-                      unknown_months=(), patterns: pd.DataFrame | None = None, season: int = 12) -> SeriesBook:
+                      unknown_months=(), patterns: pd.DataFrame | None = None, season: int = 12,
+                      unknown_at=()) -> SeriesBook:
     """The dense order matrix of every series known at ``cycle`` (months after it are left out)."""
     known = actuals[actuals["period"].astype(str) <= cycle]
     keys = known[["item", "location"]].drop_duplicates().sort_values(["item", "location"], kind="mergesort")
@@ -98,6 +99,10 @@ def build_series_book(actuals: pd.DataFrame, *, items: pd.DataFrame, locations: 
         j = periods.month_index(month) - first
         if 0 <= j < n_months:
             actual[:, j] = np.nan
+    for location, month in unknown_at:  # a location whose orders for the month were not in yet
+        j = periods.month_index(month) - first
+        if 0 <= j < n_months:
+            actual[(keys["location"] == location).to_numpy(), j] = np.nan
     family = keys["item"].map(items.drop_duplicates("item").set_index("item")["family"]).fillna("(unknown family)")
     region = keys["location"].map(locations.drop_duplicates("location").set_index("location")["region"])
     keys = keys.assign(family=family.astype(object), region=region.fillna("(unknown region)").astype(object))

@@ -145,6 +145,7 @@ class PlanInputs:
     decisions: pd.DataFrame  # the current cycle's decisions in force
     lines: Callable[[list[str]], dict[str, pd.DataFrame]]  # checked lines of submissions, by their sha256
     unknown_months: tuple[str, ...] = ()  # months planned as unknown (a cycle opened before its orders were in)
+    unknown_at: tuple[tuple[str, str], ...] = ()  # (location, month) whose orders were not in yet
 
     def master_digest(self) -> str:
         return digest_of(self.items, self.locations)
@@ -158,7 +159,8 @@ class PlanInputs:
             return [c.name, c.horizon, subs, scopes, published]
         decisions = self.decisions.drop(columns=[c for c in ("at",) if c in self.decisions.columns])
         return digest_of(METHOD_VERSION, spec.to_dict(), cycle_part(self.cycle), [cycle_part(c) for c in self.past],
-                         self.items, self.locations, self.bom, self.actuals, decisions, list(self.unknown_months))
+                         self.items, self.locations, self.bom, self.actuals, decisions, list(self.unknown_months),
+                         [list(p) for p in self.unknown_at])
 
 
 class Cache(Protocol):
@@ -198,6 +200,7 @@ class _History:
     month_digests: dict[str, str]
     months: np.ndarray  # month index of each row
     groups: np.ndarray  # statistical group of each row (see _statistical_group)
+    unknown_at: tuple[tuple[str, str], ...] = ()  # (location, month) not in yet
 
     def known_at(self, cycle: str) -> pd.DataFrame:
         return self.actuals[self.actuals["period"] <= cycle]
@@ -205,10 +208,12 @@ class _History:
     def digest_at(self, cycle: str) -> str:
         """Digest of the orders known at ``cycle`` (and of which months are unknown), cheap per cycle."""
         months = [(m, d) for m, d in self.month_digests.items() if m <= cycle]
-        return digest_of(months, [m for m in self.unknown if m <= cycle])
+        return digest_of(months, [m for m in self.unknown if m <= cycle],
+                         [list(p) for p in self.unknown_at if p[1] <= cycle])
 
 
-def _history(actuals: pd.DataFrame, unknown: tuple[str, ...], items: pd.DataFrame | None = None) -> _History:
+def _history(actuals: pd.DataFrame, unknown: tuple[str, ...], items: pd.DataFrame | None = None,
+             unknown_at: tuple[tuple[str, str], ...] = ()) -> _History:
     frame = actuals[["item", "location", "period", "quantity"]].astype(
         {"item": object, "location": object, "period": object}).reset_index(drop=True)
     frame["quantity"] = frame["quantity"].astype(float)
@@ -220,7 +225,7 @@ def _history(actuals: pd.DataFrame, unknown: tuple[str, ...], items: pd.DataFram
     families = (frame["item"].map(items.drop_duplicates("item").set_index("item")["family"]).fillna("")
                 if items is not None and len(frame) else pd.Series("", index=frame.index))
     return _History(actuals=frame, unknown=tuple(sorted(unknown)), month_digests=digests, months=months,
-                    groups=_statistical_group(families))
+                    groups=_statistical_group(families), unknown_at=tuple(sorted(tuple(p) for p in unknown_at)))
 
 
 # --------------------------------------------------------------------------- statistical source
@@ -237,10 +242,16 @@ def _group_history(history: _History, *, cycle: str, group: int) -> pd.DataFrame
     """One statistical group's orders known at ``cycle``, with unknown months as missing observations (NaN)."""
     known = history.actuals[(history.months <= periods.month_index(cycle)) & (history.groups == group)]
     unknown_here = [m for m in history.unknown if m <= cycle]
+    holes = []
     if unknown_here and len(known):
         pairs = known[["item", "location"]].drop_duplicates()
-        holes = pairs.merge(pd.DataFrame({"period": unknown_here}), how="cross").assign(quantity=np.nan)
-        known = pd.concat([known, holes[known.columns]], ignore_index=True)
+        holes.append(pairs.merge(pd.DataFrame({"period": unknown_here}), how="cross"))
+    at_here = [(loc, m) for loc, m in history.unknown_at if m <= cycle]
+    if at_here and len(known):
+        pairs = known[["item", "location"]].drop_duplicates()
+        holes.append(pairs.merge(pd.DataFrame(at_here, columns=["location", "period"]), on="location"))
+    if holes:
+        known = pd.concat([known, *[h.assign(quantity=np.nan)[known.columns] for h in holes]], ignore_index=True)
     return known
 
 
@@ -550,6 +561,7 @@ def _history_summary(ctx: _Context, patterns: pd.DataFrame, key: str,
         return hist.HistorySummary.from_frames(unpack_frames(found))
     book = hist.build_series_book(ctx.history.actuals[ctx.history.actuals["quantity"].notna()], items=inputs.items,
                                   locations=inputs.locations, cycle=cycle, unknown_months=ctx.history.unknown,
+                                  unknown_at=ctx.history.unknown_at,
                                   patterns=patterns)
     ledger = hist.HistoryLedger(book=book, cycle=cycle, segment=spec.weights.segment,
                                 sources=tuple(scored_sources()), keep_cells=keep_cells,
@@ -587,7 +599,8 @@ def compute_plan(inputs: PlanInputs, spec: RunSpec | None = None, *, cache: Cach
         raise InvalidSpec(f"jobs must be a whole number ≥ 1, got {jobs!r}")
     global _WORKER
     series_count = inputs.actuals[["item", "location"]].drop_duplicates().shape[0] if len(inputs.actuals) else 0
-    ctx = _Context(inputs=inputs, spec=spec, history=_history(inputs.actuals, inputs.unknown_months, inputs.items),
+    ctx = _Context(inputs=inputs, spec=spec,
+                   history=_history(inputs.actuals, inputs.unknown_months, inputs.items, inputs.unknown_at),
                    cache=cache or NoCache(), pool=None, progress=progress or (lambda _m: None))
     _WORKER = ctx  # set before the pool starts: forked workers read it
     if jobs > 1 and series_count >= PARALLEL_MIN_SERIES:
@@ -651,7 +664,8 @@ def _compute(ctx: _Context) -> PlanResult:
     parts["amplification"] = _amplification(summary, current, cycle, ctx.history, inputs.locations)
     notes = {"warnings": list(dict.fromkeys(ctx.warnings)), "decisions_applied": applied,
              "reconciliation": reconciled.notes, "statistical_made": ctx.made, "band_source": summary.band_source,
-             "unknown_months": list(inputs.unknown_months), "method_version": METHOD_VERSION,
+             "unknown_months": list(inputs.unknown_months), "unknown_at": [list(p) for p in inputs.unknown_at],
+             "method_version": METHOD_VERSION,
              "bias_correction": _bias_notes(bias, spec.weights.segment)}
     summary_line = {"cells": int(len(cells)), "total": float(cells["consensus"].sum()), "sources": present,
                     "flagged": int(cells["flagged"].sum())}
@@ -780,7 +794,8 @@ def trace_cell(inputs: PlanInputs, spec: RunSpec, *, item: str, location: str, p
     items, locations = inputs.items, inputs.locations
     family = items.loc[items["item"] == item, "family"]
     region = locations.loc[locations["location"] == location, "region"]
-    ctx = _Context(inputs=inputs, spec=spec, history=_history(inputs.actuals, inputs.unknown_months, items),
+    ctx = _Context(inputs=inputs, spec=spec,
+                   history=_history(inputs.actuals, inputs.unknown_months, items, inputs.unknown_at),
                    cache=NoCache(), pool=None, progress=lambda _m: None)
     lines = _cycle_lines(ctx, c, "forecast")
     columns = cs.TRACE_COLUMNS + ["in_force"]
@@ -806,7 +821,7 @@ def current_sources(inputs: PlanInputs, spec: RunSpec | None = None) -> pd.DataF
     """Every source of the current cycle at planning grain, as the run would combine them (nothing cached)."""
     spec = spec or RunSpec()
     ctx = _Context(inputs=inputs, spec=spec, history=_history(inputs.actuals, inputs.unknown_months,
-                                                              inputs.items),
+                                                              inputs.items, inputs.unknown_at),
                    cache=NoCache(), pool=None, progress=lambda _m: None)
     frame, _ = cycle_frame(ctx, inputs.cycle)
     return frame

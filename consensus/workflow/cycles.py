@@ -44,6 +44,33 @@ def missing_history_months(actuals: pd.DataFrame, cycle: str) -> list[str]:
     return [m for m in periods.month_range(min(known), cycle) if m not in known]
 
 
+def missing_location_months(actuals: pd.DataFrame, cycle: str) -> list[tuple[str, str]]:
+    """(location, month) pairs up to ``cycle`` where a location's orders have not come in yet.
+
+    A location whose last month with orders is before a month other locations
+    have orders for is missing that month (and every later one up to the
+    cycle): its orders for the month are not in yet, which is not zero demand.
+    Months no location has orders for are :func:`missing_history_months`'.
+    """
+    if actuals.empty:
+        return []
+    known = actuals[actuals["period"].astype(str) <= cycle]
+    months_with_orders = set(known["period"].astype(str))
+    last = known.groupby("location")["period"].max()
+    out = []
+    for location, month in last.items():  # one entry per location: a handful
+        after = [m for m in periods.month_range(str(month), cycle)[1:] if m in months_with_orders]
+        out += [(str(location), m) for m in after]
+    return sorted(out)
+
+
+def describe_missing_locations(pairs: list[tuple[str, str]]) -> str:
+    by_location: dict[str, list[str]] = {}
+    for location, month in pairs:
+        by_location.setdefault(location, []).append(month)
+    return "; ".join(f"{location} for {describe_missing(months)}" for location, months in sorted(by_location.items()))
+
+
 def describe_missing(months: list[str]) -> str:
     if not months:
         return ""
@@ -52,7 +79,12 @@ def describe_missing(months: list[str]) -> str:
     return ", ".join(months)
 
 
-def missing_history_error(name: str, months: list[str], *, empty: bool) -> CycleStateError:
+def missing_history_error(name: str, months: list[str], *, empty: bool,
+                          locations: list[tuple[str, str]] = ()) -> CycleStateError:
+    if locations and not months and not empty:
+        return CycleStateError(f"cycle {name}: the orders of {describe_missing_locations(list(locations))} are not in "
+                               "yet; load them with 'consensus actuals FILE', or open the cycle with "
+                               "--allow-missing-history to plan them as unknown (not as zero demand)")
     if empty:
         return CycleStateError(f"cycle {name}: no order history is loaded yet; load it with 'consensus actuals FILE' "
                                "first, or open the cycle with --allow-missing-history to plan without it")
@@ -86,8 +118,9 @@ def open_cycle(name: str, *, horizon: int = 18, due: date | str | None = None, a
             return cycle
         actuals = frames.load_actuals(session)
         missing = missing_history_months(actuals, name)
-        if missing and not allow_missing_history:
-            raise missing_history_error(name, missing, empty=actuals.empty)
+        partial = missing_location_months(actuals, name)
+        if (missing or partial) and not allow_missing_history:
+            raise missing_history_error(name, missing, empty=actuals.empty, locations=partial)
         cycle = Cycle(name=name, horizon=horizon, due=due_date, opened_at=utcnow(), opened_by=by,
                       allow_missing_history=bool(allow_missing_history))
         session.add(cycle)

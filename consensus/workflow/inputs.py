@@ -22,7 +22,8 @@ from consensus.methods.plan import CycleInputs, PlanInputs, RunSpec
 from consensus.store import blobs, frames, journal
 from consensus.store.db import session_scope
 from consensus.store.models import ConsensusRun, Cycle, CycleRevision, Decision
-from consensus.workflow.cycles import get_cycle, missing_history_error, missing_history_months
+from consensus.workflow.cycles import (get_cycle, missing_history_error, missing_history_months,
+                                      missing_location_months)
 
 PUBLISHED_CELL_COLUMNS = ["item", "location", "period", "consensus", "lower_80", "upper_80", "lower_95", "upper_95"]
 
@@ -94,8 +95,9 @@ def load_plan_inputs(cycle_name: str, *, url=None, spec: RunSpec, through: int |
         bom = frames.load_bom(session, through=seq)
         actuals = frames.load_actuals(session, through=seq)
         missing = missing_history_months(actuals, cycle.name)
-        if missing and not cycle.allow_missing_history:
-            raise missing_history_error(cycle.name, missing, empty=actuals.empty)
+        partial = missing_location_months(actuals, cycle.name)
+        if (missing or partial) and not cycle.allow_missing_history:
+            raise missing_history_error(cycle.name, missing, empty=actuals.empty, locations=partial)
         actuals, notes = planned_history(actuals, items, locations, cycle.name)
         window = [periods.shift_month(cycle.name, -k) for k in range(spec.weights.window_cycles, 0, -1)]
         c = Cycle.__table__
@@ -117,7 +119,8 @@ def load_plan_inputs(cycle_name: str, *, url=None, spec: RunSpec, through: int |
         decisions = decisions_in_force(session, cycle.name, seq)
         revision = int(cycle.revision)
     inputs = PlanInputs(cycle=current, past=tuple(past), items=items, locations=locations, bom=bom,
-                        actuals=actuals, decisions=decisions, lines=line_loader(url), unknown_months=tuple(missing))
+                        actuals=actuals, decisions=decisions, lines=line_loader(url), unknown_months=tuple(missing),
+                        unknown_at=tuple(partial))
     return LoadedInputs(inputs=inputs, through_seq=seq, revision=revision,
                         submission_ids=sorted(int(i) for i in subs["id"]), notes=notes)
 
