@@ -87,24 +87,36 @@ def classify_demand(y: np.ndarray, start: np.ndarray) -> np.ndarray:
 
 
 def mann_kendall_z(y: np.ndarray, start: np.ndarray) -> np.ndarray:
-    """Mann–Kendall Z of each span with the tie-corrected variance (NaN for spans under 3 months)."""
+    """Mann–Kendall Z of each span with the tie-corrected variance (NaN for spans under 3 months).
+
+    ``S`` counts the pairs i < j of known months in the span with
+    ``y_j > y_i`` less those with ``y_j < y_i`` (the pairs of the upper
+    triangle only); the tie groups come from each span's sorted values (a
+    run of equal values of length t is a group of size t).
+    """
     y = np.asarray(y, dtype=float)
     start = np.asarray(start, dtype=int)
     n_series, n_months = y.shape
     out = np.full(n_series, np.nan)
-    block = max(16, int(4_000_000 // max(n_months, 1) ** 2))  # bounds the (block, T, T) pair arrays
-    later = np.triu(np.ones((n_months, n_months), dtype=bool), k=1)  # pairs i < j
+    earlier, later = np.triu_indices(n_months, k=1)  # pairs i < j
+    block = max(16, int(2_000_000 // max(len(earlier), 1)))  # bounds the (block, pairs) arrays
+    positions = np.arange(n_months)
     for lo in range(0, n_series, block):
         hi = min(lo + block, n_series)
-        yy = y[lo:hi]
-        span = _known_span(yy, start[lo:hi])
-        both = span[:, :, None] & span[:, None, :]
-        diff = yy[:, None, :] - yy[:, :, None]  # [k, i, j] = y_j − y_i
-        s = np.where(both & later, np.sign(diff), 0.0).sum(axis=(1, 2))
+        span = _known_span(y[lo:hi], start[lo:hi])
+        yy = np.where(span, y[lo:hi], np.nan)  # a comparison with NaN is false: such pairs count nowhere
+        diff = yy[:, later] - yy[:, earlier]
+        s = (np.count_nonzero(diff > 0, axis=1) - np.count_nonzero(diff < 0, axis=1)).astype(float)
         n = span.sum(axis=1).astype(float)
-        # each member of a tie group of size t counts t members equal to it
-        tie_size = np.where(both & (diff == 0), 1, 0).sum(axis=2)
-        ties = np.where(span, (tie_size - 1) * (2 * tie_size + 5), 0).sum(axis=1)
+        # tie groups: runs of equal values in each sorted span (NaN sort last)
+        ordered = np.sort(yy, axis=1)
+        new_run = np.ones(ordered.shape, dtype=bool)
+        new_run[:, 1:] = ordered[:, 1:] != ordered[:, :-1]
+        run_start = np.maximum.accumulate(np.where(new_run, positions, 0), axis=1)
+        run_end = np.minimum.accumulate(np.where(np.roll(new_run, -1, axis=1) | (positions == n_months - 1),
+                                                 positions, n_months)[:, ::-1], axis=1)[:, ::-1]
+        tie_size = run_end - run_start + 1  # the size of the group each value belongs to
+        ties = np.where(np.isfinite(ordered), (tie_size - 1) * (2 * tie_size + 5), 0).sum(axis=1)
         var = (n * (n - 1) * (2 * n + 5) - ties) / 18.0
         with np.errstate(all="ignore"):
             out[lo:hi] = np.where((n >= 3) & (var > 0), s / np.sqrt(var), np.nan)
