@@ -732,7 +732,7 @@ def refine_smoothing(
     layout = _parameter_layout(method, season_length)
     theta = _project(_pack(method, params, states, layout, n_series), layout, method)
     width = theta.shape[1]
-    eye = np.eye(width)
+    diagonal = np.arange(width)
     damping = np.array(REFINE_DAMPING)
     scale = np.ones(n_series)  # per-series multiplier of the damping, adapted as steps fail or succeed
     sse, jtj, jte = _jacobian_pass(y, start, fit_end, theta, method=method, layout=layout,
@@ -743,16 +743,18 @@ def refine_smoothing(
         # a column without gradient (a state no scored month depends on) still gets a pivot
         ridge = 1e-10 * np.maximum(diag.max(axis=1, initial=0.0), 1e-12)
         lam = scale[:, None] * damping[None, :]  # (n, K)
-        system = (np.where(usable[:, None, None], jtj, eye)[:, None, :, :]
-                  + (lam[:, :, None, None] * (diag + ridge[:, None])[:, None, None, :]) * eye)
         # a parameter on a bound whose descent direction points outwards is
         # held there for this step (an active-set projection), so clipping
-        # does not bend the step of the others
+        # does not bend the step of the others: its row and column are the
+        # identity's, its right-hand side 0
         held = _held_at_bounds(theta, jte, layout)
         keep = ~held
-        rhs = np.where(usable[:, None] & keep, jte, 0.0)
-        system = np.where((keep[:, :, None] & keep[:, None, :])[:, None, :, :], system, 0.0) + (
-            held[:, None, :, None] * eye)
+        free = usable[:, None] & keep
+        rhs = np.where(free, jte, 0.0)
+        normal = np.where(free[:, :, None] & free[:, None, :], jtj, 0.0)
+        normal[:, diagonal, diagonal] += ~free  # held (or a series without a usable Jacobian): identity
+        system = np.repeat(normal[:, None], len(damping), axis=1)  # (n, K, P, P)
+        system[:, :, diagonal, diagonal] += lam[:, :, None] * (keep * (diag + ridge[:, None]))[:, None, :]
         step = np.linalg.solve(system, np.broadcast_to(rhs[:, None, :, None], system.shape[:3] + (1,)))[..., 0]
         candidates = _project(theta[:, None, :] + step, layout, method)  # (n, K, P)
         trial = _sse_of(y, start, fit_end, candidates, method=method, layout=layout, season_length=season_length)
