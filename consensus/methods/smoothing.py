@@ -595,6 +595,62 @@ def _jacobian_pass(y, start, fit_end, theta, *, method, layout, season_length):
     stop = min(int(fit_end.max()), n_months) if n_series else 0  # later months are never scored
     with np.errstate(all="ignore"):
         for t in range(max(first, 0), stop):
+            if t >= last_start and known_months[t] and t < end_min:
+                # every series active, known and scored: the same steps, in place
+                if seasonal:
+                    s_old = seasons[t % m]
+                    d_s = d_seasons[t % m]
+                d_pred = grads[t]
+                if has_trend:
+                    phb = ph * slope if damped else slope.copy()
+                    if damped:
+                        d_slope *= ph  # now d(φb)
+                        d_slope[ip] += slope
+                    d_level += d_slope  # now d base
+                    base = level + phb
+                else:
+                    base = level.copy()
+                if seasonal == "add":
+                    pred = base + s_old
+                    np.add(d_level, d_s, out=d_pred)
+                elif seasonal == "mul":
+                    pred = base * s_old
+                    np.multiply(base, d_s, out=d_pred)
+                    d_pred += d_level * s_old
+                else:
+                    pred = base
+                    d_pred[...] = d_level
+                err = errs[t]
+                np.subtract(y[:, t], pred, out=err)
+                sse += err * err
+                if seasonal == "mul":
+                    q = err / s_old
+                    d_q = q * d_s
+                    d_q += d_pred
+                    d_q *= -1.0 / s_old
+                    r = err / base
+                    d_r = r * d_level
+                    d_r += d_pred
+                    d_r *= -1.0 / base
+                    d_s += g * d_r  # the season's new gradient, in its slot
+                    d_s[ig] += r
+                    seasons[t % m] = s_old + g * r
+                    step, d_step = q, d_q
+                else:
+                    if seasonal == "add":
+                        d_s -= g * d_pred
+                        d_s[ig] += err
+                        seasons[t % m] = s_old + g * err
+                    step, d_step = err, -d_pred
+                d_level += a * d_step
+                d_level[ia] += step
+                level = base + a * step
+                if has_trend:
+                    d_slope += ab * d_step
+                    d_slope[ia] += b * step
+                    d_slope[ib] += a * step
+                    slope = phb + ab * step
+                continue
             all_active = t >= last_start
             active = None if all_active else t >= start
             if has_trend:
