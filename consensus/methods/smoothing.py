@@ -415,7 +415,10 @@ PARAMETER_GRIDS: dict[str, np.ndarray] = {
         (0.05, 0.1, 0.2, 0.35, 0.55),
         (0.01, 0.05, 0.15),
         (0.01, 0.1, 0.25),
-        (0.9, 0.98, 1.0),
+        # φ = 0.9 dropped: the refinement moves φ anyway, and starting there
+        # won nothing on the benches (bench_statistical_real: mean WAPE 4.77 %
+        # against 4.79 % with it) at a third of the grid's cost
+        (0.98, 1.0),
         constraint=lambda a, b, g, p: b <= a and g <= 1 - a,
     ),
 }
