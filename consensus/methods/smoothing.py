@@ -589,8 +589,13 @@ def _jacobian_pass(y, start, fit_end, theta, *, method, layout, season_length):
             d_seasons[slot, s0 + j, rows] = 1.0
     sse = np.zeros(n_series)
     observed = np.isfinite(y)
-    grads = np.zeros((n_months, width, n_series))
-    errs = np.zeros((n_months, n_series))
+    # gradients and errors of every month t in first … stop−1 (all that a
+    # series' window reads): (series, parameter, month), so each series'
+    # Jacobian is one slice for the products at the end
+    grads = np.empty((n_series, width, n_months))
+    errs = np.empty((n_series, n_months))
+    d_pred = np.empty((width, n_series))
+    err = np.empty(n_series)
     first = int(start.min()) if n_series else n_months
     last_start = int(start.max()) if n_series else 0
     known_months = observed.all(axis=0)
@@ -603,7 +608,6 @@ def _jacobian_pass(y, start, fit_end, theta, *, method, layout, season_length):
                 if seasonal:
                     s_old = seasons[t % m]
                     d_s = d_seasons[t % m]
-                d_pred = grads[t]
                 if has_trend:
                     phb = ph * slope if damped else slope.copy()
                     if damped:
@@ -623,9 +627,10 @@ def _jacobian_pass(y, start, fit_end, theta, *, method, layout, season_length):
                 else:
                     pred = base
                     d_pred[...] = d_level
-                err = errs[t]
                 np.subtract(y[:, t], pred, out=err)
                 sse += err * err
+                grads[:, :, t] = d_pred.T
+                errs[:, t] = err
                 if seasonal == "mul":
                     q = err / s_old
                     d_q = q * d_s
@@ -670,7 +675,7 @@ def _jacobian_pass(y, start, fit_end, theta, *, method, layout, season_length):
             if seasonal:
                 s_old = seasons[t % m]
                 d_s = d_seasons[t % m]
-            d_pred = grads[t]  # the error's gradient is −d ŷ where scored, 0 elsewhere
+            # d_pred: the error's gradient is −d ŷ where scored, 0 elsewhere
             if seasonal == "add":
                 pred = base + s_old
                 np.add(d_base, d_s, out=d_pred)
@@ -681,7 +686,6 @@ def _jacobian_pass(y, start, fit_end, theta, *, method, layout, season_length):
             else:
                 pred = base
                 d_pred[...] = d_base
-            err = errs[t]
             np.subtract(y[:, t], pred, out=err)
             if not (all_active and known_months[t] and t < end_min):
                 # an unknown month, or one after the window, carries the state on as forecast
@@ -691,6 +695,8 @@ def _jacobian_pass(y, start, fit_end, theta, *, method, layout, season_length):
                 err[unscored] = 0.0
                 d_pred[:, unscored] = 0.0
             sse += err * err
+            grads[:, :, t] = d_pred.T
+            errs[:, t] = err
             if seasonal == "mul":
                 q = err / s_old
                 d_q = (d_pred + q * d_s) * (-1.0 / s_old)
@@ -741,9 +747,9 @@ def _jacobian_pass(y, start, fit_end, theta, *, method, layout, season_length):
         window = slice(first_month, first_month + length)
         if rows[-1] - rows[0] + 1 == len(rows):  # consecutive rows (blocks come sorted by start): no gather
             rows = slice(int(rows[0]), int(rows[-1]) + 1)
-        gt = np.ascontiguousarray(grads[window, :, rows].transpose(2, 1, 0))  # (r, P, length)
+        gt = np.ascontiguousarray(grads[rows, :, window])  # (r, P, length)
         jtj[rows] = np.matmul(gt, np.swapaxes(gt, 1, 2))
-        jte[rows] = np.matmul(gt, errs[window, rows].T[:, :, None])[:, :, 0]
+        jte[rows] = np.matmul(gt, np.ascontiguousarray(errs[rows, window])[:, :, None])[:, :, 0]
     return sse, jtj, jte
 
 
