@@ -50,10 +50,10 @@ How each series is forecast
    the training window and :data:`FULL_REFINE_ITERATIONS` more on the whole
    span starting from there.  Of the two Holt–Winters forms only the one
    whose grid fit scores better on the holdout is refined and stays a
-   candidate (:data:`REFINE_MARGIN`): refining both cost a third more for
-   a mean WAPE / MASE of 4.72 % / 0.754 instead of 4.77 % / 0.758 on the
-   real-series bench, and no gain on the synthetic and scale benches.  The grid alone trailed statsmodels'
-   optimiser, because heuristic seasonal states from the first two years
+   candidate (:data:`REFINE_MARGIN`): refining both cost a quarter more
+   for a mean WAPE / MASE of 4.69 % / 0.749 instead of 4.77 % / 0.758 on
+   the real-series bench, and no gain on the synthetic and scale benches.
+   The grid alone trailed statsmodels' optimiser, because heuristic seasonal states from the first two years
    are poor and the grid then favours large γ (refining the trended
    non-seasonal fits too took the synthetic bench's holdout WAPE from
    0.2267 to 0.2260 at no extra time, their grids now running over the
@@ -153,9 +153,9 @@ WINNER_REFINED_METHODS = ("holt_winters_add", "holt_winters_mul")
 #: A form is refined when its grid fit's holdout sum of |error| is at most this multiple of
 #: the best form's; 1 refines the grid winner only (ties both).  On the real-series bench
 #: mean WAPE / MASE were 4.77 % / 0.758 at 1, 4.72 % / 0.749 at 1.02, 4.71 % / 0.747 at 1.05
-#: and 4.72 % / 0.754 refining both, at 0.45, 0.49, 0.53 and 0.57 of the CPU time the
-#: statistical source took before (bench_statistical.py --data scale); the synthetic and the
-#: scale benches moved by 0.1 % or less.
+#: and 4.69 % / 0.749 refining both, at 0.44, 0.49, 0.53 and 0.56 of the CPU time the
+#: statistical source took before these changes (bench_statistical.py --data scale, both
+#: measured in one process); the synthetic and the scale benches moved by 0.3 % or less.
 REFINE_MARGIN = 1.0
 #: Refinement iterations of the whole-span refit, warm-started from the training-window fit.
 FULL_REFINE_ITERATIONS = 2
