@@ -53,8 +53,9 @@ How each series is forecast
    candidate (:data:`REFINE_MARGIN`): refining both cost a quarter more
    for a mean WAPE / MASE of 4.69 % / 0.749 instead of 4.77 % / 0.758 on
    the real-series bench, and no gain on the synthetic and scale benches.
-   The grid alone trailed statsmodels' optimiser, because heuristic seasonal states from the first two years
-   are poor and the grid then favours large γ (refining the trended
+   The grid alone trailed statsmodels' optimiser, because heuristic
+   seasonal states from the first two years are poor and the grid then
+   favours large γ (refining the trended
    non-seasonal fits too took the synthetic bench's holdout WAPE from
    0.2267 to 0.2260 at no extra time, their grids now running over the
    training window only).
