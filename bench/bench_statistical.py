@@ -58,7 +58,8 @@ TARGET_SCALE_MS_PER_SERIES = 0.22
 #: Stages reported by ``--data scale --profile`` (function names inside the statistical modules).
 PROFILED_STAGES = ("forecast_statistical", "build_demand_matrix", "classify_demand", "detect_trend",
                    "detect_seasonality", "_select_block", "fit_smoothing", "run_smoothing", "refine_smoothing",
-                   "_jacobian_pass", "solve", "fit_croston", "forecast_smoothing", "final")
+                   "_refine_holdout_contenders", "_jacobian_pass", "_solve_damped", "_sse_of", "fit_croston",
+                   "forecast_smoothing", "final")
 
 
 def simulate_demand(n_series: int, months: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
@@ -154,7 +155,7 @@ def time_scale_data(n_series: int, *, repeat: int, profile: bool) -> int:
         stats = pstats.Stats(profiler).stats
         for stage in PROFILED_STAGES:
             seconds = sum(entry[3] for (path, _, name), entry in stats.items()
-                          if name == stage and ("consensus" in path or stage == "solve"))
+                          if name == stage and "consensus" in path)
             rows.append((f"  stage {stage} (cumulative, profiled)", f"{seconds:.2f} s", ""))
     width = max(len(r[0]) for r in rows)
     print(f"{'measure':<{width}}  {'value':>14}  note")
