@@ -101,14 +101,6 @@ def _as_grid(p, shape, default: float) -> np.ndarray:
     return np.broadcast_to(np.asarray(default if p is None else p, dtype=float), shape)
 
 
-def _initial_grid(value, shape, n_series: int) -> np.ndarray:
-    """An initial state given per series ``(n,)`` or per series and grid point ``(n, G)``, as ``shape``."""
-    arr = np.asarray(value, dtype=float)
-    if arr.ndim == 1:
-        arr = arr[:, None]
-    return np.broadcast_to(arr, shape).copy()
-
-
 def run_smoothing(
     y: np.ndarray,
     start: np.ndarray,
