@@ -210,7 +210,8 @@ def run_smoothing(
             ends_c = [(e[rows], int(e[rows].min()), int(e[rows].max())) for e in ends]
             damp_sums = None
             if forecasts is not None and trend:
-                damp_sums = np.cumsum((np.ones((1, 1)) if ph is None else ph)[..., None] ** steps, axis=-1)  # φ + … + φ^h
+                damping = np.ones((1, 1)) if ph is None else ph
+                damp_sums = np.cumsum(damping[..., None] ** steps, axis=-1)  # φ + … + φ^h
             first, last_start = int(sc.min()), int(sc.max())
             all_known_months = known_c.all(axis=0)
             for t in range(max(first, 0), min(stop, n_months)):
