@@ -17,6 +17,7 @@ from consensus.methods.smoothing import (
     _jacobian_pass,
     _pack,
     _parameter_layout,
+    _solve_damped,
     _sse_of,
     estimate_initial_states,
     fit_smoothing,
@@ -296,24 +297,89 @@ def test_refinement_run_to_convergence_reaches_statsmodels_optimum():
     assert sse[0] <= 1.01 * reference.sse
 
 
-def test_refinement_of_a_series_does_not_depend_on_its_neighbours():
-    # Per-series products only: refining a block or each series alone gives the same bits.
+def test_damped_normal_equations_match_numpy_solve():
+    # The batched Cholesky solve against numpy.linalg.solve (LAPACK gesv) on
+    # JᵀJ + λ·diag systems of random Jacobians, a held parameter included.
+    rng = np.random.default_rng(5)
+    jac = rng.normal(size=(40, 30, 18))
+    normal = np.swapaxes(jac, 1, 2) @ jac
+    normal[:, 3, :] = normal[:, :, 3] = 0.0
+    normal[:, 3, 3] = 1.0  # a held parameter: the identity's row and column
+    damping = np.array([1e-3, 1e-1, 1e1])[None, :, None] * np.diagonal(normal, axis1=1, axis2=2)[:, None, :]
+    damping[:, :, 3] = 0.0
+    rhs = rng.normal(size=(40, 18))
+    rhs[:, 3] = 0.0
+    ours = _solve_damped(normal, damping, rhs)
+    systems = normal[:, None] + damping[..., None] * np.eye(18)
+    reference = np.linalg.solve(systems, np.broadcast_to(rhs[:, None, :, None], (40, 3, 18, 1)))[..., 0]
+    np.testing.assert_allclose(ours, reference, rtol=1e-9, atol=1e-12)
+    assert (ours[:, :, 3] == 0).all()
+
+
+def _neighbours_block(method):
+    """Five series of one block: different starts, an unknown month, a shorter fitting window."""
     rng = np.random.default_rng(3)
     y = elec_equip_series(72)[None, :] * rng.uniform(0.5, 2.0, (5, 1)) + rng.normal(0, 2, (5, 72))
+    y[2, 30] = np.nan
     start = np.array([0, 0, 4, 12, 7])
-    end = np.full(5, 72)
-    grid = fit_smoothing(y, start, method="holt_winters_mul", fit_ends=(end,), init_available=72 - start,
-                         refine=False)
-    together = refine_smoothing(y, start, method="holt_winters_mul", params=grid.params[0], states=grid.states[0],
-                                fit_end=end)
+    end = np.array([72, 60, 72, 72, 66])
+    grid = fit_smoothing(y, start, method=method, fit_ends=(end,), init_available=60 - start, refine=False)
+    return y, start, end, grid
+
+
+@pytest.mark.parametrize("method", ["holt", "holt_damped", "holt_winters_add", "holt_winters_mul"])
+def test_refinement_of_a_series_does_not_depend_on_its_neighbours(method):
+    # Per-series products only: refining a block or each series alone gives the same bits
+    # (the run fits fixed groups of families in separate processes).
+    y, start, end, grid = _neighbours_block(method)
+    together = refine_smoothing(y, start, method=method, params=grid.params[0], states=grid.states[0], fit_end=end)
     for i in range(5):
-        alone = refine_smoothing(y[i:i + 1], start[i:i + 1], method="holt_winters_mul",
+        alone = refine_smoothing(y[i:i + 1], start[i:i + 1], method=method,
                                  params={k: v[i:i + 1] for k, v in grid.params[0].items()},
                                  states=grid.states[0].take(slice(i, i + 1)), fit_end=end[i:i + 1])
-        for name in ("alpha", "beta", "gamma", "phi"):
+        for name in grid.params[0]:
             assert alone[0][name][0] == together[0][name][i]
-        np.testing.assert_array_equal(alone[1].season[0], together[1].season[i])
+        assert alone[1].level[0] == together[1].level[i] and alone[1].trend[0] == together[1].trend[i]
+        if alone[1].season is not None:
+            np.testing.assert_array_equal(alone[1].season[0], together[1].season[i])
         assert alone[2][0] == together[2][i]
+
+
+@pytest.mark.parametrize("method", ["holt", "holt_damped", "holt_winters_add", "holt_winters_mul"])
+def test_jacobian_of_a_series_does_not_depend_on_its_neighbours(method):
+    # A block whose first months have only some series active runs the masked
+    # month step, a series alone the in-place one: both must give the same bits.
+    y, start, end, grid = _neighbours_block(method)
+    layout = _parameter_layout(method, 12)
+    theta = _pack(method, grid.params[0], grid.states[0], layout, 5)
+    together = _jacobian_pass(y, start, end, theta, method=method, layout=layout, season_length=12)
+    for i in range(5):
+        alone = _jacobian_pass(y[i:i + 1], start[i:i + 1], end[i:i + 1], theta[i:i + 1], method=method,
+                               layout=layout, season_length=12)
+        for a, b in zip(alone, together):
+            np.testing.assert_array_equal(a[0], b[i])
+
+
+@pytest.mark.parametrize("method", ["ses", "holt", "holt_damped", "holt_winters_add", "holt_winters_mul"])
+def test_grid_pass_of_a_series_does_not_depend_on_its_neighbours(method):
+    # The grid pass runs chunks of series × grid points: a series' SSE and
+    # forecasts for every grid point are the same bits alone or in a block.
+    y, start, end, _ = _neighbours_block(method)
+    has_trend, _, seasonal = SMOOTHING_METHODS[method]
+    values = dict(zip(GRID_PARAMETERS[method], PARAMETER_GRIDS[method]))
+    states = estimate_initial_states(y, start, available=60 - start, trend=has_trend, seasonal=seasonal)
+    kw = dict(alpha=values["alpha"], beta=values.get("beta"), gamma=values.get("gamma"), phi=values.get("phi"),
+              trend=has_trend, seasonal=seasonal, fit_ends=(end, np.full(5, 72)), origins=np.array([59, 71]),
+              horizon=6)
+    together = run_smoothing(y, start, level0=states[0], trend0=states[1], season0=states[2], **kw)
+    for i in range(5):
+        one = slice(i, i + 1)
+        alone = run_smoothing(y[one], start[one], level0=states[0][one], trend0=states[1][one],
+                              season0=None if states[2] is None else states[2][one],
+                              **{**kw, "fit_ends": (end[one], np.full(1, 72))})
+        for a, b in zip(alone.sse, together.sse):
+            np.testing.assert_array_equal(a[0], b[i])
+        np.testing.assert_array_equal(alone.forecasts[0], together.forecasts[i])
 
 
 # --- unknown months -------------------------------------------------------------

@@ -495,3 +495,46 @@ def test_block_boundaries_change_no_bit(store_of_families, monkeypatch):
     split = forecast_statistical(history, cycle="2024-12", horizon=12, families=families)
     for name in ("forecast", "intervals", "series", "seasonal_naive"):
         pd.testing.assert_frame_equal(getattr(split, name), getattr(whole, name), check_exact=True)
+
+
+# --- which Holt–Winters forms are refined -------------------------------------------
+
+def _seasonal_store() -> pd.DataFrame:
+    """Five seasonal series: elec_equip orders (statsmodels.datasets) scaled, shifted and noised, fixed seed."""
+    rng = np.random.default_rng(11)
+    base = orders(60)
+    return long_history({(f"S{k}", "L"): np.round(base * rng.uniform(0.5, 2.0) + rng.normal(0, 3, 60) + 10 * k)
+                         for k in range(5)}, first="2020-01")
+
+
+def test_a_seasonal_series_forecast_is_its_chosen_form_forecast_alone():
+    # Contenders are refined from their own grid fits, so the form chosen gives
+    # the same bits when it is the only method requested.
+    history = _seasonal_store()
+    both = forecast_statistical(history, cycle="2024-12", horizon=6)
+    for item, method in both.series.set_index("item")["method"].items():
+        assert method in ("holt_winters_add", "holt_winters_mul")
+        mine = history[history["item"] == item]
+        alone = forecast_statistical(mine, cycle="2024-12", horizon=6, methods=[method])
+        np.testing.assert_array_equal(alone.forecast["quantity"].to_numpy(),
+                                      both.forecast.loc[both.forecast["item"] == item, "quantity"].to_numpy())
+
+
+@pytest.mark.parametrize("margin, refined_forms", [(1.0, 1), (1e9, 2)])
+def test_only_forms_within_the_margin_of_the_best_grid_fit_are_refined(monkeypatch, margin, refined_forms):
+    import consensus.methods.statistical as statistical
+    from consensus.methods import smoothing
+
+    calls = []
+    real = smoothing.refine_smoothing
+
+    def recording(y, *args, **kwargs):
+        if kwargs.get("iterations") is None:  # the training-window refinement
+            calls.append((kwargs["method"], len(y)))
+        return real(y, *args, **kwargs)
+
+    monkeypatch.setattr(statistical, "REFINE_MARGIN", margin)
+    monkeypatch.setattr(smoothing, "refine_smoothing", recording)
+    forecast_statistical(_seasonal_store(), cycle="2024-12", horizon=6)
+    refined = sum(n for method, n in calls if method.startswith("holt_winters"))
+    assert refined == refined_forms * 5

@@ -87,28 +87,37 @@ def classify_demand(y: np.ndarray, start: np.ndarray) -> np.ndarray:
 
 
 def mann_kendall_z(y: np.ndarray, start: np.ndarray) -> np.ndarray:
-    """Mann–Kendall Z of each span with the tie-corrected variance (NaN for spans under 3 months)."""
+    """Mann–Kendall Z of each span with the tie-corrected variance (NaN for spans under 3 months).
+
+    ``S`` counts the pairs of months t < t + d, both known in the span,
+    with ``y_{t+d} > y_t`` less those with ``y_{t+d} < y_t`` (contiguous
+    slices, one lag d at a time);
+    the tie groups come from each span's sorted values (a run of equal
+    values of length t is a group of size t).
+    """
     y = np.asarray(y, dtype=float)
     start = np.asarray(start, dtype=int)
     n_series, n_months = y.shape
-    out = np.full(n_series, np.nan)
-    block = max(16, int(4_000_000 // max(n_months, 1) ** 2))  # bounds the (block, T, T) pair arrays
-    later = np.triu(np.ones((n_months, n_months), dtype=bool), k=1)  # pairs i < j
-    for lo in range(0, n_series, block):
-        hi = min(lo + block, n_series)
-        yy = y[lo:hi]
-        span = _known_span(yy, start[lo:hi])
-        both = span[:, :, None] & span[:, None, :]
-        diff = yy[:, None, :] - yy[:, :, None]  # [k, i, j] = y_j − y_i
-        s = np.where(both & later, np.sign(diff), 0.0).sum(axis=(1, 2))
-        n = span.sum(axis=1).astype(float)
-        # each member of a tie group of size t counts t members equal to it
-        tie_size = np.where(both & (diff == 0), 1, 0).sum(axis=2)
-        ties = np.where(span, (tie_size - 1) * (2 * tie_size + 5), 0).sum(axis=1)
-        var = (n * (n - 1) * (2 * n + 5) - ties) / 18.0
-        with np.errstate(all="ignore"):
-            out[lo:hi] = np.where((n >= 3) & (var > 0), s / np.sqrt(var), np.nan)
-    return out
+    span = _known_span(y, start)
+    yy = np.where(span, y, np.nan)  # a comparison with NaN is false: a pair with an unknown month counts nowhere
+    s = np.zeros(n_series, dtype=np.int64)
+    for lag in range(1, n_months):
+        diff = yy[:, lag:] - yy[:, :-lag]
+        s += np.count_nonzero(diff > 0, axis=1) - np.count_nonzero(diff < 0, axis=1)
+    n = span.sum(axis=1).astype(float)
+    # tie groups: runs of equal values in each sorted span (NaN sort last)
+    positions = np.arange(n_months)
+    ordered = np.sort(yy, axis=1)
+    new_run = np.ones(ordered.shape, dtype=bool)
+    new_run[:, 1:] = ordered[:, 1:] != ordered[:, :-1]
+    run_start = np.maximum.accumulate(np.where(new_run, positions, 0), axis=1)
+    run_end = np.minimum.accumulate(np.where(np.roll(new_run, -1, axis=1) | (positions == n_months - 1),
+                                             positions, n_months)[:, ::-1], axis=1)[:, ::-1]
+    tie_size = run_end - run_start + 1  # the size of the group each value belongs to
+    ties = np.where(np.isfinite(ordered), (tie_size - 1) * (2 * tie_size + 5), 0).sum(axis=1)
+    var = (n * (n - 1) * (2 * n + 5) - ties) / 18.0
+    with np.errstate(all="ignore"):
+        return np.where((n >= 3) & (var > 0), s.astype(float) / np.sqrt(var), np.nan)
 
 
 def detect_trend(y: np.ndarray, start: np.ndarray) -> np.ndarray:
