@@ -17,7 +17,8 @@ PG_BINARY = Path("/usr/lib/postgresql/15/bin/postgres")
 
 def _backends():
     yield pytest.param("sqlite", id="sqlite")
-    yield pytest.param("postgres", id="postgres", marks=pytest.mark.postgres)
+    # The PostgreSQL twin of every store test runs in the full suite (CI), not in the fast tier.
+    yield pytest.param("postgres", id="postgres", marks=[pytest.mark.postgres, pytest.mark.slow])
 
 
 @pytest.fixture(params=list(_backends()))

@@ -61,7 +61,7 @@ iso_weeks = st.dates(min_value=dt.date(1990, 1, 1), max_value=dt.date(2090, 12, 
     lambda d: "{:04d}-W{:02d}".format(*d.isocalendar()[:2]))
 
 
-@settings(max_examples=80, deadline=None)
+@settings(max_examples=40, deadline=None)
 @given(weeks=st.lists(iso_weeks, min_size=1, max_size=20))
 def test_week_shares_agree_with_the_stdlib_calendar(weeks):
     # Oracle: Python's datetime.date.fromisocalendar (ISO 8601) and counting the 7 days one by one.
@@ -77,7 +77,7 @@ def test_week_shares_agree_with_the_stdlib_calendar(weeks):
         pd.testing.assert_series_equal(got.sort_index(), expected.sort_index(), check_names=False)
 
 
-@settings(max_examples=100, deadline=None)
+@settings(max_examples=50, deadline=None)
 @given(data=st.lists(st.tuples(iso_weeks, st.floats(0, 1e6), st.floats(0, 1e6)), min_size=1, max_size=25))
 def test_spreading_weeks_then_summing_returns_the_original(data):
     rows = pd.DataFrame(data, columns=["week", "quantity", "value"]).assign(row_id=lambda d: np.arange(len(d)),
@@ -278,7 +278,7 @@ def cached_mix(seasonal: bool) -> pd.DataFrame:
                           cycle="2026-11")
 
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=30, deadline=None)
 @given(data=st.lists(row_strategy, min_size=1, max_size=30), seasonal=st.booleans())
 def test_splitting_then_summing_returns_the_original(data, seasonal):
     mix = cached_mix(seasonal)
@@ -309,7 +309,7 @@ def test_value_of_family_row_uses_mix_weighted_price(mix):
     assert out["quantity"].iloc[0] == pytest.approx(60.0)
 
 
-@settings(max_examples=40, deadline=None)
+@settings(max_examples=20, deadline=None)
 @given(data=st.lists(row_strategy, min_size=1, max_size=15))
 def test_units_split_and_priced_return_the_value(data):
     # Invariant: Σ_pairs split quantity × item price = the submitted value (exactness of p̄ = Σ s·p).

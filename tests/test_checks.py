@@ -521,7 +521,7 @@ def test_master_clean_frame_always_carries_a_description():
         assert blank["description"].tolist() == [""]
 
 
-@settings(max_examples=80, deadline=None)
+@settings(max_examples=40, deadline=None)
 @given(numbers=st.lists(st.floats(allow_nan=True, allow_infinity=True, width=64), min_size=1, max_size=20))
 def test_a_number_is_accepted_exactly_when_finite_and_within_its_limit(numbers):
     """Oracle: Python's float() of the cell text and IEEE 754 finiteness (math.isfinite), row by row."""
@@ -570,7 +570,7 @@ def _forecast_result(rows):
                                default_cycle=DEFAULT_CYCLE, max_problems=10_000)
 
 
-@settings(max_examples=80, deadline=None)
+@settings(max_examples=40, deadline=None)
 @given(rows=st.lists(FORECAST_ROW, min_size=1, max_size=30))
 def test_each_bad_cell_is_reported_once(rows):
     """Problems counted independently, cell by cell, in plain Python (common practice: brute-force oracle)."""
@@ -602,7 +602,7 @@ def test_each_bad_cell_is_reported_once(rows):
     assert [(r, int(e.rsplit(" ", 1)[1])) for r, e in reported] == duplicates
 
 
-@settings(max_examples=40, deadline=None)
+@settings(max_examples=20, deadline=None)
 @given(rows=st.lists(FORECAST_ROW, min_size=1, max_size=20), seed=st.integers(0, 2**16))
 def test_row_order_does_not_change_the_clean_set(rows, seed):
     """Reordering a file's rows only renumbers them: same clean records, same number of problems."""
@@ -615,7 +615,7 @@ def test_row_order_does_not_change_the_clean_set(rows, seed):
     assert one.total_problems == two.total_problems
 
 
-@settings(max_examples=80, deadline=None)
+@settings(max_examples=40, deadline=None)
 @given(year=st.integers(1990, 2060), week=st.integers(0, 54))
 def test_iso_weeks_accepted_exactly_when_the_calendar_has_them(year, week):
     """Oracle: Python's date.fromisocalendar, which implements ISO 8601 week dates."""
@@ -638,7 +638,7 @@ def test_iso_weeks_accepted_exactly_when_the_calendar_has_them(year, week):
         assert result.is_clean == reaches_next_month
 
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=30, deadline=None)
 @given(edges=st.lists(st.tuples(st.sampled_from("ABCDEF"), st.sampled_from("ABCDEF")), min_size=1, max_size=12,
                       unique=True))
 def test_bom_lines_on_a_cycle_match_transitive_closure(edges):

@@ -214,6 +214,7 @@ BROKEN = [
 ]
 
 
+@pytest.mark.slow  # every command once: the fast tier keeps the others
 @pytest.mark.parametrize("args", BROKEN, ids=[" ".join(a)[:60] for a in BROKEN])
 def test_broken_arguments_give_a_plain_message_and_no_traceback(cli_store, tmp_path, capsys, args):
     filled = [a.replace("{good}", str(DATA / "good")).replace("{tmp}", str(tmp_path)) for a in args]

@@ -20,6 +20,9 @@ from consensus.store import frames
 from consensus.store.db import session_scope
 from consensus.store.models import CacheEntry, ConsensusRun, Cycle, Decision, Submission
 
+#: The slow tier: every hostile file through the store (the fast tier is pytest -m 'not slow').
+pytestmark = pytest.mark.slow
+
 HOSTILE = Path(__file__).parent / "data" / "hostile"
 ACCEPTED = {"items_no_description.csv", "locations_no_description.csv"}
 # Fixed months that the calendar will one day overtake are tested against fixed limits in test_checks.py.

@@ -86,7 +86,7 @@ def test_bands_are_checked():
         winkler_score([1], [2], [1], level=0.0)
 
 
-@settings(max_examples=50, deadline=None)
+@settings(max_examples=25, deadline=None)
 @given(errors=st.lists(st.tuples(st.floats(0.1, 1e4), st.floats(0, 1e4)), min_size=1, max_size=60),
        points=st.lists(st.floats(0, 1e5), min_size=1, max_size=10), min_errors=st.integers(1, 40))
 def test_bands_hold_the_forecast_and_stay_nonnegative(errors, points, min_errors):
@@ -390,7 +390,7 @@ def test_an_empty_lag_bucket_borrows_its_size_class_first():
     assert out["band_method"].iloc[0] == f"empirical, pooled, {len(members)} errors, size class 5 of 5"
 
 
-@settings(max_examples=40, deadline=None)
+@settings(max_examples=20, deadline=None)
 @given(errors=st.lists(st.tuples(st.floats(0.1, 1e4), st.floats(0, 1e4), st.sampled_from(["1", "2-3", "7+"])),
                        min_size=1, max_size=80),
        points=st.lists(st.tuples(st.floats(0, 1e5), st.sampled_from(["1", "2-3", "4-6"])), min_size=1, max_size=10),

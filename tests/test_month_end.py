@@ -30,6 +30,9 @@ from sqlalchemy import create_engine, text
 from small_company import (CRASH, CYCLE, DATA, DC_FILES, cli, dc_values, exported, file_values, load_company, ok,
                            plan_numbers, shift, status_rows, write_variant)
 
+#: The slow tier: month-end scenarios through the CLI on small stores (the fast tier is pytest -m 'not slow').
+pytestmark = pytest.mark.slow
+
 @pytest.fixture
 def sqlite_store(tmp_path) -> str:
     from consensus.store.db import get_engine

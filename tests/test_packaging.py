@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import pytest
+
 import subprocess
 import sys
 import zipfile
@@ -10,6 +12,7 @@ from pathlib import Path
 ROOT = Path(__file__).parent.parent
 
 
+@pytest.mark.slow  # builds the wheel
 def test_wheel_ships_reports_and_sample_inputs(tmp_path):
     done = subprocess.run([sys.executable, "-m", "pip", "wheel", str(ROOT), "--no-deps", "-q", "-w", str(tmp_path)],
                           capture_output=True, text=True, timeout=600)

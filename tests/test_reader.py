@@ -222,7 +222,7 @@ def _write_csv(rows: list[list[str]], *, delimiter: str) -> str:
     return buffer.getvalue()
 
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=30, deadline=None)
 @given(
     cells=st.lists(st.tuples(CELL_TEXT, CELL_TEXT).filter(lambda t: any(t)), min_size=1, max_size=8),
     delimiter=st.sampled_from([",", ";"]),
@@ -241,7 +241,7 @@ def test_any_utf8_text_round_trips(tmp_path_factory, cells, delimiter, bom):
 CP1252_EXTRA = [chr(c) for c in range(0xA1, 0x100)] + list("€‚ƒ„…†‡ˆ‰Š‹ŒŽ‘’“”•–—˜™š›œžŸ")
 
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=30, deadline=None)
 @given(pairs=st.lists(st.tuples(st.sampled_from(CP1252_EXTRA), st.sampled_from("abcXYZ019 -")), min_size=1, max_size=10))
 def test_cp1252_text_is_read_right(tmp_path_factory, pairs):
     """Windows-1252 text whose accented characters each stand before an ASCII one.

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import pytest
+
 import pandas as pd
 
 from conftest import readme_commands
@@ -14,6 +16,7 @@ def test_quick_start_has_two_commands_demo_then_tests():
     assert "pip install" in commands[1] and '".[test]"' in commands[1] and "pytest" in commands[1]
 
 
+@pytest.mark.slow  # the README's demo, run as a user would
 def test_demo_command_writes_pack_html_and_consensus(demo_dir):
     for name in ("pack.pdf", "pack.html", "consensus.csv", "components.csv", "consensus.db"):
         assert (demo_dir / name).is_file() and (demo_dir / name).stat().st_size > 0, name

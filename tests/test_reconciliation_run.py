@@ -115,6 +115,7 @@ def test_every_method_is_coherent_and_nonnegative(method):
 
 
 @settings(max_examples=8, deadline=None)
+@pytest.mark.slow  # many random hierarchies
 @given(seed=st.integers(0, 10_000), method=st.sampled_from(RECONCILIATION_METHODS[1:]))
 def test_reconciled_consensus_is_coherent_for_any_scenario(seed, method):
     _, result, _ = _run(method, seed=seed, horizon=2, past_cycles=4)

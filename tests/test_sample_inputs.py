@@ -415,7 +415,7 @@ def test_manifest_lists_every_file_in_load_order():
 
 # ----------------------------------------------------------------------------- generator pieces
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=30, deadline=None)
 @given(st.lists(st.floats(0, 500, allow_nan=False), min_size=6, max_size=6))
 def test_weekly_split_keeps_the_half_year_total(monthly_units):
     generate = load_generator()

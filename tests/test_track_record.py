@@ -105,6 +105,7 @@ def _track_record_tables(path) -> dict[str, pd.DataFrame]:
     return tables
 
 
+@pytest.mark.slow  # the demo store
 def test_the_track_record_of_a_sales_lead_matches_the_scorecard(demo_url, tmp_path):
     from consensus.store.db import session_scope
     from consensus.workflow.inputs import run_parts
@@ -153,6 +154,7 @@ def _family_region(frame: pd.DataFrame, value: str) -> pd.DataFrame:
     return joined.groupby(["family", "region", "period"])[value].sum()
 
 
+@pytest.mark.slow  # the demo store
 def test_the_references_of_the_next_cycle_are_the_orders_and_the_published_plan(demo_dir, tmp_path):
     """Oracles: the sample company's order file and the consensus CSV the demo exported, summed with pandas."""
     from consensus.store.db import get_engine

@@ -165,7 +165,7 @@ error_values = st.lists(st.floats(min_value=-50, max_value=50, allow_nan=False, 
                         min_size=5, max_size=40)
 
 
-@settings(max_examples=40, deadline=None)
+@settings(max_examples=20, deadline=None)
 @given(st.lists(error_values, min_size=2, max_size=4), st.sampled_from(SCHEMES), st.sampled_from(["family", "all"]))
 def test_weights_non_negative_sum_to_one_and_ignore_source_order(per_source, scheme, segment):
     names = [f"s{k}" for k in range(len(per_source))]

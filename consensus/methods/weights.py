@@ -203,12 +203,17 @@ def _error_statistics(window: pd.DataFrame, keys: list[str]) -> pd.DataFrame:
 
 
 def _normalise_inverse(score: pd.Series, group: pd.Series) -> pd.Series:
-    """w ∝ 1/score within each group; a zero score takes all weight (shared)."""
+    """w ∝ 1/score within each group; a zero score takes all weight (shared).
+
+    Computed as min/score, which is in (0, 1]: 1/score overflows for
+    subnormal scores and would turn a near-perfect source's weight into NaN.
+    """
     score = score.astype(float)
     is_zero = score <= 0
     group_has_zero = is_zero.groupby(group).transform("any")
-    with np.errstate(divide="ignore"):
-        inverse = np.where(group_has_zero, is_zero.astype(float), 1.0 / score.where(~is_zero, np.nan))
+    smallest = score.where(~is_zero).groupby(group).transform("min")
+    with np.errstate(divide="ignore", invalid="ignore"):
+        inverse = np.where(group_has_zero, is_zero.astype(float), smallest / score.where(~is_zero, np.nan))
     inverse = pd.Series(inverse, index=score.index)
     return inverse / inverse.groupby(group).transform("sum")
 
