@@ -659,3 +659,26 @@ def test_bom_lines_on_a_cycle_match_transitive_closure(edges):
         path = problem.expected.split("closes ")[1].split(" (")[0].split(" → ")
         assert path[0] == path[-1]  # the spelled-out path is a closed cycle
         assert all((a, b) in set(edges) for a, b in zip(path, path[1:]))
+
+
+def test_frozen_months_refuse_a_number_in_a_long_file_too():
+    """cycle.frozen_months is one rule for both layouts: a long file (periods or weeks) cannot change a frozen month.
+
+    Frozen near-term months are common practice (a planning time fence); the weeks are ISO 8601.
+    """
+    horizon = HORIZONS[DEFAULT_CYCLE]  # 2026-12 … : the first two are frozen below
+    assert dt.date.fromisocalendar(2027, 4, 1) == dt.date(2027, 1, 25)  # W04: 25–31 Jan, in a frozen month
+    assert dt.date.fromisocalendar(2027, 5, 1) == dt.date(2027, 2, 1)  # W05: 1–7 Feb, open
+    raw = _raw({"item": ["A100"] * 6, "location": ["L1"] * 6,
+                "period": [horizon[0], horizon[1], horizon[2], "", "", ""],
+                "week": ["", "", "", "2027-W04", "2027-W05", "2027-W01"],
+                "quantity": ["5", "6", "7", "8", "9", "10"]})
+    result = check_forecast_rows(raw, filename="long.csv", items=ITEMS, locations=LOCATIONS, horizons=HORIZONS,
+                                 default_cycle=DEFAULT_CYCLE, frozen_months=2)
+    frozen = [p for p in result.problems if "frozen" in p.expected]
+    assert [(p.row, p.column, p.value) for p in frozen] == [(2, "quantity", "5"), (3, "quantity", "6"),
+                                                          (5, "quantity", "8"), (7, "quantity", "10")]
+    assert frozen[0].expected == ("no number here: the first 2 months of the horizon are frozen "
+                                  "(setting cycle.frozen_months) and keep the plan they have")
+    assert check_forecast_rows(raw, filename="long.csv", items=ITEMS, locations=LOCATIONS, horizons=HORIZONS,
+                               default_cycle=DEFAULT_CYCLE, frozen_months=0).is_clean

@@ -482,6 +482,7 @@ def check_forecast_rows(
     default_cycle: str | None,
     max_problems: int = DEFAULT_MAX_PROBLEMS,
     limits: IntakeLimits = DEFAULT_LIMITS,
+    frozen_months: int = 0,
 ) -> CheckResult:
     """Check a forecast submission and return its rows typed.
 
@@ -491,8 +492,10 @@ def check_forecast_rows(
     in money (converted later with the unit price), each from 0 to its limit
     in ``limits``.  ``cycle`` is taken from the row or else from
     ``default_cycle``; a period must lie in that cycle's horizon, a week must
-    overlap it.  Clean columns: [row, cycle, item, family, location, region,
-    period, week, quantity, value, note].
+    overlap it.  The first ``frozen_months`` months of each horizon (store
+    setting ``cycle.frozen_months``) take no number, in either layout, nor
+    does a week reaching one of them.  Clean columns: [row, cycle, item,
+    family, location, region, period, week, quantity, value, note].
     """
     filename = filename or raw.file
     frame = raw.frame
@@ -534,6 +537,9 @@ def check_forecast_rows(
                            minimum_text="a value of 0 or more", maximum=limits.max_forecast_value,
                            maximum_text=f"a value of at most {_amount(limits.max_forecast_value)}")
     _check_prices_for_values(issues, items, item, family, is_value, value_text)
+    _check_frozen_months(issues, frozen_months, horizons, cycles, period, is_period,
+                         (monday_month, sunday_month), is_week, np.where(is_value, value_text, quantity_text),
+                         np.where(is_value, "value", "quantity"))
 
     grain = cycles + "|" + _level_key(item, family, ("item", "family")) + "|" + _level_key(location, region, ("location", "region")) + "|" + _level_key(period, week, ("period", "week"))
     _flag_duplicates(
@@ -558,6 +564,21 @@ def check_forecast_rows(
         }
     ).reset_index(drop=True)
     return issues.result(clean, max_problems)
+
+
+def _check_frozen_months(issues: _Issues, frozen_months: int, horizons: dict[str, list[str]], cycles: pd.Series,
+                         period: pd.Series, is_period, week_months, is_week, amount, amount_column) -> None:
+    """A number in a frozen month: the cycle's rules keep the horizon's first ``frozen_months`` months as planned."""
+    if frozen_months <= 0:
+        return
+    frozen = {f"{c}|{m}" for c, months in horizons.items() for m in sorted(months)[:frozen_months]}
+    hit = np.asarray(is_period, dtype=bool) & (cycles + "|" + period).isin(frozen).to_numpy()
+    for month in week_months:
+        hit |= np.asarray(is_week, dtype=bool) & (cycles + "|" + month).isin(frozen).to_numpy()
+    months = "the first month of the horizon is" if frozen_months == 1 else \
+        f"the first {frozen_months} months of the horizon are"
+    issues.add(hit, amount_column, pd.Series(amount, index=cycles.index),
+               f"no number here: {months} frozen (setting cycle.frozen_months) and keep the plan they have")
 
 
 def _product_and_place(issues: _Issues, frame: pd.DataFrame, items: pd.DataFrame, locations: pd.DataFrame):

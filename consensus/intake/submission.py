@@ -16,6 +16,7 @@ so a file can never land in a cycle that was published meanwhile.
 
 from __future__ import annotations
 
+import functools
 from collections.abc import Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass, field
@@ -269,8 +270,11 @@ def submit_file(path: Path | str, *, url=None, source: str | None = None, cycle:
             horizons = _horizons(session, bulk)
             from consensus.workflow.settings import frozen_months
             frozen = frozen_months(session)
-        check = checks.check_event_rows if intake.kind == "events" else checks.check_forecast_rows
-        result = workbook.check_returned(returned, check, frozen_months=frozen, filename=path.name, items=items,
+        if intake.kind == "events":
+            check = checks.check_event_rows
+        else:
+            check = functools.partial(checks.check_forecast_rows, frozen_months=frozen)
+        result = workbook.check_returned(returned, check, filename=path.name, items=items,
                                          locations=locations, horizons=horizons, default_cycle=cycle)
         result.raise_if_problems(path.name)
         clean = result.clean.copy()

@@ -24,7 +24,8 @@ the layout, on top of the checks:
 * the note of a row goes with every month filled in that row;
 * each key may have one row; a month column may appear once;
 * a month frozen by the store's setting ``cycle.frozen_months`` takes no
-  number (the template locks those cells; a CSV cannot).
+  number (the template locks those cells; a CSV cannot; the checks refuse
+  it in a long file too).
 
 The checks number the long rows 1, 2, … (one per filled cell) instead of
 spreadsheet rows; :func:`check_returned` turns every problem back into the
@@ -330,16 +331,13 @@ def _repeated_keys(problems: list[Problem], file: str, key_text: dict[str, pd.Se
 # checking, with problems named by cell
 
 
-def check_returned(returned: ReturnedFile, check: Callable[..., CheckResult], *, frozen_months: int = 0,
-                   **options) -> CheckResult:
+def check_returned(returned: ReturnedFile, check: Callable[..., CheckResult], **options) -> CheckResult:
     """Run ``check`` (e.g. :func:`consensus.intake.checks.check_forecast_rows`) on a returned file's long rows.
 
     A long file is checked as it is.  For a wide file the layout's own
     problems and those of the checks are listed together, each naming its
-    cell, a key cell's problem once rather than once per month; a number in
-    one of the first ``frozen_months`` months of the cycle's horizon (the
-    cycle is ``options["default_cycle"]`` unless the row names one) is a
-    problem too.  The total counts every problem after collapsing; when the
+    cell, a key cell's problem once rather than once per month (the frozen
+    months are the checks' rule, the same for both layouts).  The total counts every problem after collapsing; when the
     checks found more than :data:`CHECK_PROBLEM_CAP`, the ones beyond it are
     counted as they come.
     """
@@ -347,13 +345,10 @@ def check_returned(returned: ReturnedFile, check: Callable[..., CheckResult], *,
         return check(returned.raw, **options)
     limit = options.pop("max_problems", MAX_LISTED_PROBLEMS)
     result = check(returned.raw, max_problems=CHECK_PROBLEM_CAP, **options)
-    file = options.get("filename") or returned.raw.file
-    frozen = _frozen_problems(returned, file, frozen_months, options.get("default_cycle"),
-                              options.get("horizons", {}))
     found = [p for p in result.problems
              if not (returned.problems and p.row is None and "at least one data row" in p.expected)]
     named = _name_problems(found, returned.cells)
-    problems = [*returned.problems, *frozen, *named]
+    problems = [*returned.problems, *named]
     total = len(problems) + max(0, result.total_problems - len(result.problems))
     warnings = [*returned.warnings, *_name_problems(result.warnings, returned.cells)]
     return CheckResult(result.clean, problems[:limit], total, warnings[:limit])
@@ -412,26 +407,6 @@ def _sheet_row(cells: CellMap, long_row: int) -> str:
         return str(int(cells.sheet_rows[long_row - 1]))
     return str(long_row)
 
-
-def _frozen_problems(returned: ReturnedFile, file: str, frozen_months: int, default_cycle: str | None,
-                     horizons: dict[str, list[str]]) -> list[Problem]:
-    """A number in a frozen month: the cycle's rules keep the horizon's first ``frozen_months`` months as planned."""
-    frame, cells = returned.raw.frame, returned.cells
-    if frozen_months <= 0 or not len(frame):
-        return []
-    cycle = frame["cycle"].where(frame["cycle"] != "", default_cycle or "") if "cycle" in frame else \
-        pd.Series(default_cycle or "", index=frame.index)
-    frozen_keys = {f"{c}|{m}" for c, months in horizons.items() for m in list(months)[:frozen_months]}
-    if not frozen_keys:
-        frozen_keys = {f"{default_cycle}|{m}" for m in periods.horizon_months(default_cycle, frozen_months)} \
-            if default_cycle and periods.is_month(default_cycle) else set()
-    hit = (cycle.astype(str) + "|" + frame["period"].astype(str)).isin(frozen_keys).to_numpy()
-    months = "the first month of the horizon is" if frozen_months == 1 else \
-        f"the first {frozen_months} months of the horizon are"
-    return [Problem(file, int(cells.sheet_rows[i]), "quantity", str(frame["quantity"].iloc[i]),
-                    f"no number here: {months} frozen (setting cycle.frozen_months) and keep the plan they have",
-                    cell=str(cells.value_cells[i]), about=str(cells.about[i]))
-            for i in np.flatnonzero(hit)[:CHECK_PROBLEM_CAP]]
 
 __all__ = ["ReturnedFile", "CellMap", "read_returned_file", "check_returned", "name_problem_cells",
            "with_sheet_rows", "LAYOUT_KEY", "WIDE", "LONG", "LINE_COLUMN", "NOTE_COLUMN"]
