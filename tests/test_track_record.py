@@ -53,6 +53,16 @@ def test_a_group_forecast_exactly_adds_no_error_and_is_counted_apart():
     assert pooled["n_unrecovered"] == 1 and pooled["wape"] == pytest.approx(10.0)
 
 
+def test_stored_orders_count_a_group_forecast_exactly_in_the_denominator():
+    """With the scorecard's Σ orders stored, the exact group's 30 units of orders count: WAPE = 30 / (30 + 300)."""
+    rows = pd.DataFrame({"lag_bucket": ["1", "1"], "n": [3, 3], "mad": [0.0, 10.0], "bias": [0.0, -10.0],
+                         "wape": [0.0, 10.0], "bias_pct": [0.0, -10.0], "tracking_signal": [0.0, -3.0],
+                         "sum_actual": [30.0, 300.0]})
+    pooled = pool_groups(rows).iloc[0]
+    assert pooled["n_unrecovered"] == 0 and pooled["wape"] == pytest.approx(100 * 30 / 330)
+    assert pooled["bias_pct"] == pytest.approx(100 * -30 / 330)
+
+
 @pytest.mark.parametrize("bias, words", [(-12.4, "ran 12% high on average"), (7.6, "ran 8% low on average"),
                                          (0.3, "were about right on average")])
 def test_the_sentence_says_high_for_a_negative_bias(bias, words):

@@ -22,7 +22,10 @@ Errors are e = actual − forecast.  A cell is scored the way
 :func:`consensus.methods.accuracy.forecast_errors` says: its month must have
 orders for some series, the series must have orders in some month (a month
 without a row is then zero demand), and unknown months (a cycle opened before
-its orders were in) are not scored at all.
+its orders were in) are not scored at all.  A series that never had an
+order is not scored on its own, but its forecasts count at zero orders in
+the group totals (a launch that did not sell is an error of its family's
+number).
 """
 
 from __future__ import annotations
@@ -49,6 +52,7 @@ BAND_SOURCES = ("consensus", "statistical")
 #: Longest DC lead time whose forecasts are kept for order amplification (months).
 MAX_LEAD_TIME_MONTHS = 3
 MIN_OWN_BAND_ERRORS = 30
+UNKNOWN_FAMILY, UNKNOWN_REGION = "(unknown family)", "(unknown region)"
 #: Steps of forecast value added, from the yardstick to the plan.
 FVA_STEPS = ("naive", "statistical_base", "statistical", "dc", "sales", "marketing", "consensus")
 NODE_COLUMNS = ["level", "source", "cycle", "node_item", "node_location", "period", "lag", "forecast", "actual"]
@@ -70,6 +74,15 @@ class SeriesBook:
     index: pd.MultiIndex
     scale: np.ndarray  # in-sample seasonal naive MAE per series (the MASE scale), NaN when too short
     pattern: np.ndarray  # demand pattern per series ("" when unknown)
+    #: The master's family of every item and region of every location, for forecasts of series without orders.
+    family_of: pd.Series = field(default_factory=lambda: pd.Series(dtype=object))
+    region_of: pd.Series = field(default_factory=lambda: pd.Series(dtype=object))
+
+    def known_at_location(self) -> tuple[pd.Index, np.ndarray]:
+        """Locations and, per location and month, whether its orders are known (a series there has a number)."""
+        finite = pd.DataFrame(np.isfinite(self.actual))
+        by_location = finite.groupby(self.keys["location"].to_numpy()).any()
+        return pd.Index(by_location.index, dtype=object), by_location.to_numpy(bool)
 
 
 def build_series_book(actuals: pd.DataFrame, *, items: pd.DataFrame, locations: pd.DataFrame, cycle: str,
@@ -103,9 +116,11 @@ def build_series_book(actuals: pd.DataFrame, *, items: pd.DataFrame, locations: 
         j = periods.month_index(month) - first
         if 0 <= j < n_months:
             actual[(keys["location"] == location).to_numpy(), j] = np.nan
-    family = keys["item"].map(items.drop_duplicates("item").set_index("item")["family"]).fillna("(unknown family)")
-    region = keys["location"].map(locations.drop_duplicates("location").set_index("location")["region"])
-    keys = keys.assign(family=family.astype(object), region=region.fillna("(unknown region)").astype(object))
+    family_of = items.drop_duplicates("item").set_index("item")["family"].astype(object)
+    region_of = locations.drop_duplicates("location").set_index("location")["region"].astype(object)
+    family = keys["item"].map(family_of).fillna(UNKNOWN_FAMILY)
+    region = keys["location"].map(region_of)
+    keys = keys.assign(family=family.astype(object), region=region.fillna(UNKNOWN_REGION).astype(object))
     diffs = np.abs(actual[:, season:] - actual[:, :-season]) if n_months > season else np.empty((len(keys), 0))
     counted = np.isfinite(diffs)
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -116,7 +131,8 @@ def build_series_book(actuals: pd.DataFrame, *, items: pd.DataFrame, locations: 
         found = index.get_indexer(pd.MultiIndex.from_frame(patterns[["item", "location"]].astype(object)))
         ok = found >= 0
         pattern[found[ok]] = patterns["pattern"].to_numpy(dtype=object)[ok]
-    return SeriesBook(keys=keys, actual=actual, first_month=first, index=index, scale=scale, pattern=pattern)
+    return SeriesBook(keys=keys, actual=actual, first_month=first, index=index, scale=scale, pattern=pattern,
+                      family_of=family_of, region_of=region_of)
 
 
 def _codes(values: pd.Series | np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -158,11 +174,19 @@ class HistoryLedger:
         self._segment_codes, self._segment_names = _codes(segment_values)
         self._pattern_codes, self._pattern_names = _codes(pd.Series(self.book.pattern).replace("", "unknown"))
         self._levels = {}
+        # Nodes are every pair the book or the master can name, so a series without orders has a node too.
+        names = {"family": sorted({*keys["family"], *self.book.family_of.dropna(), UNKNOWN_FAMILY}),
+                 "region": sorted({*keys["region"], *self.book.region_of.dropna(), UNKNOWN_REGION}),
+                 "location": sorted({*keys["location"], *self.book.region_of.index}), "all": ["all"]}
         for level, (item_side, location_side) in UPPER_LEVELS.items():
+            uniques = pd.MultiIndex.from_product([names[item_side], names[location_side]])
             left = keys[item_side] if item_side != "all" else pd.Series("all", index=keys.index)
             right = keys[location_side] if location_side != "all" else pd.Series("all", index=keys.index)
-            codes, uniques = pd.MultiIndex.from_arrays([left.astype(object), right.astype(object)]).factorize()
+            codes = uniques.get_indexer(pd.MultiIndex.from_arrays([left.astype(object), right.astype(object)]))
             self._levels[level] = (codes.astype(np.int64), uniques)
+        self._known_locations, self._known_at = self.book.known_at_location()
+        self._month_known = np.isfinite(self.book.actual).any(axis=0) if n else \
+            np.zeros(self.book.actual.shape[1], dtype=bool)
         self._now = periods.month_index(self.cycle)
 
     # -- one past cycle -------------------------------------------------------------------
@@ -212,7 +236,9 @@ class HistoryLedger:
         sid = book.index.get_indexer(pd.MultiIndex.from_frame(frame[["item", "location"]].astype(object)))
         month = month_indexes_factorized(frame["period"])
         lag = month - c_index
-        keep = (sid >= 0) & (month <= self._now) & (lag >= 1) & (month >= book.first_month)
+        in_window = (month <= self._now) & (lag >= 1) & (month >= book.first_month)
+        unordered = self._unordered_cells(frame, month, in_window & (sid < 0))
+        keep = (sid >= 0) & in_window
         sid, month, lag = sid[keep], month[keep], lag[keep]
         forecast = frame["quantity"].to_numpy(float)[keep]
         actual = book.actual[sid, month - book.first_month]
@@ -220,6 +246,7 @@ class HistoryLedger:
         sid, month, lag, forecast, actual = sid[scored], month[scored], lag[scored], forecast[scored], actual[scored]
         source = frame["source"].map(self._source_code).to_numpy()[keep][scored].astype(np.int64)
         if not len(sid):
+            self._add_nodes(name, source, sid, month, forecast, actual, unordered)
             return
         error = actual - forecast
         bucket = np.searchsorted([first for _, first, _ in DEFAULT_LAG_BUCKETS], lag, side="right") - 1
@@ -239,14 +266,7 @@ class HistoryLedger:
         size = self._cell_acc[0].size
         for k, values in enumerate((error, np.abs(error), None)):
             self._cell_acc[k] += np.bincount(flat, weights=values, minlength=size).reshape(self._cell_acc[k].shape)
-        for level, (codes, _) in self._levels.items():
-            node = codes[sid]
-            summed = pd.DataFrame({"source": source, "node": node, "month": month, "forecast": forecast,
-                                   "actual": actual}).groupby(["source", "node", "month"], sort=True)[
-                ["forecast", "actual"]].sum().reset_index()
-            summed["level"] = level
-            summed["cycle"] = name
-            self._nodes.append(summed)
+        self._add_nodes(name, source, sid, month, forecast, actual, unordered)
         for band_source in BAND_SOURCES:
             code = self._source_code.get(band_source)
             if code is None:
@@ -264,6 +284,51 @@ class HistoryLedger:
         if self.keep_cells:
             self._cells.append(pd.DataFrame({"source": source, "sid": sid, "cycle": name, "month": month, "lag": lag,
                                              "forecast": forecast, "actual": actual}))
+
+    def _add_nodes(self, name, source, sid, month, forecast, actual, unordered) -> None:
+        """Each upper level's group totals of forecast and orders, per source and month."""
+        for level, (codes, _) in self._levels.items():
+            node = codes[sid]
+            cells = pd.DataFrame({"source": source, "node": node, "month": month, "forecast": forecast,
+                                  "actual": actual})
+            if unordered is not None:
+                cells = pd.concat([cells, unordered.assign(node=self._node_codes(level, unordered))[cells.columns]],
+                                  ignore_index=True)
+            summed = cells.groupby(["source", "node", "month"], sort=True)[["forecast", "actual"]].sum().reset_index()
+            summed["level"] = level
+            summed["cycle"] = name
+            self._nodes.append(summed)
+
+    def _unordered_cells(self, frame: pd.DataFrame, month: np.ndarray, outside: np.ndarray) -> pd.DataFrame | None:
+        """Forecasts of series that never had an order, scored at zero in group totals (months whose orders are known).
+
+        Such a series is not scored on its own (:func:`consensus.methods.accuracy.forecast_errors`), but what a
+        source forecast for it is part of the group total it forecast: a launch that never sold is an error of
+        its family's number.
+        """
+        if not outside.any():
+            return None
+        rows = frame[outside]
+        j = month[outside] - self.book.first_month
+        at = self._known_locations.get_indexer(rows["location"].astype(object))
+        known = np.where(at >= 0, self._known_at[np.maximum(at, 0), j], self._month_known[j])
+        known &= np.isfinite(rows["quantity"].to_numpy(float))
+        if not known.any():
+            return None
+        rows = rows[known]
+        return pd.DataFrame({"source": rows["source"].map(self._source_code).to_numpy().astype(np.int64),
+                             "item": rows["item"].to_numpy(object), "location": rows["location"].to_numpy(object),
+                             "month": month[outside][known], "forecast": rows["quantity"].to_numpy(float),
+                             "actual": 0.0})
+
+    def _node_codes(self, level: str, cells: pd.DataFrame) -> np.ndarray:
+        item_side, location_side = UPPER_LEVELS[level]
+        family = cells["item"].map(self.book.family_of).fillna(UNKNOWN_FAMILY)
+        region = cells["location"].map(self.book.region_of).fillna(UNKNOWN_REGION)
+        sides = {"family": family, "region": region, "location": cells["location"],
+                 "all": pd.Series("all", index=cells.index)}
+        pairs = pd.MultiIndex.from_arrays([sides[item_side].astype(object), sides[location_side].astype(object)])
+        return self._levels[level][1].get_indexer(pairs).astype(np.int64)
 
     def _band_table(self) -> tuple[pd.DataFrame, str]:
         """Quantiles of the plan's own past relative errors by lag bucket (with the statistical source's while short).

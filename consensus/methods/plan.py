@@ -64,7 +64,7 @@ from consensus.store.columnar import digest_of, frame_digest, pack_frames, unpac
 from consensus.vocabulary import combined_sources, scored_sources
 
 #: Bump when any step changes the numbers, so cached parts made by older code are never read.
-METHOD_VERSION = "2026.12.2"
+METHOD_VERSION = "2026.12.3"
 #: The published plan and its bands are stated in thousandths of a unit.
 PLAN_DECIMALS = 3
 #: Fixed groups of families the statistical fits are spread over (independent of the number of processes).

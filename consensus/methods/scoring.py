@@ -76,7 +76,7 @@ def _upper_levels(summary: HistorySummary, *, items, locations, actuals) -> tupl
     group_rows, pooled_rows = [], []
     if nodes.empty:
         return (pd.DataFrame(columns=["level", "source", "lag_bucket", "node_item", "node_location",
-                                      *MEASURE_COLUMNS]),
+                                      *MEASURE_COLUMNS, "sum_actual"]),
                 pd.DataFrame(columns=["level", "source", "lag_bucket", *MEASURE_COLUMNS]))
     for level, frame in nodes.groupby("level", sort=False):
         e = frame["actual"].to_numpy(float) - frame["forecast"].to_numpy(float)
@@ -97,6 +97,7 @@ def _upper_levels(summary: HistorySummary, *, items, locations, actuals) -> tupl
                                               "sum_ape", "sum_scaled", "n_scaled"]].sum()
         groups = _measures(sums).reset_index()
         flat = sums.reset_index()
+        groups["sum_actual"] = flat["sum_actual"].to_numpy()  # so pooling groups never has to recover it
         groups["mase"] = np.where(flat["n_scaled"] > 0, flat["sum_scaled"] / flat["n_scaled"].where(
             flat["n_scaled"] > 0, 1), np.nan)
         group_rows.append(groups.assign(level=level))
@@ -111,7 +112,7 @@ def _upper_levels(summary: HistorySummary, *, items, locations, actuals) -> tupl
         pooled["ts_flag"] = np.abs(pooled["tracking_signal"]) > TRACKING_SIGNAL_LIMIT
         pooled_rows.append(pooled.assign(level=level))
     groups = pd.concat(group_rows, ignore_index=True)[["level", "source", "lag_bucket", "node_item", "node_location",
-                                                        *MEASURE_COLUMNS]]
+                                                        *MEASURE_COLUMNS, "sum_actual"]]
     pooled = pd.concat(pooled_rows, ignore_index=True)[["level", "source", "lag_bucket", *MEASURE_COLUMNS]]
     return groups, pooled
 

@@ -4,9 +4,9 @@ Everything here reads what a run stored (the scorecard rows of
 ``accuracy_groups`` and the ``weights`` part) and measures nothing again.
 
 Pooling the groups a sales lead answers for (e.g. every family of region
-NORTH) uses the scorecard's own sums, recovered from each group's row:
-Σ|e| = MAD·n, Σe = bias·n, Σa = 100·Σ|e| / WAPE (or 100·Σe / bias % when
-WAPE is 0), so that
+NORTH) uses the scorecard's own sums: Σ|e| = MAD·n, Σe = bias·n and Σa as
+stored (``sum_actual``; for a run stored before that column, recovered as
+100·Σ|e| / WAPE, or 100·Σe / bias % when WAPE is 0), so that
 
 * WAPE = 100 · Σ|e| / Σa and bias % = 100 · Σe / Σa over every scored
   forecast of the groups (common practice; e = actual − forecast, so a
@@ -15,9 +15,10 @@ WAPE is 0), so that
   (Σe / MAD per group, Brown 1959), as :mod:`consensus.methods.scoring` pools
   groups, since one running sum over several groups grows with their number.
 
-A group whose forecasts were all exactly right has MAD = bias = 0 and its
-orders cannot be recovered from the row; it adds no error and is left out of
-the denominators (``n_unrecovered`` counts such groups).
+In such an older run, a group whose forecasts were all exactly right has
+MAD = bias = 0 and its orders cannot be recovered from the row; it adds no
+error and is left out of the denominators (``n_unrecovered`` counts such
+groups).
 """
 
 from __future__ import annotations
@@ -79,6 +80,9 @@ def pool_groups(groups: pd.DataFrame) -> pd.DataFrame:
         from_wape = np.where(np.isfinite(wape) & (wape > 0), 100.0 * sum_abs / wape, np.nan)
         from_bias = np.where(np.isfinite(bias_pct) & (bias_pct != 0), 100.0 * sum_err / bias_pct, np.nan)
     sum_actual = np.where(np.isfinite(from_wape), from_wape, from_bias)
+    if "sum_actual" in groups:
+        stored = groups["sum_actual"].to_numpy(float)
+        sum_actual = np.where(np.isfinite(stored), stored, sum_actual)
     known = np.isfinite(sum_actual)
     parts = pd.DataFrame({"lag_bucket": groups["lag_bucket"].astype(str).to_numpy(), "n": n, "n_groups": 1,
                           "n_unrecovered": (~known).astype(int), "sum_abs": np.where(known, sum_abs, 0.0),
