@@ -16,6 +16,7 @@ Run:  python bench/bench_amplification.py
 
 from __future__ import annotations
 
+import argparse
 import sys
 import time
 import tracemalloc
@@ -98,6 +99,8 @@ def large_input(n_items: int = 2500, n_cycles: int = 36, horizon: int = 18, seed
 
 
 def main() -> None:
+    argparse.ArgumentParser(description=__doc__.splitlines()[0],
+                            formatter_class=argparse.RawDescriptionHelpFormatter).parse_args()
     pd.set_option("display.width", 200)
     pd.set_option("display.max_colwidth", 200)
     print("1. Demo DCs (12 cycles of submitted forecasts, L = 1, p = 12, flag at 1.5 × the bound):")

@@ -1,7 +1,7 @@
 """Backtest on the sample company: the consensus against every single source at every level, and its bands.
 
 The sample company's inputs are loaded once into a store (intake and the
-statistical backcast, as ``consensus demo`` does, without the pack).  Then
+statistical forecasts of past cycles, as ``consensus demo`` does, without the pack).  Then
 each RunSpec asked for replays the 12 past cycles in order straight through
 :func:`consensus.methods.plan.compute_plan`, no store in between: each
 cycle's result is fed to the later cycles as its published plan
@@ -56,7 +56,7 @@ from consensus.store import frames  # noqa: E402
 from consensus.store.db import get_engine, session_scope  # noqa: E402
 from consensus.store.models import Setting  # noqa: E402
 from consensus.vocabulary import combined_sources  # noqa: E402
-from consensus.workflow.backcast import open_past_cycles  # noqa: E402
+from consensus.workflow.past_cycles import open_past_cycles  # noqa: E402
 from consensus.workflow.cycles import open_cycle  # noqa: E402
 from consensus.workflow.inputs import PUBLISHED_CELL_COLUMNS, load_plan_inputs  # noqa: E402
 
@@ -70,7 +70,7 @@ COVERAGE_TOLERANCE = 0.05
 
 
 def prepare_store(db_file: Path) -> tuple[list[str], str]:
-    """The sample inputs loaded and backcast into ``db_file``, no run yet; returns the past cycles' names and url."""
+    """The sample inputs loaded, with past cycles opened, into ``db_file``, no run yet; returns the past cycles' names and url."""
     inputs = sample_inputs_dir()
     manifest = json.loads((inputs / "manifest.json").read_text(encoding="utf-8"))
     url = f"sqlite:///{db_file}"
@@ -111,17 +111,17 @@ def prepare_store(db_file: Path) -> tuple[list[str], str]:
 
 
 class MemoryCache:
-    """A :class:`consensus.methods.plan.Cache` in a dict, shared by every spec of one backtest."""
+    """A :class:`consensus.methods.plan.Cache` in a dict (packed bytes, as the store keeps them), shared by every
+    spec of one backtest."""
 
     def __init__(self):
-        self.entries: dict[str, dict[str, pd.DataFrame]] = {}
+        self.entries: dict[str, bytes] = {}
 
-    def get(self, key):
-        found = self.entries.get(key)
-        return None if found is None else {name: frame.copy() for name, frame in found.items()}
+    def get(self, key: str) -> bytes | None:
+        return self.entries.get(key)
 
-    def put(self, key, *, kind, cycle, frames):
-        self.entries[key] = {name: frame.copy() for name, frame in frames.items()}
+    def put(self, key: str, *, kind: str, cycle: str, content: bytes) -> None:
+        self.entries[key] = content
 
 
 def load_cycles(url: str, cycles: list[str]) -> dict:

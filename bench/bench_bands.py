@@ -1,7 +1,9 @@
 """Error bands by level on the demo: the run's stored bands, and bands read off each level's own errors.
 
-The demo store is prepared and its 12 past cycles run and published in order
-with the default reconciliation, as bench/bench_backtest.py does.  Then:
+The sample company's 12 past cycles are replayed in order with the default
+run specification, each plan fed to later cycles as published, exactly as
+bench/bench_backtest.py does (its prepare_store, load_cycles and replay).
+Then:
 
 1. The stored item × location bands (rule "relative", one relative-error
    distribution per lag bucket) scored against the order history that came
@@ -36,9 +38,11 @@ import pandas as pd
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-from bench_backtest import prepare_store, published_lines, run_method  # noqa: E402
+from bench_backtest import MemoryCache, load_cycles, prepare_store, replay  # noqa: E402
 from consensus.methods import accuracy, intervals  # noqa: E402
-from consensus.workflow.reconciliation import DEFAULT_RECONCILIATION  # noqa: E402
+from consensus.methods.plan import RunSpec  # noqa: E402
+from consensus.store import frames  # noqa: E402
+from consensus.store.db import session_scope  # noqa: E402
 
 NOMINALS = (0.8, 0.95)
 #: (rule, few_errors) settings compared; the first is what the run uses today.
@@ -110,19 +114,28 @@ def size_table(errors: pd.DataFrame) -> pd.DataFrame:
     return pd.DataFrame(rows)
 
 
+def published_lines(results: dict) -> pd.DataFrame:
+    """[cycle, item, location, period, consensus, lower_80 … upper_95] of every replayed cycle's plan."""
+    keep = ["item", "location", "period", "consensus", "lower_80", "upper_80", "lower_95", "upper_95"]
+    return pd.concat([result["parts"]["cells"][keep].assign(cycle=name) for name, result in results.items()],
+                     ignore_index=True)
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--workdir", type=Path, default=Path("/tmp/consensus_bands"))
     args = parser.parse_args()
     args.workdir.mkdir(parents=True, exist_ok=True)
     started = time.perf_counter()
-    base = args.workdir / "prepared.db"
-    cycles = prepare_store(base)
-    target = str(args.workdir / f"bands_{DEFAULT_RECONCILIATION}.db")
-    run_method(str(base), target, DEFAULT_RECONCILIATION, cycles)
-    lines, actuals, items, locations = published_lines(target)
-    print(f"demo prepared and {len(cycles)} cycles run and published in {time.perf_counter() - started:.0f} s "
-          f"({DEFAULT_RECONCILIATION})\n")
+    cycles, url = prepare_store(args.workdir / "prepared.db")
+    results = replay(load_cycles(url, cycles), RunSpec(), MemoryCache())
+    lines = published_lines(results)
+    with session_scope(url, write=False) as session:
+        actuals = frames.load_actuals(session)
+        items, locations = frames.load_items(session), frames.load_locations(session)
+    actuals = actuals[actuals["quantity"].notna()]
+    print(f"sample company prepared and {len(cycles)} cycles replayed in {time.perf_counter() - started:.0f} s "
+          "(default run specification)\n")
 
     errors = accuracy.forecast_errors(lines.rename(columns={"consensus": "quantity"}).assign(source="consensus"),
                                       actuals)

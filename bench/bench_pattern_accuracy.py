@@ -16,6 +16,7 @@ Run:  python bench/bench_pattern_accuracy.py
 
 from __future__ import annotations
 
+import argparse
 import sys
 import time
 from pathlib import Path
@@ -71,6 +72,8 @@ def timing(n_series: int = 20_000, seed: int = 3) -> tuple[int, float]:
 
 
 def main() -> None:
+    argparse.ArgumentParser(description=__doc__.splitlines()[0],
+                            formatter_class=argparse.RawDescriptionHelpFormatter).parse_args()
     print("DC forecasts of the demo by demand pattern (WAPE and bias in %, MASE against the one-step naive):")
     print(demo_table().round(2).to_string(index=False))
     n, seconds, reference = timing()

@@ -15,6 +15,7 @@ Run:  python bench/bench_reconcile.py
 
 from __future__ import annotations
 
+import argparse
 import resource
 import sys
 import time
@@ -57,6 +58,8 @@ def build_problem():
 
 
 def main() -> None:
+    argparse.ArgumentParser(description=__doc__.splitlines()[0],
+                            formatter_class=argparse.RawDescriptionHelpFormatter).parse_args()
     S, nodes, base, residuals, history, truth, build_seconds = build_problem()
     print(f"hierarchy: {S.shape[1]:,} bottom series, {S.shape[0]:,} nodes, {HORIZON_MONTHS} months; "
           f"summing matrix built in {build_seconds:.2f} s")
