@@ -624,6 +624,11 @@ def verify(ctx: typer.Context, cycle: str = CycleOpt, revision: Optional[int] = 
         report = verify_cycle(cycle, revision=revision, url=_url(ctx))
     except ConsensusError as e:
         _fail(e)
+    _print_report(report)
+
+
+def _print_report(report) -> None:
+    """A check's lines, and exit code 1 when it found a difference or damage (verify and store check)."""
     for line in report.lines():
         typer.echo(line)
     if not report.ok:
@@ -659,10 +664,7 @@ def store_check(ctx: typer.Context) -> None:
         report = check_store(url=_url(ctx))
     except ConsensusError as e:
         _fail(e)
-    for line in report.lines():
-        typer.echo(line)
-    if not report.ok:
-        raise typer.Exit(1)
+    _print_report(report)
 
 
 @settings_app.command("list")

@@ -144,12 +144,17 @@ def _write_xlsx(path: Path, layout: pd.DataFrame, meta: dict[str, str]) -> None:
             for (cell,) in sheet.iter_rows(min_row=2, max_row=len(layout) + 1, min_col=position, max_col=position):
                 cell.font = grey
 
+    _write_meta_sheet(workbook, meta)
+    save_workbook(workbook, path)
+
+
+def _write_meta_sheet(workbook, meta: dict) -> None:
+    """The hidden sheet that tells submit the file's source, cycle and scope, so a returned workbook needs no flags."""
     hidden = workbook.create_sheet(META_SHEET)
     hidden.append(["key", "value"])
     for key, value in meta.items():
         hidden.append([key, value])
     hidden.sheet_state = "hidden"
-    save_workbook(workbook, path)
 
 
 def _cell_rows(layout: pd.DataFrame):
@@ -376,11 +381,7 @@ def _write_wide_xlsx(path: Path, book: WideTemplate, grid: pd.DataFrame, meta: d
     _protect(sheet)
 
     _write_track_record(workbook.create_sheet(TRACK_RECORD_SHEET), book)
-    hidden = workbook.create_sheet(META_SHEET)
-    hidden.append(["key", "value"])
-    for key, value in meta.items():
-        hidden.append([key, value])
-    hidden.sheet_state = "hidden"
+    _write_meta_sheet(workbook, meta)
     save_workbook(workbook, path)
 
 
