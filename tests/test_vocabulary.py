@@ -514,3 +514,13 @@ def test_a_source_missing_from_the_registry_still_prints_in_words():
     reader = read_page(html)
     assert "Field sales" in [e.strip() for e in reader.legend]
     assert "field_sales" not in " ".join(reader.text)
+
+
+@pytest.mark.slow
+def test_the_demo_words_its_decisions_as_the_pack_does(demo_dir):
+    # The terminal said "set +240.0" while the pack said "set to 240": one wording, from describe_change.
+    said = (demo_dir.parent / "stdout.txt").read_text(encoding="utf-8")
+    decisions = [line for line in said.splitlines() if line.startswith("decision:")]
+    assert decisions and all(" by " in line for line in decisions)
+    assert any("set to 240" in line for line in decisions) and any("raised by 8%" in line for line in decisions)
+    assert not any("set +" in line or "pct +" in line for line in decisions)

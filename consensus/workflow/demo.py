@@ -18,6 +18,7 @@ from consensus.workflow.cycles import open_cycle
 from consensus.workflow.decisions import record_decision
 from consensus.workflow.meeting_pack import write_pack
 from consensus.workflow.publish import export_components, export_consensus, publish_cycle
+from consensus.vocabulary import describe_change
 from consensus.workflow.run import run_cycle
 
 
@@ -89,8 +90,8 @@ def run_demo(workdir: Path | str, *, inputs: Path | None = None,
     say(summary.line())
     for decision in manifest.get("decisions", []):
         record_decision(current, url=url, **decision)
-        say(f"decision: {decision['kind']} {decision['amount']:+,} on "
-            f"{decision.get('family') or decision.get('item')} {decision['period']} by {decision['author']}")
+        say(f"decision: {decision.get('family') or decision.get('item')} {decision['period']} "
+            f"{describe_change(decision['kind'], decision['amount'])} by {decision['author']}")
     if manifest.get("decisions"):
         summary = run_cycle(current, url=url, progress=tell)
         say("after the meeting's decisions: " + summary.line())
