@@ -653,3 +653,15 @@ def test_a_pack_that_fails_to_render_leaves_the_previous_files(draft_inputs, tmp
         render_pack(draft_inputs, pdf_path=pdf, html_path=html, workers=1)
     assert pdf.read_bytes() == b"%PDF-1.7 previous" and html.read_text(encoding="utf-8") == "previous"
     assert sorted(p.name for p in tmp_path.iterdir()) == ["pack.html", "pack.pdf"]
+
+
+def test_end_labels_stay_on_the_chart_and_apart():
+    # Common practice for direct labelling: labels keep the lines' order, do not overlap, and stay on the chart.
+    # The scorecard chart had six sources ending near its top; pushing each label up ran the top ones off it.
+    from consensus.pack.charts import spread_labels
+
+    values = [21.6, 22.3, 23.7, 24.9, 24.9, 25.6]
+    placed = spread_labels(values, gap=2.1, floor=0.0, ceiling=28.2)
+    assert max(placed) <= 28.2 and min(placed) >= 0.0
+    assert all(b - a >= 2.1 - 1e-9 for a, b in zip(placed, placed[1:]))
+    assert spread_labels([5.0, 15.0], gap=2.0, floor=0.0, ceiling=30.0) == [5.0, 15.0]  # room: labels at their lines

@@ -313,6 +313,18 @@ def _legend_order(labels: list[str]) -> list[int]:
     return ranked + [i for i, name in enumerate(labels) if name not in first]
 
 
+def spread_labels(values: Sequence[float], *, gap: float, floor: float, ceiling: float) -> list[float]:
+    """Heights for end-of-line labels of ascending ``values``: each at least ``gap`` above the one below it, and the
+    stack kept inside [floor, ceiling] (pushed down from the top when pushing up would run it off the chart)."""
+    placed: list[float] = []
+    for value in values:
+        placed.append(max(value, placed[-1] + gap) if placed else value)
+    for i in range(len(placed) - 1, -1, -1):  # from the top down: nothing above the ceiling
+        limit = ceiling if i == len(placed) - 1 else placed[i + 1] - gap
+        placed[i] = max(min(placed[i], limit), floor)
+    return placed
+
+
 def draw_accuracy_history(
     *, cycles: Sequence[str], wape_by_source: Mapping[str, np.ndarray], salt: str = "history"
 ) -> str:
@@ -333,11 +345,9 @@ def draw_accuracy_history(
         top = float(np.nanmax(finite)) if np.isfinite(finite).any() else 1.0
         ax.set_ylim(0, top * 1.1)
         # Direct labels at the right end, pushed apart so close lines stay readable.
-        gap = top * 1.1 * 0.075
-        placed: list[float] = []
-        for value, label, colour in sorted(ends):
-            y = max(value, placed[-1] + gap) if placed else value
-            placed.append(y)
+        ends.sort()
+        placed = spread_labels([value for value, _, _ in ends], gap=top * 1.1 * 0.075, floor=0.0, ceiling=top * 1.1)
+        for (value, label, colour), y in zip(ends, placed):
             ax.annotate(f"{label} {value:.1f}%", (x[-1], value), xytext=(x[-1] + 0.35, y), textcoords="data",
                         va="center", fontsize=6.8, color=colour, annotation_clip=False)
         _style_axes(ax, y_label="WAPE, %")
