@@ -120,7 +120,7 @@ class MemoryCache:
     def get(self, key: str) -> bytes | None:
         return self.entries.get(key)
 
-    def put(self, key: str, *, kind: str, cycle: str, content: bytes) -> None:
+    def put(self, key: str, *, kind: str, cycle: str, content: bytes, durable: bool = True) -> None:
         self.entries[key] = content
 
 

@@ -109,3 +109,15 @@ def test_uplift_value_added_on_affected_cells():
     assert gains.loc["all", "wape_without"] == pytest.approx(100 * 35 / 225)
     assert gains.loc["all", "wape_with"] == pytest.approx(100 * 35 / 225)
     assert gains.loc["all", "wape_gain"] == pytest.approx(0.0)
+
+
+def test_numbers_without_the_audit_are_the_numbers_with_it():
+    """Skipping the audit's notes (a past cycle being scored) must not move a number (internal consistency)."""
+    events = events_frame([
+        ("a", "A", None, "L2", None, "2026-02", "2026-02", None, 30.0, ""),
+        ("c", None, "F1", None, None, "2026-02", "2026-03", 15.0, None, "spring"),
+    ])
+    with_audit, audit = apply_event_uplifts(stat_frame(), events, items=ITEMS, locations=LOCATIONS)
+    bare, none = apply_event_uplifts(stat_frame(), events, items=ITEMS, locations=LOCATIONS, audit=False)
+    assert none is None and len(audit)
+    pd.testing.assert_frame_equal(with_audit, bare, check_exact=True)

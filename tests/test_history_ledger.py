@@ -65,3 +65,18 @@ def test_a_whole_new_family_gets_its_own_group():
     nodes = ledger.summary().node_errors
     new = nodes[(nodes["level"] == "family") & (nodes["node_item"] == "F9")]
     assert len(new) == 3 and (new["forecast"] == 3.0).all() and (new["actual"] == 0.0).all()
+
+
+def test_the_process_memo_lets_the_least_recently_used_go_beyond_its_limit():
+    """LRU eviction by bytes (common practice for a bounded cache)."""
+    from consensus.store.cache import ProcessMemo
+
+    memo = ProcessMemo(limit_bytes=10)
+    memo.put("a", b"1234")
+    memo.put("b", b"5678")
+    assert memo.get("a") == b"1234"  # a is now the most recently used
+    memo.put("c", b"90ab")  # 12 bytes > 10: b goes
+    assert memo.get("b") is None and memo.get("a") == b"1234" and memo.get("c") == b"90ab"
+    assert memo.size == 8
+    memo.put("big", b"x" * 11)  # larger than the whole memo: not kept, nothing else lost
+    assert memo.get("big") is None and memo.size == 8

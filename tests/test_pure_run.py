@@ -156,6 +156,29 @@ def test_any_number_of_processes_gives_the_same_digits_on_the_sample_company(dem
 
 
 @pytest.mark.slow
+def test_past_cycles_kept_in_the_process_memo_give_the_digits_of_cycles_made_afresh(demo_dir, tmp_path):
+    """A run that finds its past cycles' scoring frames in memory equals one that made them (and found none)."""
+    from consensus.store import cache
+
+    url = _copy(demo_dir, tmp_path, "memo.db")
+    with session_scope(url, write=False) as s:
+        run = latest_run(s, CYCLE)
+    spec = RunSpec.from_dict(run.spec)
+    _, fresh, _ = compute_cycle(CYCLE, url=url, spec=spec, through=run.through_seq, use_cache=False,
+                                require_open=False, jobs=1)
+    cache.MEMO.entries.clear()
+    cache.MEMO.size = 0
+    with session_scope(url) as s:  # no kept history summary: the past cycles must be scored again
+        s.execute(text("DELETE FROM cacheentry WHERE kind = 'history'"))
+    loaded, _, _ = compute_cycle(CYCLE, url=url, spec=spec, through=run.through_seq, require_open=False, jobs=1)
+    assert len(cache.MEMO.entries) == len(loaded.inputs.past) > 0  # one frame per past cycle, kept in memory
+    _, memo, _ = compute_cycle(CYCLE, url=url, spec=spec, through=run.through_seq, require_open=False, jobs=1)
+    for name in fresh.parts:
+        pd.testing.assert_frame_equal(fresh.parts[name], memo.parts[name], check_exact=True, obj=name)
+    assert fresh.notes["warnings"] == memo.notes["warnings"]
+
+
+@pytest.mark.slow
 def test_any_number_of_processes_gives_the_same_digits_on_ten_thousand_series(tmp_path):
     """An invented store of 10,000 item × location series (bench/scale_store.py), run with 1 and 4 processes."""
     import importlib.util

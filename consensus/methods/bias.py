@@ -108,14 +108,20 @@ def segment_errors(cell_sums: pd.DataFrame, *, cycle: str, window_cycles: int, s
     (one row per source, cycle, lag and segment; a lag of a cycle is one
     month).  Only cycles C − window … C − 1 are kept.
     """
-    columns = ["segment", "source", "cycle", "lag", "lag_bucket", "forecast", "actual"]
     if cell_sums is None or cell_sums.empty:
-        return pd.DataFrame(columns=columns)
+        return _segment_totals(pd.DataFrame(columns=["segment", "source", "cycle", "lag", "sum_forecast",
+                                                     "sum_actual"]), sources, by=[])
     now = month_index(cycle)
-    frame = cell_sums[cell_sums["source"].isin([str(s) for s in sources])]
-    index = month_indexes_factorized(frame["cycle"])
-    frame = frame[(index >= now - window_cycles) & (index <= now - 1)]
-    out = frame.groupby(["segment", "source", "cycle", "lag"], sort=True)[["sum_forecast", "sum_actual"]].sum()
+    index = month_indexes_factorized(cell_sums["cycle"])
+    return _segment_totals(cell_sums[(index >= now - window_cycles) & (index <= now - 1)], sources, by=[])
+
+
+def _segment_totals(frame: pd.DataFrame, sources, *, by: list[str]) -> pd.DataFrame:
+    columns = [*by, "segment", "source", "cycle", "lag", "lag_bucket", "forecast", "actual"]
+    frame = frame[frame["source"].isin([str(s) for s in sources])]
+    if frame.empty:
+        return pd.DataFrame(columns=columns)
+    out = frame.groupby([*by, "segment", "source", "cycle", "lag"], sort=True)[["sum_forecast", "sum_actual"]].sum()
     out = out.reset_index().rename(columns={"sum_forecast": "forecast", "sum_actual": "actual"})
     out["lag_bucket"] = lag_bucket_labels(out["lag"].to_numpy())
     return out[columns]
@@ -135,52 +141,68 @@ def _signal(frame: pd.DataFrame, keys: list[str]) -> pd.DataFrame:
     return out.reset_index()
 
 
-def _recent_agreement(errors: pd.DataFrame, cycles: int) -> pd.DataFrame:
+def _recent_agreement(errors: pd.DataFrame, cycles: int, by: list[str]) -> pd.DataFrame:
     """Per (segment, source): the sign every one of the newest ``cycles`` cycles' summed errors shares (0 if not)."""
+    keys = [*by, "segment", "source"]
     if errors.empty:
-        return pd.DataFrame(columns=["segment", "source", "recent_sign"])
+        return pd.DataFrame(columns=[*keys, "recent_sign"])
     per_cycle = errors.assign(error=errors["actual"] - errors["forecast"]).groupby(
-        ["segment", "source", "cycle"], sort=True)["error"].sum().reset_index()
-    newest = per_cycle.groupby(["segment", "source"], sort=False).tail(cycles)
+        [*keys, "cycle"], sort=True)["error"].sum().reset_index()
+    newest = per_cycle.groupby(keys, sort=False).tail(cycles)
     signs = np.sign(newest["error"])
-    grouped = signs.groupby([newest["segment"], newest["source"]])
+    grouped = signs.groupby([newest[k] for k in keys])
     shared = (grouped.min() == grouped.max()) & (grouped.size() >= cycles)
     out = (grouped.first() * shared).rename("recent_sign").reset_index()
     return out
 
 
 def persistent_bias(cell_sums: pd.DataFrame, *, cycle: str, window_cycles: int, segments, sources,
-                    spec: BiasSpec) -> pd.DataFrame:
+                    spec: BiasSpec, describe: bool = True) -> pd.DataFrame:
     """The correction factor of every (segment, lag bucket, source): 1 unless the bias is persistent.
 
     Formulas in the module docstring.  Every segment in ``segments`` × lag
-    bucket × source gets a row; ``note`` says in words what was found.
+    bucket × source gets a row; ``note`` says in words what was found (left
+    empty with ``describe=False``, for a caller that reads only the factors).
     Returns :data:`BIAS_COLUMNS`.
     """
     if not isinstance(spec, BiasSpec):
         raise InvalidSpec("spec must be a BiasSpec")
     sources = sorted(dict.fromkeys(str(s) for s in sources))
-    buckets = [label for label, _, _ in DEFAULT_LAG_BUCKETS]
     errors = segment_errors(cell_sums, cycle=cycle, window_cycles=min(window_cycles, spec.window_cycles),
                             sources=sources)
     segments = sorted(set(str(s) for s in segments) | set(errors["segment"].astype(str)))
+    table = _judge(errors, pd.DataFrame(index=[0]), segments, sources, spec, by=[])
+    table["note"] = _describe(table, spec, table["_own"].to_numpy()) if describe else ""
+    return table[BIAS_COLUMNS].sort_values(["segment", "lag_bucket", "source"], kind="mergesort",
+                                           ignore_index=True)
+
+
+def _judge(errors: pd.DataFrame, cases: pd.DataFrame, segments: list[str], sources: list[str], spec: BiasSpec, *,
+           by: list[str]) -> pd.DataFrame:
+    """The bias table of every case (a row of ``cases``, keyed by ``by``) × segment × lag bucket × source.
+
+    ``errors``: :func:`segment_errors` rows, with the ``by`` columns saying which case each belongs to; one
+    case and ``by=[]`` is :func:`persistent_bias`, one case per past cycle is :func:`factors_as_known`.
+    """
+    buckets = [label for label, _, _ in DEFAULT_LAG_BUCKETS]
     grid = pd.MultiIndex.from_product([segments, buckets, sources], names=["segment", "lag_bucket", "source"]) \
         .to_frame(index=False)
-    pooled = _signal(errors, ["segment", "source"]) if len(errors) else pd.DataFrame(
-        columns=["segment", "source", "tracking_signal", "n_errors", "n_cycles", "ratio"])
-    by_bucket = _signal(errors, ["segment", "lag_bucket", "source"]) if len(errors) else pd.DataFrame(
-        columns=["segment", "lag_bucket", "source", "n_cycles", "ratio"])
-    table = grid.merge(pooled[["segment", "source", "tracking_signal", "n_errors", "n_cycles", "ratio"]],
-                       on=["segment", "source"], how="left")
-    table = table.merge(by_bucket[["segment", "lag_bucket", "source", "n_cycles", "ratio"]].rename(
-        columns={"n_cycles": "bucket_cycles", "ratio": "bucket_ratio"}), on=["segment", "lag_bucket", "source"],
+    grid = cases[by].merge(grid, how="cross") if by else grid
+    pooled = _signal(errors, [*by, "segment", "source"]) if len(errors) else pd.DataFrame(
+        columns=[*by, "segment", "source", "tracking_signal", "n_errors", "n_cycles", "ratio"])
+    by_bucket = _signal(errors, [*by, "segment", "lag_bucket", "source"]) if len(errors) else pd.DataFrame(
+        columns=[*by, "segment", "lag_bucket", "source", "n_cycles", "ratio"])
+    table = grid.merge(pooled[[*by, "segment", "source", "tracking_signal", "n_errors", "n_cycles", "ratio"]],
+                       on=[*by, "segment", "source"], how="left")
+    table = table.merge(by_bucket[[*by, "segment", "lag_bucket", "source", "n_cycles", "ratio"]].rename(
+        columns={"n_cycles": "bucket_cycles", "ratio": "bucket_ratio"}), on=[*by, "segment", "lag_bucket", "source"],
         how="left")
     for column in ("n_errors", "n_cycles", "bucket_cycles"):
         table[column] = table[column].fillna(0).astype(int)
     table["tracking_signal"] = table["tracking_signal"].astype(float).fillna(0.0)
     enough = table["n_cycles"] >= spec.min_cycles
-    table = table.merge(_recent_agreement(errors, spec.min_cycles), on=["segment", "source"], how="left")
-    agrees = np.sign(table["recent_sign"].fillna(0.0)) == np.sign(table["tracking_signal"])
+    table = table.merge(_recent_agreement(errors, spec.min_cycles, by), on=[*by, "segment", "source"], how="left")
+    agrees = np.sign(table["recent_sign"].astype(float).fillna(0.0)) == np.sign(table["tracking_signal"])
     eligible = table["source"].isin(spec.sources) if spec.sources else True
     table["persistent"] = (spec.mode == "persistent") & enough & agrees & eligible & \
         (table["tracking_signal"].abs() > float(spec.limit))
@@ -193,9 +215,8 @@ def persistent_bias(cell_sums: pd.DataFrame, *, cycle: str, window_cycles: int, 
     table["ratio"] = ratio
     table["psi"] = np.where(table["persistent"], psi, 0.0)
     table["factor"] = np.where(table["persistent"], 1.0 + table["psi"] * (ratio - 1.0), 1.0)
-    table["note"] = _describe(table, spec, own.to_numpy())
-    return table[BIAS_COLUMNS].sort_values(["segment", "lag_bucket", "source"], kind="mergesort",
-                                           ignore_index=True)
+    table["_own"] = own
+    return table
 
 
 def _describe(table: pd.DataFrame, spec: BiasSpec, own: np.ndarray) -> np.ndarray:
@@ -235,26 +256,35 @@ def factors_as_known(cell_sums: pd.DataFrame, *, cycle: str, window_cycles: int,
     """The factor each past cycle of the window would have applied: [cycle, segment, lag_bucket, source, factor].
 
     For past cycle c the bias is judged from the errors known at c (months ≤
-    c), exactly as a run at c would judge it, so the corrected past errors
-    the weights read are out of sample: a correction gets no credit for
-    fitting the very errors it is scored on.
+    c), exactly as a run at c would judge it (:func:`persistent_bias`), so the
+    corrected past errors the weights read are out of sample: a correction
+    gets no credit for fitting the very errors it is scored on.  All past
+    cycles are judged in one pass, each as a case of its own.
     """
     columns = ["cycle", "segment", "lag_bucket", "source", "factor"]
     if cell_sums is None or cell_sums.empty or spec.mode == "off":
         return pd.DataFrame(columns=columns)
     now = month_index(cycle)
-    period = month_indexes_factorized(cell_sums["cycle"]) + cell_sums["lag"].to_numpy(int)
-    known_cycles = sorted(set(cell_sums["cycle"].astype(str)))
-    parts = []
-    for past in known_cycles:
-        index = month_index(past)
-        if not now - window_cycles <= index <= now - 1:
-            continue
-        known = cell_sums[period <= index]
-        table = persistent_bias(known, cycle=past, window_cycles=window_cycles, segments=segments, sources=sources,
-                                spec=spec)
-        parts.append(table.loc[table["persistent"], columns[1:]].assign(cycle=past))
-    return pd.concat(parts, ignore_index=True)[columns] if parts else pd.DataFrame(columns=columns)
+    sources = sorted(dict.fromkeys(str(s) for s in sources))
+    cycle_index = month_indexes_factorized(cell_sums["cycle"])
+    period = cycle_index + cell_sums["lag"].to_numpy(int)
+    past = sorted(c for c in set(cell_sums["cycle"].astype(str)) if now - window_cycles <= month_index(c) <= now - 1)
+    if not past:
+        return pd.DataFrame(columns=columns)
+    reach = min(window_cycles, spec.window_cycles)
+    rows, cases = [], []
+    for name in past:  # one selection per past cycle; the judging below is one vectorised pass
+        index = month_index(name)
+        mine = (period <= index) & (cycle_index >= index - reach) & (cycle_index <= index - 1)
+        rows.append(np.flatnonzero(mine))
+        cases.append(np.full(int(mine.sum()), name, dtype=object))
+    taken = np.concatenate(rows)
+    known = cell_sums.iloc[taken].assign(as_of=np.concatenate(cases))
+    errors = _segment_totals(known, sources, by=["as_of"])
+    every = sorted(set(str(s) for s in segments) | set(errors["segment"].astype(str)))
+    table = _judge(errors, pd.DataFrame({"as_of": past}), every, sources, spec, by=["as_of"])
+    table = table[table["persistent"]].rename(columns={"as_of": "cycle"})
+    return table.sort_values(columns[:4], kind="mergesort")[columns].reset_index(drop=True)
 
 
 def segment_weight_sums(cell_sums: pd.DataFrame, factors: pd.DataFrame | None, *, cycle: str, window_cycles: int,

@@ -179,20 +179,18 @@ def events_in_force(event_lines: pd.DataFrame, submissions: pd.DataFrame) -> pd.
 
 
 def apply_events(stat: pd.DataFrame, cycle_events: pd.DataFrame, *, items: pd.DataFrame,
-                 locations: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame, list[str]]:
+                 locations: pd.DataFrame) -> tuple[pd.DataFrame, list[str]]:
     """[source, item, location, period, quantity] rows of statistical (events applied) and statistical_base.
 
     Only the cells an event can reach (its items or its families' items, in
     the months of any event) are handed to
     :func:`consensus.methods.events.apply_event_uplifts`; every other cell
-    keeps its statistical number.  Returns (frame, audit of each event's
-    uplift per cell, warnings).
+    keeps its statistical number.  Returns (frame, warnings); the per-cell
+    audit of each uplift is :func:`consensus.methods.events.apply_event_uplifts`'s.
     """
     base = stat.assign(source=BASE)
-    audit_columns = ["event", "item", "location", "period", "base", "uplift_units", "note"]
     if cycle_events.empty or stat.empty:
-        return pd.concat([stat.assign(source=STATISTICAL), base], ignore_index=True)[ALIGNED_COLUMNS], \
-            pd.DataFrame(columns=audit_columns), []
+        return pd.concat([stat.assign(source=STATISTICAL), base], ignore_index=True)[ALIGNED_COLUMNS], []
     named_items = set(cycle_events["item"].dropna()) if "item" in cycle_events else set()
     named_families = set(cycle_events["family"].dropna()) if "family" in cycle_events else set()
     reached = set(items.loc[items["family"].isin(named_families), "item"]) | named_items
@@ -202,8 +200,8 @@ def apply_events(stat: pd.DataFrame, cycle_events: pd.DataFrame, *, items: pd.Da
     subset = stat.loc[candidate, ["item", "location", "period", "quantity"]].reset_index(drop=True)
     with warnings_module.catch_warnings(record=True) as caught:
         warnings_module.simplefilter("always")
-        adjusted, audit = events.apply_event_uplifts(subset.assign(lag=0), cycle_events, items=items,
-                                                     locations=locations)
+        adjusted, _ = events.apply_event_uplifts(subset.assign(lag=0), cycle_events, items=items,
+                                                 locations=locations, audit=False)
     positions = np.flatnonzero(candidate)
     where = pd.MultiIndex.from_frame(subset[["item", "location", "period"]].astype(object)).get_indexer(
         pd.MultiIndex.from_frame(adjusted[["item", "location", "period"]].astype(object)))
@@ -211,4 +209,4 @@ def apply_events(stat: pd.DataFrame, cycle_events: pd.DataFrame, *, items: pd.Da
     quantity[positions[where]] = rounded(adjusted["quantity"].to_numpy(dtype=float))
     with_events = stat.assign(source=STATISTICAL, quantity=quantity)
     frame = pd.concat([with_events[ALIGNED_COLUMNS], base[ALIGNED_COLUMNS]], ignore_index=True)
-    return frame, audit, [str(w.message) for w in caught]
+    return frame, [str(w.message) for w in caught]

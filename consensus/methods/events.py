@@ -110,7 +110,8 @@ def apply_event_uplifts(
     *,
     items: pd.DataFrame,
     locations: pd.DataFrame,
-) -> tuple[pd.DataFrame, pd.DataFrame]:
+    audit: bool = True,
+) -> tuple[pd.DataFrame, pd.DataFrame | None]:
     """The statistical forecast with marketing's event uplifts applied, and the audit.
 
     stat: [item, location, period, lag, quantity]; events: [event, item or
@@ -120,7 +121,9 @@ def apply_event_uplifts(
     horizon) and changes nothing.
 
     Returns (adjusted [item, location, period, lag, quantity],
-    audit [event, item, location, period, base, uplift_units, note]).
+    audit [event, item, location, period, base, uplift_units, note]);
+    ``audit=False`` skips writing the audit's notes (None in its place), for
+    a caller that only needs the numbers, such as a past cycle being scored.
     """
     base = stat[["item", "location", "period", "lag", "quantity"]].astype(
         {"item": object, "location": object, "period": object})
@@ -150,6 +153,12 @@ def apply_event_uplifts(
     uplift = np.where(is_units, matched["units"].fillna(0.0) * share,
                       matched["base"] * matched["uplift_pct"].fillna(0.0) / 100.0)
     matched = matched.assign(uplift_units=uplift)
+    uplift_by_cell = matched.groupby(["item", "location", "period"], sort=True)["uplift_units"].sum()
+    adjusted = base.merge(uplift_by_cell.reset_index(), on=["item", "location", "period"], how="left")
+    adjusted["quantity"] = np.maximum(0.0, adjusted["quantity"] + adjusted["uplift_units"].fillna(0.0))
+    adjusted = adjusted[["item", "location", "period", "lag", "quantity"]]
+    if not audit:
+        return adjusted, None
     how = np.where(
         is_units,
         matched["units"].map(lambda u: f"{u:g}") + " units for " + matched["scope"]
@@ -157,12 +166,8 @@ def apply_event_uplifts(
         matched["uplift_pct"].map(lambda p: f"{p:+g}") + " % of the statistical forecast for " + matched["scope"],
     )
     matched["note"] = np.where(matched["note"].astype(str) != "", matched["note"].astype(str) + ": " + how, how)
-    audit = matched.sort_values(["item", "location", "period", "_eid"], kind="mergesort")[audit_columns]
-
-    uplift_by_cell = matched.groupby(["item", "location", "period"], sort=True)["uplift_units"].sum()
-    adjusted = base.merge(uplift_by_cell.reset_index(), on=["item", "location", "period"], how="left")
-    adjusted["quantity"] = np.maximum(0.0, adjusted["quantity"] + adjusted["uplift_units"].fillna(0.0))
-    return adjusted[["item", "location", "period", "lag", "quantity"]], audit.reset_index(drop=True)
+    table = matched.sort_values(["item", "location", "period", "_eid"], kind="mergesort")[audit_columns]
+    return adjusted, table.reset_index(drop=True)
 
 
 def uplift_value_added(errors_with: pd.DataFrame, errors_without: pd.DataFrame) -> pd.DataFrame:

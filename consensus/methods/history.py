@@ -30,6 +30,7 @@ number).
 
 from __future__ import annotations
 
+import copy
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -175,15 +176,24 @@ class HistoryLedger:
         self._pattern_codes, self._pattern_names = _codes(pd.Series(self.book.pattern).replace("", "unknown"))
         self._levels = {}
         # Nodes are every pair the book or the master can name, so a series without orders has a node too.
+        # Each level's nodes get a block of one numbering (offset + code), so every level is summed in one pass.
         names = {"family": sorted({*keys["family"], *self.book.family_of.dropna(), UNKNOWN_FAMILY}),
                  "region": sorted({*keys["region"], *self.book.region_of.dropna(), UNKNOWN_REGION}),
                  "location": sorted({*keys["location"], *self.book.region_of.index}), "all": ["all"]}
+        offset, node_item, node_location, node_level = 0, [], [], []
         for level, (item_side, location_side) in UPPER_LEVELS.items():
             uniques = pd.MultiIndex.from_product([names[item_side], names[location_side]])
             left = keys[item_side] if item_side != "all" else pd.Series("all", index=keys.index)
             right = keys[location_side] if location_side != "all" else pd.Series("all", index=keys.index)
             codes = uniques.get_indexer(pd.MultiIndex.from_arrays([left.astype(object), right.astype(object)]))
-            self._levels[level] = (codes.astype(np.int64), uniques)
+            self._levels[level] = (codes.astype(np.int64), uniques, offset)
+            node_item.append(uniques.get_level_values(0).to_numpy(object))
+            node_location.append(uniques.get_level_values(1).to_numpy(object))
+            node_level.append(np.full(len(uniques), level, dtype=object))
+            offset += len(uniques)
+        self._node_item = np.concatenate(node_item)
+        self._node_location = np.concatenate(node_location)
+        self._node_level = np.concatenate(node_level)
         self._known_locations, self._known_at = self.book.known_at_location()
         self._month_known = np.isfinite(self.book.actual).any(axis=0) if n else \
             np.zeros(self.book.actual.shape[1], dtype=bool)
@@ -195,9 +205,15 @@ class HistoryLedger:
               "_coverage", "_dc")
 
     def fresh(self) -> "HistoryLedger":
-        """An empty ledger for the same series and settings (a worker fills one per cycle)."""
-        return HistoryLedger(book=self.book, cycle=self.cycle, segment=self.segment, sources=self.sources,
-                             keep_cells=self.keep_cells, band_levels=self.band_levels)
+        """An empty ledger for the same series and settings (a worker fills one per cycle).
+
+        It shares this ledger's book and codes, made once in ``__post_init__``, and starts with nothing gathered.
+        """
+        part = copy.copy(self)
+        for name in self._STATE:
+            setattr(part, name, type(getattr(self, name))())
+        part._cell_acc = np.zeros_like(self._cell_acc)
+        return part
 
     def state(self) -> dict:
         """What this ledger has gathered, to be merged into another with :meth:`merge`."""
@@ -286,18 +302,17 @@ class HistoryLedger:
                                              "forecast": forecast, "actual": actual}))
 
     def _add_nodes(self, name, source, sid, month, forecast, actual, unordered) -> None:
-        """Each upper level's group totals of forecast and orders, per source and month."""
-        for level, (codes, _) in self._levels.items():
-            node = codes[sid]
-            cells = pd.DataFrame({"source": source, "node": node, "month": month, "forecast": forecast,
-                                  "actual": actual})
+        """Each upper level's group totals of forecast and orders, per source and month (one frame per cycle)."""
+        parts = []
+        for level_code, (level, (codes, _, offset)) in enumerate(self._levels.items()):
+            parts.append(pd.DataFrame({"level": level_code, "source": source, "node": offset + codes[sid],
+                                       "month": month, "forecast": forecast, "actual": actual}))
             if unordered is not None:
-                cells = pd.concat([cells, unordered.assign(node=self._node_codes(level, unordered))[cells.columns]],
-                                  ignore_index=True)
-            summed = cells.groupby(["source", "node", "month"], sort=True)[["forecast", "actual"]].sum().reset_index()
-            summed["level"] = level
-            summed["cycle"] = name
-            self._nodes.append(summed)
+                parts.append(unordered.assign(level=level_code, node=offset + self._node_codes(level, unordered))[
+                    parts[0].columns])
+        cells = pd.concat(parts, ignore_index=True)
+        summed = cells.groupby(["level", "source", "node", "month"], sort=True)[["forecast", "actual"]].sum()
+        self._nodes.append(summed.reset_index().drop(columns="level").assign(cycle=name))
 
     def _unordered_cells(self, frame: pd.DataFrame, month: np.ndarray, outside: np.ndarray) -> pd.DataFrame | None:
         """Forecasts of series that never had an order, scored at zero in group totals (months whose orders are known).
@@ -430,19 +445,17 @@ class HistoryLedger:
 
         cell_sums = named(self._cell_sums, self._segment_names, "segment")
         pattern_sums = named(self._pattern_sums, self._pattern_names, "pattern")
-        nodes = []
-        for part in self._nodes:
-            codes, uniques = self._levels[part["level"].iloc[0]]
-            labels = uniques[part["node"].to_numpy()]
-            nodes.append(pd.DataFrame({
-                "level": part["level"].to_numpy(), "source": src[part["source"].to_numpy()],
-                "cycle": part["cycle"].to_numpy(),
-                "node_item": np.array([k[0] for k in labels], dtype=object),
-                "node_location": np.array([k[1] for k in labels], dtype=object),
-                "period": periods.month_names(part["month"].to_numpy()),
+        if self._nodes:
+            part = pd.concat(self._nodes, ignore_index=True)
+            node = part["node"].to_numpy()
+            node_errors = pd.DataFrame({
+                "level": self._node_level[node], "source": src[part["source"].to_numpy()],
+                "cycle": part["cycle"].to_numpy(object), "node_item": self._node_item[node],
+                "node_location": self._node_location[node], "period": periods.month_names(part["month"].to_numpy()),
                 "lag": part["month"].to_numpy() - month_indexes_factorized(part["cycle"]),
-                "forecast": part["forecast"].to_numpy(), "actual": part["actual"].to_numpy()}))
-        node_errors = (pd.concat(nodes, ignore_index=True) if nodes else pd.DataFrame(columns=NODE_COLUMNS))
+                "forecast": part["forecast"].to_numpy(), "actual": part["actual"].to_numpy()})
+        else:
+            node_errors = pd.DataFrame(columns=NODE_COLUMNS)
         total, absolute, count = self._cell_acc
         with np.errstate(invalid="ignore", divide="ignore"):
             mad = absolute / count

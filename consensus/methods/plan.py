@@ -164,18 +164,23 @@ class PlanInputs:
 
 
 class Cache(Protocol):
-    """Where computed parts may be kept, as packed frames (consensus.store.columnar.pack_frames)."""
+    """Where computed parts may be kept, as packed frames (consensus.store.columnar.pack_frames).
+
+    ``durable=False`` marks a part cheap enough to remake that only this
+    process need keep it (a past cycle's scoring frame): a cache may hold it
+    in memory, or not at all.
+    """
 
     def get(self, key: str) -> bytes | None: ...
 
-    def put(self, key: str, *, kind: str, cycle: str, content: bytes) -> None: ...
+    def put(self, key: str, *, kind: str, cycle: str, content: bytes, durable: bool = True) -> None: ...
 
 
 class NoCache:
     def get(self, key: str):
         return None
 
-    def put(self, key: str, *, kind: str, cycle: str, content: bytes) -> None:
+    def put(self, key: str, *, kind: str, cycle: str, content: bytes, durable: bool = True) -> None:
         return None
 
 
@@ -307,6 +312,7 @@ class _Context:
     warnings: list[str] = field(default_factory=list)
     made: list[str] = field(default_factory=list)
     prepared: dict = field(default_factory=dict)  # (kind, cycle) -> the part's frames
+    keys: dict = field(default_factory=dict)  # (key maker, cycle) -> the part's cache key
 
 
 #: The context forked worker processes read (set before the pool starts, so it reaches them by fork).
@@ -340,17 +346,51 @@ def _cycle_lines(ctx: _Context, c: CycleInputs, kind: str) -> pd.DataFrame:
     return pd.concat(parts, ignore_index=True) if parts else pd.DataFrame()
 
 
+def _memo_key(make):
+    """A part's key is made once per run and cycle (a digest of frames is not free)."""
+    def key(ctx: _Context, c: CycleInputs) -> str:
+        slot = (make.__name__, c.name)
+        if slot not in ctx.keys:
+            ctx.keys[slot] = make(ctx, c)
+        return ctx.keys[slot]
+    key.__name__, key.__doc__ = make.__name__, make.__doc__
+    return key
+
+
+def _master_digest(ctx: _Context) -> str:
+    if "master" not in ctx.keys:
+        ctx.keys["master"] = ctx.inputs.master_digest()
+    return ctx.keys["master"]
+
+
+@_memo_key
 def _statistical_key(ctx: _Context, c: CycleInputs) -> str:
     return digest_of("statistical", METHOD_VERSION, c.name, c.horizon, ctx.history.digest_at(c.name),
                      ctx.inputs.items[["item", "family"]])
 
 
+@_memo_key
 def _aligned_key(ctx: _Context, c: CycleInputs) -> str:
     forecasts = c.submissions[c.submissions["kind"] == "forecast"]
     return digest_of("aligned", METHOD_VERSION, c.name, forecasts[["seq", "source", "lines_sha256"]].astype(str)
                      .values.tolist(), [str(d) for d in forecasts["scope_detail"]],
                      [list(m or []) for m in forecasts["months"]], ctx.history.digest_at(c.name),
-                     ctx.inputs.master_digest(), ctx.spec.mix_window_months)
+                     _master_digest(ctx), ctx.spec.mix_window_months)
+
+
+@_memo_key
+def _frame_key(ctx: _Context, c: CycleInputs) -> str:
+    """Everything a past cycle's scoring frame reads (:func:`cycle_frame`): its statistical and aligned parts,
+    its events in force, its horizon and the master data."""
+    events = c.submissions[c.submissions["kind"] == "events"]
+    return digest_of("frame", METHOD_VERSION, c.name, c.horizon, _statistical_key(ctx, c), _aligned_key(ctx, c),
+                     events[["seq", "source", "lines_sha256"]].astype(str).values.tolist(),
+                     [str(d) for d in events["scope_detail"]], _master_digest(ctx))
+
+
+#: Largest past-cycle scoring frame (rows) handed back to be kept in memory: above it a frame costs more to
+#: pack and hold than to remake, and a small catalogue is where the per-cycle overhead dominates.
+FRAME_MEMO_MAX_ROWS = 1_000_000
 
 
 def _stat_task(args) -> bytes:
@@ -432,17 +472,28 @@ def _prepare(ctx: _Context, cycles: list[CycleInputs]) -> None:
         ctx.cache.put(ctx.prepared[("key", "aligned", name)], kind="aligned", cycle=name, content=made)
 
 
-def _score_task(args) -> tuple[dict, list[str]]:
-    """In a worker (or here): one past cycle's sources scored against the orders that came (a ledger state)."""
-    name, stat, aligned = args
+def _score_task(args) -> tuple[dict, list[str], bytes | None]:
+    """In a worker (or here): one past cycle's sources scored against the orders that came (a ledger state).
+
+    The cycle's frame comes packed from the cache, or is made from its statistical and aligned parts and
+    handed back packed (when small enough to keep) with the warnings making it gave.
+    """
+    name, frame_packed, stat, aligned = args
     ctx = _WORKER
     c = _cycle(ctx, name)
-    ctx.prepared[("statistical", name)] = stat
-    ctx.prepared[("aligned", name)] = aligned
-    before = len(ctx.warnings)
-    frame, _ = cycle_frame(ctx, c, keep=False)
-    warnings = ctx.warnings[before:]
-    del ctx.warnings[before:]
+    made = None
+    if frame_packed is not None:
+        found = unpack_frames(frame_packed)
+        frame, warnings = found["frame"], found["warnings"]["text"].tolist()
+    else:
+        ctx.prepared[("statistical", name)] = stat
+        ctx.prepared[("aligned", name)] = aligned
+        before = len(ctx.warnings)
+        frame, _ = cycle_frame(ctx, c, keep=False)
+        warnings = ctx.warnings[before:]
+        del ctx.warnings[before:]
+        if len(frame) <= FRAME_MEMO_MAX_ROWS:
+            made = pack_frames({"frame": frame, "warnings": pd.DataFrame({"text": warnings}, dtype=object)})
     cycle = ctx.inputs.cycle.name
     frame = frame[frame["period"] <= cycle]
     published = None
@@ -450,7 +501,7 @@ def _score_task(args) -> tuple[dict, list[str]]:
         published = c.published[c.published["period"] <= cycle]
         frame = pd.concat([frame, published[["item", "location", "period", "consensus"]]
                            .rename(columns={"consensus": "quantity"}).assign(source="consensus")], ignore_index=True)
-    return _WORKER_LEDGER.score_cycle(name, frame, bands=published), warnings
+    return _WORKER_LEDGER.score_cycle(name, frame, bands=published), warnings, made
 
 
 def _unpacked(ctx: _Context, kind: str, c: CycleInputs, *, keep: bool = True) -> dict[str, pd.DataFrame]:
@@ -524,7 +575,7 @@ def cycle_frame(ctx: _Context, c: CycleInputs, *, keep: bool = True) -> tuple[pd
     if len(new):
         statistical = pd.concat([statistical, new.assign(quantity=0.0)], ignore_index=True).sort_values(
             ["item", "location", "period"], kind="mergesort", ignore_index=True)
-    with_events, _, event_warnings = cs.apply_events(statistical, _events(ctx, c), items=ctx.inputs.items,
+    with_events, event_warnings = cs.apply_events(statistical, _events(ctx, c), items=ctx.inputs.items,
                                                      locations=ctx.inputs.locations)
     ctx.warnings += [f"cycle {c.name}: {w}" for w in event_warnings]
     frame = pd.concat([human, with_events, stat["naive"].assign(source=cs.NAIVE)[cs.ALIGNED_COLUMNS]],
@@ -547,7 +598,7 @@ def _history_key(ctx: _Context) -> str:
         past_keys.append([c.name, c.horizon, forecasts, [str(d) for d in c.submissions["scope_detail"]],
                           frame_digest(c.published) if c.published is not None else None])
     return digest_of("history", METHOD_VERSION, inputs.cycle.name, past_keys, ctx.history.digest_at(inputs.cycle.name),
-                     inputs.master_digest(), spec.mix_window_months, spec.weights.segment,
+                     _master_digest(ctx), spec.mix_window_months, spec.weights.segment,
                      spec.reconciliation != "bottom_up", list(spec.band_levels), spec.band_rule,
                      _statistical_key(ctx, inputs.cycle))
 
@@ -568,9 +619,10 @@ def _history_summary(ctx: _Context, patterns: pd.DataFrame, key: str,
                                 band_levels=spec.band_levels, band_rule=spec.band_rule)
     global _WORKER_LEDGER
     _WORKER_LEDGER = ledger
-    _prepare(ctx, list(inputs.past))
-    tasks = [(c.name, ctx.prepared.pop(("statistical", c.name)), ctx.prepared.pop(("aligned", c.name)))
-             for c in inputs.past]
+    frames = _past_frames(ctx)
+    _prepare(ctx, [c for c in inputs.past if c.name not in frames])
+    tasks = [(c.name, frames.get(c.name), ctx.prepared.pop(("statistical", c.name), None),
+              ctx.prepared.pop(("aligned", c.name), None)) for c in inputs.past]
     if tasks:
         ctx.progress(f"score {len(tasks)} past cycle(s)")
     if ctx.pool is not None and len(tasks) > 1:  # forked again, so the workers see the ledger
@@ -580,13 +632,23 @@ def _history_summary(ctx: _Context, patterns: pd.DataFrame, key: str,
         results = ctx.pool.map(_score_task, tasks)
     else:
         results = map(_score_task, tasks)
-    for state, warnings in results:  # merged in cycle order, whichever process scored them
+    for c, (state, warnings, made) in zip(inputs.past, results):  # merged in cycle order, whichever process
         ledger.merge(state)
         ctx.warnings += warnings
+        if made is not None:
+            ctx.cache.put(_frame_key(ctx, c), kind="frame", cycle=c.name, content=made, durable=False)
     _WORKER_LEDGER = None
     summary = ledger.summary()
     ctx.cache.put(key, kind="history", cycle=cycle, content=pack_frames(summary.frames()))
     return summary
+
+
+def _past_frames(ctx: _Context) -> dict[str, bytes]:
+    """The past cycles' scoring frames the cache holds, packed, by cycle (looked up once per run)."""
+    if "frames" not in ctx.prepared:
+        found = {c.name: ctx.cache.get(_frame_key(ctx, c)) for c in ctx.inputs.past}
+        ctx.prepared["frames"] = {name: content for name, content in found.items() if content is not None}
+    return ctx.prepared["frames"]
 
 
 def compute_plan(inputs: PlanInputs, spec: RunSpec | None = None, *, cache: Cache | None = None, jobs: int = 1,
@@ -618,7 +680,8 @@ def _compute(ctx: _Context) -> PlanResult:
     cycle = inputs.cycle
     history_key = _history_key(ctx)
     history_found = ctx.cache.get(history_key)
-    _prepare(ctx, [cycle] if history_found is not None else [cycle, *inputs.past])  # all at once: in parallel
+    to_make = [] if history_found is not None else [c for c in inputs.past if c.name not in _past_frames(ctx)]
+    _prepare(ctx, [cycle, *to_make])  # all at once: in parallel
     current, stat = cycle_frame(ctx, cycle)
     in_cycle = set(current["source"].unique())
     present = [s for s in combined_sources() if s in in_cycle]

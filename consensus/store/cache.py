@@ -5,15 +5,53 @@ its own; new entries are held until the run writes its result and are written
 in that same transaction, so a run that fails leaves no half-written entry.
 Each (kind, cycle) keeps only its newest entry: the cache stays the size of
 one window of cycles.
+
+A part put with ``durable=False`` (cheap to remake) is not written to the
+store: it is kept in this process's memory (:class:`ProcessMemo`), where a
+later run in the same process (the demo, a test session, a script calling
+the library) finds it.  Keys are digests of everything a part read, so a part
+found there is the part the computation would make, whichever store asked.
 """
 
 from __future__ import annotations
+
+from collections import OrderedDict
 
 from sqlalchemy import delete, select
 from sqlmodel import Session
 
 from consensus.store.db import session_scope
 from consensus.store.models import CacheEntry, utcnow
+
+
+class ProcessMemo:
+    """Packed parts by key, the least recently used let go beyond ``limit_bytes``."""
+
+    def __init__(self, limit_bytes: int):
+        self.limit_bytes = limit_bytes
+        self.entries: OrderedDict[str, bytes] = OrderedDict()
+        self.size = 0
+
+    def get(self, key: str) -> bytes | None:
+        content = self.entries.get(key)
+        if content is not None:
+            self.entries.move_to_end(key)
+        return content
+
+    def put(self, key: str, content: bytes) -> None:
+        if len(content) > self.limit_bytes:
+            return
+        if key in self.entries:
+            self.size -= len(self.entries.pop(key))
+        self.entries[key] = content
+        self.size += len(content)
+        while self.size > self.limit_bytes:
+            _, dropped = self.entries.popitem(last=False)
+            self.size -= len(dropped)
+
+
+#: The parts this process keeps in memory (256 MB at most).
+MEMO = ProcessMemo(256 * 2**20)
 
 
 class StoreCache:
@@ -33,6 +71,10 @@ class StoreCache:
         if key in self.pending:
             self.hits += 1
             return self.pending[key][2]
+        kept = MEMO.get(key)
+        if kept is not None:
+            self.hits += 1
+            return kept
         with session_scope(self.url, write=False) as session:
             table = CacheEntry.__table__
             row = session.execute(select(table.c.content).where(table.c.key == key)).first()
@@ -42,9 +84,13 @@ class StoreCache:
         self.hits += 1
         return bytes(row.content)
 
-    def put(self, key: str, *, kind: str, cycle: str, content: bytes) -> None:
-        if self.enabled:
+    def put(self, key: str, *, kind: str, cycle: str, content: bytes, durable: bool = True) -> None:
+        if not self.enabled:
+            return
+        if durable:
             self.pending[key] = (kind, cycle, content)
+        else:
+            MEMO.put(key, content)
 
     def write(self, session: Session) -> int:
         """Write the new entries (in the caller's write transaction), each replacing its (kind, cycle)'s older one."""
