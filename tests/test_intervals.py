@@ -410,3 +410,75 @@ def test_size_rule_bands_hold_the_forecast_and_nest(errors, points, min_errors, 
         assert (out[f"lower_{pct}"] <= out["consensus"] + tol).all()
         assert (out[f"upper_{pct}"] >= out["consensus"] - tol).all()
     assert (out["lower_95"] <= out["lower_80"] + tol).all() and (out["upper_95"] >= out["upper_80"] - tol).all()
+
+
+# --- What the stored family and total bands read: the published plans' own errors first -------------------
+
+from consensus.methods.intervals import (  # noqa: E402
+    MIN_OWN_BAND_ERRORS, level_band_errors, own_errors_first, published_level_errors, stored_level_bands)
+
+
+def test_own_errors_first_pools_a_stand_in_only_while_the_own_record_is_short():
+    # The rule (common practice: borrow the nearest comparable record rather than band from a handful of
+    # errors): 29 own errors are pooled with the stand-in's, 30 are used alone.
+    own = pd.DataFrame({"forecast": np.ones(MIN_OWN_BAND_ERRORS), "actual": 1.0})
+    stand_in = pd.DataFrame({"forecast": np.ones(50), "actual": 2.0})
+    errors, basis = own_errors_first(own.iloc[:-1], stand_in)
+    assert basis == "pooled" and len(errors) == MIN_OWN_BAND_ERRORS - 1 + 50
+    errors, basis = own_errors_first(own, stand_in)
+    assert basis == "own" and len(errors) == MIN_OWN_BAND_ERRORS and (errors["actual"] == 1.0).all()
+    assert own_errors_first(None, stand_in)[1] == "fallback"
+    assert own_errors_first(own.iloc[:0], None) == (None, "none")
+
+
+def plan_and_sales_nodes(n_cycles, *, plan_sd, sales_bias, seed):
+    """Two families a month: the published plan unbiased (sd ``plan_sd``), sales ``sales_bias`` high. Invented."""
+    rng = np.random.default_rng(seed)
+    cycles = [f"20{24 + (m // 12)}-{m % 12 + 1:02d}" for m in range(n_cycles)]
+    rows = []
+    for c, cycle in enumerate(cycles):
+        period = cycles[c + 1] if c + 1 < n_cycles else "2099-01"
+        for family in ("F1", "F2"):
+            actual = 1000.0 + 200 * rng.random()
+            rows.append({"source": "consensus", "forecast": actual / (1 + rng.normal(0, plan_sd))})
+            rows.append({"source": "sales", "forecast": actual * (1 + sales_bias)})
+            rows[-2].update(cycle=cycle, node_item=family, period=period, actual=actual)
+            rows[-1].update(cycle=cycle, node_item=family, period=period, actual=actual)
+    nodes = pd.DataFrame(rows).assign(level="family", node_location="all", lag=1)
+    totals = nodes.groupby(["source", "cycle", "period", "lag"], as_index=False)[["forecast", "actual"]].sum()
+    return pd.concat([nodes, totals.assign(level="total", node_item="all", node_location="all")], ignore_index=True)
+
+
+def test_level_bands_read_the_published_plans_errors_not_a_biased_stand_in():
+    # The total's band must come from the errors the published total plans made (oracle: numpy's quantile of
+    # their relative errors, Williams & Goodman 1971), not from a combination that replays a source 10 % high
+    # at full weight, which would shift the band and, through the MAD, widen it.  Invented data, fixed seed.
+    nodes = plan_and_sales_nodes(80, plan_sd=0.03, sales_bias=0.10, seed=5)
+    weights = pd.DataFrame({"segment": ["F1", "F2"], "lag_bucket": "1", "source": "sales", "weight": 1.0})
+    record = level_band_errors(nodes, weights)
+    assert {level: basis for level, (_, basis) in record.items()} == {"family": "own", "total": "own"}
+    total = nodes[(nodes["level"] == "total") & (nodes["source"] == "consensus")]
+    pd.testing.assert_frame_equal(published_level_errors(nodes)["total"][["forecast", "actual"]],
+                                  total[["forecast", "actual"]].reset_index(drop=True))
+    items = pd.DataFrame({"item": ["A", "B"], "family": ["F1", "F2"]})
+    cells = pd.DataFrame({"item": ["A", "B"], "location": "L", "period": "2026-06", "consensus": [400.0, 600.0]})
+    out = stored_level_bands(cells, {level: errors for level, (errors, _) in record.items()}, items=items,
+                             cycle="2026-05", levels=(0.8,), basis={level: b for level, (_, b) in record.items()})
+    band = out[out["level"] == "total"].iloc[0]
+    relative = (total["actual"] - total["forecast"]) / total["forecast"]
+    assert band["lower_80"] == pytest.approx(1000 * (1 + np.quantile(relative, 0.1)))
+    assert band["upper_80"] == pytest.approx(1000 * (1 + np.quantile(relative, 0.9)))
+    assert band["band_method"].startswith("total plans' own errors: empirical, 80 errors")
+
+
+def test_a_short_published_record_is_pooled_with_the_combinations_errors():
+    # 10 published cycles (20 family errors, 10 total errors) are fewer than MIN_OWN_BAND_ERRORS: the
+    # combination's errors of the same months are pooled in, so the band has twice the errors (hand count).
+    nodes = plan_and_sales_nodes(11, plan_sd=0.03, sales_bias=0.10, seed=6)
+    nodes = nodes[nodes["cycle"] < nodes["cycle"].max()]  # the newest cycle's month is not known yet
+    weights = pd.DataFrame({"segment": ["F1", "F2"], "lag_bucket": "1", "source": "sales", "weight": 1.0})
+    record = level_band_errors(nodes, weights)
+    assert record["family"][1] == "pooled" and len(record["family"][0]) == 2 * 20
+    assert record["total"][1] == "pooled" and len(record["total"][0]) == 2 * 10
+    # Without weights (a run weighing other segments than families) the published errors stand alone.
+    assert level_band_errors(nodes, None)["total"][1] == "own"

@@ -52,7 +52,6 @@ BUCKETS = tuple(label for label, _, _ in DEFAULT_LAG_BUCKETS)
 BAND_SOURCES = ("consensus", "statistical")
 #: Longest DC lead time whose forecasts are kept for order amplification (months).
 MAX_LEAD_TIME_MONTHS = 3
-MIN_OWN_BAND_ERRORS = 30
 UNKNOWN_FAMILY, UNKNOWN_REGION = "(unknown family)", "(unknown region)"
 #: Steps of forecast value added, from the yardstick to the plan.
 FVA_STEPS = ("naive", "statistical_base", "statistical", "dc", "sales", "marketing", "consensus")
@@ -348,23 +347,17 @@ class HistoryLedger:
     def _band_table(self) -> tuple[pd.DataFrame, str]:
         """Quantiles of the plan's own past relative errors by lag bucket (with the statistical source's while short).
 
-        The consensus's own errors are used once there are at least
-        ``MIN_OWN_BAND_ERRORS`` of them; before that, the statistical
-        source's errors are pooled in (common practice: borrow the nearest
-        comparable forecast's error record rather than invent a band).
+        :func:`consensus.methods.intervals.own_errors_first`: the consensus's
+        own cell errors alone once there are enough, before that pooled with
+        the statistical source's.
         """
-        from consensus.methods.intervals import band_table
+        from consensus.methods.intervals import band_table, own_errors_first
 
         parts = {s: pd.concat(p, ignore_index=True) for s, p in self._bands.items() if p}
-        own = parts.get("consensus")
-        if own is not None and len(own) >= MIN_OWN_BAND_ERRORS:
-            chosen, source = own, "consensus"
-        else:
-            chosen = pd.concat([p for p in (own, parts.get("statistical")) if p is not None], ignore_index=True) \
-                if parts else pd.DataFrame(columns=["lag_bucket", "forecast", "actual"])
-            source = "consensus and statistical"
-        if chosen.empty:
+        chosen, basis = own_errors_first(parts.get("consensus"), parts.get("statistical"))
+        if chosen is None or chosen.empty:
             return pd.DataFrame(), "none"
+        source = "consensus" if basis == "own" else "consensus and statistical"
         return band_table(chosen, levels=self.band_levels, rule=self.band_rule), source
 
     def _cell_key(self, sid: np.ndarray, month: np.ndarray) -> np.ndarray:

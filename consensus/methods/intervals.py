@@ -43,7 +43,10 @@ Levels.  :func:`level_errors` sums cells' forecasts and actuals to a level
 level's bands from its own past errors, so family and total bands carry the
 correlation between items that an independence sum (√Σ deviation²) leaves
 out.  :func:`score_bands` and :func:`backtest_bands_by_level` report
-coverage and the Winkler score by level and lag bucket.
+coverage and the Winkler score by level and lag bucket.  A run's stored
+family and total bands (:func:`stored_level_bands`) read the published
+plans' own errors at those levels, with a stand-in record pooled in only
+while they are few (:func:`own_errors_first`, the rule the item bands keep).
 
 Scoring: the interval (Winkler) score of Winkler (1972, JASA 67:187–191),
 in the form of Gneiting & Raftery (2007, JASA 102:359–378, eq. 43).
@@ -70,6 +73,34 @@ BAND_RULES = ("relative", "relative_by_size")
 DEFAULT_SIZE_CLASSES = 5
 #: How a group with fewer than min_errors errors is banded, and how band_method says so.
 FEW_ERRORS_TEXT = {"normal": "normal from MAD, ", "student_t": "Student t from MAD, "}
+#: Fewest of the plan's own past errors its bands are read from alone (see :func:`own_errors_first`).
+MIN_OWN_BAND_ERRORS = 30
+
+
+def own_errors_first(own: pd.DataFrame | None, fallback: pd.DataFrame | None, *,
+                     min_own: int = MIN_OWN_BAND_ERRORS) -> tuple[pd.DataFrame | None, str]:
+    """The errors a plan's bands are read from: its own, pooled with a stand-in record while they are few.
+
+    A band should come from the errors of the forecast it is put around, so
+    the plan's own past errors (its published numbers against what came)
+    are used alone once there are at least ``min_own`` of them; before that
+    the nearest comparable record (``fallback``) is pooled in rather than a
+    band invented from a handful of errors (common practice).  The item
+    bands pool the statistical source's cell errors; the family and total
+    bands the errors the run's combination would have made at that level.
+    Returns (errors, "own" | "pooled" | "fallback" | "none").
+    """
+    n_own = 0 if own is None else len(own)
+    n_fallback = 0 if fallback is None else len(fallback)
+    if n_own >= min_own:
+        return own, "own"
+    if n_own and n_fallback:
+        return pd.concat([own, fallback], ignore_index=True), "pooled"
+    if n_own:
+        return own, "own"
+    if n_fallback:
+        return fallback, "fallback"
+    return None, "none"
 
 
 def band_columns(levels: Sequence[float]) -> list[str]:
@@ -616,6 +647,52 @@ def backtest_bands_by_level(errors: pd.DataFrame, *, items: pd.DataFrame | None 
 #: Levels a run stores bands for besides item × location.
 STORED_BAND_LEVELS = ("family", "total")
 LEVEL_BAND_COLUMNS = ["level", "node", "period", "lag", "consensus", "band_method"]
+LEVEL_ERROR_COLUMNS = ["cycle", "node", "period", "lag", "forecast", "actual"]
+#: The source the published plans' numbers carry in the history (consensus.vocabulary.SOURCES).
+PLAN_SOURCE = "consensus"
+#: How band_method says which errors a level band was read from (the basis of :func:`own_errors_first`).
+LEVEL_BASIS_TEXT = {"own": "{level} plans' own errors", "pooled": "{level} plans' own errors pooled with the "
+                    "combination's", "fallback": "{level} combination's errors"}
+
+
+def published_level_errors(node_errors: pd.DataFrame | None) -> dict[str, pd.DataFrame]:
+    """The errors the published plans made at family and total level: {level: LEVEL_ERROR_COLUMNS frame}.
+
+    Each past cycle's published plan summed to the family (and to the
+    total), against the orders summed the same way (``node_errors`` of the
+    history, source "consensus").  These are the level's own out-of-sample
+    errors, the same record the item bands read at cell level, so items
+    that miss together widen them as they should.
+    """
+    if node_errors is None or node_errors.empty:
+        return {level: pd.DataFrame(columns=LEVEL_ERROR_COLUMNS) for level in STORED_BAND_LEVELS}
+    mine = node_errors[(node_errors["source"] == PLAN_SOURCE) & node_errors["level"].isin(STORED_BAND_LEVELS)]
+    mine = mine.rename(columns={"node_item": "node"})
+    return {level: mine.loc[mine["level"] == level, LEVEL_ERROR_COLUMNS].reset_index(drop=True)
+            for level in STORED_BAND_LEVELS}
+
+
+def level_band_errors(node_errors: pd.DataFrame | None, weights: pd.DataFrame | None,
+                      factors: pd.DataFrame | None = None, *, min_own: int = MIN_OWN_BAND_ERRORS
+                      ) -> dict[str, tuple[pd.DataFrame | None, str]]:
+    """What each level's band is read from: {level: (errors, basis)}, by :func:`own_errors_first`.
+
+    The published plans' own errors at the level (:func:`published_level_errors`)
+    alone once there are ``min_own`` of them; before that pooled with the
+    errors today's combination would have made (:func:`combined_level_errors`,
+    only when ``weights`` are given).  The combination's record is a
+    stand-in, not the band's basis: it weighs past sources with today's
+    weights but corrects them with the factors re-judged from the record in
+    the window, so in a young store it replays a biased source (sales
+    forecasting high before its bias could be judged) at a weight no run
+    gave it uncorrected.  A bias common to every family adds up at the
+    total, where the spread of the plan's own errors is smallest, and the
+    total band grew wider than the plan's errors warranted.
+    """
+    own = published_level_errors(node_errors)
+    stand_in = combined_level_errors(node_errors, weights, factors) if weights is not None and len(weights) else {}
+    return {level: own_errors_first(own.get(level), stand_in.get(level), min_own=min_own)
+            for level in STORED_BAND_LEVELS}
 
 
 def combined_level_errors(node_errors: pd.DataFrame, weights: pd.DataFrame, factors: pd.DataFrame | None = None
@@ -635,12 +712,11 @@ def combined_level_errors(node_errors: pd.DataFrame, weights: pd.DataFrame, fact
     covered source's cells; the total sums the families of a month.  Only
     months that every weighed source forecast count.
 
-    These errors are the level's own (items that miss together move them
-    together), and they measure the combination the run uses now rather
-    than the earlier cycles' published plans, which were made with a
-    shorter record.
+    These errors are the level's (items that miss together move them
+    together), but of a combination no run made: :func:`level_band_errors`
+    pools them in only while the published plans' own record is short.
     """
-    columns = ["cycle", "node", "period", "lag", "forecast", "actual"]
+    columns = LEVEL_ERROR_COLUMNS
     empty = {level: pd.DataFrame(columns=columns) for level in STORED_BAND_LEVELS}
     if node_errors is None or node_errors.empty or weights is None or weights.empty:
         return empty
@@ -669,13 +745,16 @@ def combined_level_errors(node_errors: pd.DataFrame, weights: pd.DataFrame, fact
     return {"family": family, "total": total.assign(node="all")[columns]}
 
 
-def stored_level_bands(consensus: pd.DataFrame, level_errors: Mapping[str, pd.DataFrame], *, items: pd.DataFrame,
-                       cycle: str, levels: Sequence[float] = (0.8, 0.95), min_errors: int = 30) -> pd.DataFrame:
+def stored_level_bands(consensus: pd.DataFrame, level_errors: Mapping[str, pd.DataFrame | None], *,
+                       items: pd.DataFrame, cycle: str, levels: Sequence[float] = (0.8, 0.95), min_errors: int = 30,
+                       basis: Mapping[str, str] | None = None) -> pd.DataFrame:
     """Bands of the family and total plans from errors of the family and total plans themselves.
 
     ``consensus``: the run's cells [item, location, period, consensus];
     ``level_errors``: {level: [lag, forecast, actual]} of that level (e.g.
-    :func:`combined_level_errors`).  Band = F_g·(1 + quantile of e_g/F_g)
+    from :func:`level_band_errors`, whose basis per level ``basis`` passes
+    on to ``band_method``: "own", "pooled" or "fallback", default "own").
+    Band = F_g·(1 + quantile of e_g/F_g)
     by lag bucket (Williams & Goodman 1971), the normal MAD band while a lag
     bucket has fewer than ``min_errors`` errors (:func:`apply_bands`).
     Because the errors are the level's own, items that miss together widen
@@ -701,7 +780,8 @@ def stored_level_bands(consensus: pd.DataFrame, level_errors: Mapping[str, pd.Da
             past = past.assign(lag_bucket=lag_bucket_labels(past["lag"].to_numpy(int)))
             table = band_table(past[["lag_bucket", "forecast", "actual"]], levels=levels, min_errors=min_errors)
             banded = apply_bands(summed, table, levels=levels, min_errors=min_errors)
-            banded["band_method"] = f"{level} plan's own errors: " + banded["band_method"].astype(str)
+            text = LEVEL_BASIS_TEXT[(basis or {}).get(level, "own")].format(level=level)
+            banded["band_method"] = f"{text}: " + banded["band_method"].astype(str)
         parts.append(banded.assign(level=level))
     out = pd.concat(parts, ignore_index=True)
     return out[[*LEVEL_BAND_COLUMNS, *band_columns(levels)]].reset_index(drop=True)

@@ -56,7 +56,7 @@ from consensus.methods.bias import BiasSpec, correct_sources, factors_as_known, 
 from consensus.methods.bom import component_totals, explode_bom
 from consensus.methods.combine import combine_sources
 from consensus.methods.decisions import apply_decisions
-from consensus.methods.intervals import BAND_RULES, apply_bands, band_columns, combined_level_errors, stored_level_bands
+from consensus.methods.intervals import BAND_RULES, apply_bands, band_columns, level_band_errors, stored_level_bands
 from consensus.methods.reconciliation import DEFAULT_RECONCILIATION, RECONCILIATION_METHODS, reconcile_hierarchy
 from consensus.methods.statistical import forecast_statistical
 from consensus.methods.weights import WeightSpec, assign_segments, estimate_weights_from_sums
@@ -64,7 +64,7 @@ from consensus.store.columnar import digest_of, frame_digest, pack_frames, unpac
 from consensus.vocabulary import combined_sources, scored_sources
 
 #: Bump when any step changes the numbers, so cached parts made by older code are never read.
-METHOD_VERSION = "2026.12.3"
+METHOD_VERSION = "2026.12.4"
 #: The published plan and its bands are stated in thousandths of a unit.
 PLAN_DECIMALS = 3
 #: Fixed groups of families the statistical fits are spread over (independent of the number of processes).
@@ -713,8 +713,10 @@ def _compute(ctx: _Context) -> PlanResult:
     for column in ["consensus", *bands]:
         table[column] = np.round(table[column].astype(float), PLAN_DECIMALS) + 0.0
     cells = _cells_part(table, combined_rows, present, bands)
-    level_bands = stored_level_bands(cells, _level_errors(summary, weights, cycle.name, segments, present, spec),
-                                     items=inputs.items, cycle=cycle.name, levels=spec.band_levels)
+    record = _level_errors(summary, weights, cycle.name, segments, present, spec)
+    level_bands = stored_level_bands(cells, {level: errors for level, (errors, _) in record.items()},
+                                     items=inputs.items, cycle=cycle.name, levels=spec.band_levels,
+                                     basis={level: basis for level, (_, basis) in record.items()})
     for column in ["consensus", *bands]:
         level_bands[column] = np.round(level_bands[column].astype(float), PLAN_DECIMALS) + 0.0
     components = component_totals(explode_bom(cells.rename(columns={"consensus": "quantity"})[
@@ -759,13 +761,13 @@ def _weights(summary: hist.HistorySummary, cycle: str, segments: list, present: 
 
 
 def _level_errors(summary: hist.HistorySummary, weights: pd.DataFrame, cycle: str, segments: list, present: list,
-                  spec: RunSpec) -> dict[str, pd.DataFrame]:
-    """The family and total errors the run's combination would have made (for the level bands)."""
-    if spec.weights.segment != "family":
-        return {}  # the sources' family totals are weighed with family weights only
+                  spec: RunSpec) -> dict[str, tuple[pd.DataFrame | None, str]]:
+    """The family and total errors the level bands read: the published plans' (while few, with the combination's)."""
+    if spec.weights.segment != "family":  # the sources' family totals are weighed with family weights only
+        return level_band_errors(summary.node_errors, None)
     factors = factors_as_known(summary.cell_sums, cycle=cycle, window_cycles=spec.weights.window_cycles,
                                segments=segments, sources=present, spec=spec.bias)
-    return combined_level_errors(summary.node_errors, weights, factors)
+    return level_band_errors(summary.node_errors, weights, factors)
 
 
 def _bias_notes(bias: pd.DataFrame, segment: str) -> list[str]:
