@@ -80,3 +80,15 @@ def test_the_process_memo_lets_the_least_recently_used_go_beyond_its_limit():
     assert memo.size == 8
     memo.put("big", b"x" * 11)  # larger than the whole memo: not kept, nothing else lost
     assert memo.get("big") is None and memo.size == 8
+
+
+def test_sums_by_folded_keys_equal_a_grouping_on_several_columns():
+    """The folded-key sums against pandas' own multi-column groupby (the reference), order and values."""
+    from consensus.methods.history import _sums_by
+
+    rng = np.random.default_rng(7)
+    keys = {"a": rng.integers(-2, 3, 500), "b": rng.integers(0, 7, 500), "c": rng.integers(10, 14, 500)}
+    values = pd.DataFrame({"x": rng.normal(size=500), "n": np.ones(500, dtype=int)})
+    mine = _sums_by(keys, values)
+    reference = values.assign(**keys).groupby(["a", "b", "c"], sort=True)[["x", "n"]].sum().reset_index()
+    pd.testing.assert_frame_equal(mine, reference, check_exact=True, check_dtype=False)

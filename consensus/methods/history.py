@@ -135,6 +135,29 @@ def build_series_book(actuals: pd.DataFrame, *, items: pd.DataFrame, locations: 
                       family_of=family_of, region_of=region_of)
 
 
+def _sums_by(keys: dict[str, np.ndarray], values: pd.DataFrame) -> pd.DataFrame:
+    """``values`` summed by whole-number keys, one row per key combination in sorted order, keys as columns.
+
+    The keys are folded into one (mixed radix), which groups several times faster than a grouping on
+    several columns; the sums are the same, taken over the same rows in the same order.
+    """
+    lows = {name: int(k.min()) if len(k) else 0 for name, k in keys.items()}
+    sizes = {name: int(k.max()) - lows[name] + 1 if len(k) else 1 for name, k in keys.items()}
+    folded = np.zeros(len(values), dtype=np.int64)
+    for name, k in keys.items():
+        folded = folded * sizes[name] + (k.astype(np.int64) - lows[name])
+    summed = values.groupby(folded, sort=True).sum()
+    rest = summed.index.to_numpy(np.int64)
+    columns = {}
+    for name in reversed(list(keys)):
+        rest, columns[name] = np.divmod(rest, sizes[name])
+        columns[name] = columns[name] + lows[name]
+    out = pd.DataFrame({name: columns[name] for name in keys})
+    for column in summed.columns:
+        out[column] = summed[column].to_numpy()
+    return out
+
+
 def _codes(values: pd.Series | np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     codes, uniques = pd.factorize(pd.Series(values, dtype=object), sort=True)
     return codes.astype(np.int64), np.asarray(uniques, dtype=object)
@@ -275,8 +298,8 @@ class HistoryLedger:
             "sum_scaled": np.where(scaled_ok, np.abs(error) / np.where(scaled_ok, scale, 1.0), 0.0),
             "n_scaled": scaled_ok.astype(int)})
         for target, codes in ((self._cell_sums, self._segment_codes), (self._pattern_sums, self._pattern_codes)):
-            target.append(parts.assign(group=codes[sid]).groupby(["source", "lag", "group"], sort=True)[SUM_FIELDS]
-                          .sum().reset_index().assign(cycle=name))
+            target.append(_sums_by({"source": source, "lag": lag, "group": codes[sid]}, parts[SUM_FIELDS])
+                          .assign(cycle=name))
         flat = (source * len(BUCKETS) + bucket) * self._n + sid
         size = self._cell_acc[0].size
         for k, values in enumerate((error, np.abs(error), None)):
@@ -310,8 +333,9 @@ class HistoryLedger:
                 parts.append(unordered.assign(level=level_code, node=offset + self._node_codes(level, unordered))[
                     parts[0].columns])
         cells = pd.concat(parts, ignore_index=True)
-        summed = cells.groupby(["level", "source", "node", "month"], sort=True)[["forecast", "actual"]].sum()
-        self._nodes.append(summed.reset_index().drop(columns="level").assign(cycle=name))
+        keys = {k: cells[k].to_numpy() for k in ("level", "source", "node", "month")}
+        summed = _sums_by(keys, cells[["forecast", "actual"]])
+        self._nodes.append(summed.drop(columns="level").assign(cycle=name))
 
     def _unordered_cells(self, frame: pd.DataFrame, month: np.ndarray, outside: np.ndarray) -> pd.DataFrame | None:
         """Forecasts of series that never had an order, scored at zero in group totals (months whose orders are known).
