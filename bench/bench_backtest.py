@@ -27,6 +27,7 @@ Run:  python bench/bench_backtest.py                         (the default spec, 
       python bench/bench_backtest.py --specs before default     (the old settings beside the new)
       python bench/bench_backtest.py --specs default --spec 'k2={"bias": {"shrinkage_cycles": 2}}'
                                                                 (any setting over the default)
+      python bench/bench_backtest.py --quiet --by-lag            (where a miss comes from: level × lag bucket)
 """
 
 from __future__ import annotations
@@ -191,6 +192,28 @@ def wape_by_level(errors: pd.DataFrame, sources: list[str]) -> pd.DataFrame:
     return pd.DataFrame(rows).set_index("level")
 
 
+def wape_by_lag(errors: pd.DataFrame, sources: list[str]) -> pd.DataFrame:
+    """Level × lag bucket × source: the source's WAPE % on its cells beside the consensus on the same cells.
+
+    Says at which lags a miss of :func:`wape_by_level` comes from; a lag bucket is a lag of a cycle, so the
+    groups are those of the level table split by lag.
+    """
+    rows = []
+    for bucket, part in errors.groupby("lag_bucket", sort=True):
+        table = wape_by_level(part, sources)
+        for source in sources:
+            if source not in table:
+                continue
+            for level, row in table.iterrows():
+                rows.append({"level": level, "lag bucket": bucket, "source": source, "source WAPE": row[source],
+                             "consensus on its cells": row[f"consensus on {source}'s cells"]})
+    out = pd.DataFrame(rows)
+    out["gap"] = out["consensus on its cells"] - out["source WAPE"]
+    order = {name: k for k, name in enumerate(LEVEL_NAMES.values())}
+    return out.sort_values(["source", "level", "lag bucket"], key=lambda c: c.map(order) if c.name == "level" else c,
+                           kind="mergesort", ignore_index=True)
+
+
 def misses(table: pd.DataFrame, sources: list[str]) -> list[str]:
     """Where the consensus is worse than a single source on that source's cells (points of WAPE)."""
     out = []
@@ -321,6 +344,8 @@ def main() -> None:
     parser.add_argument("--spec", action="append", default=[], metavar="NAME=JSON",
                         help='a further spec: settings over the default, e.g. x=\'{"weights": {"min_cycles": 2}}\'')
     parser.add_argument("--quiet", action="store_true", help="the WAPE table and the verdicts only")
+    parser.add_argument("--by-lag", action="store_true",
+                        help="also the WAPE of the consensus against each source by level and lag bucket")
     args = parser.parse_args()
     specs = named_specs()
     for text in args.spec:
@@ -353,6 +378,10 @@ def main() -> None:
               "on the same cells")
         print(table.round(2).T.to_string())
         print("consensus worse than a single source:", misses(table, sources) or "nowhere")
+        if args.by_lag:
+            print("\nWAPE % by level and lag bucket: each source on its cells, the consensus on the same cells "
+                  "(gap > 0: the consensus is behind)")
+            print(wape_by_lag(errors, sources).round(2).to_string(index=False))
         bands = band_scores(errors, results, actuals, items, locations)
         if args.quiet:
             print("band levels outside the target:", bands_within_target(bands) or "none")

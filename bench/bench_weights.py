@@ -30,11 +30,14 @@ the default run no worse than the best single source at every level.
 
 Run:  python bench/bench_weights.py            (two to three minutes on 2 cores)
       python bench/bench_weights.py --cells 400 (quicker, noisier)
+      python bench/bench_weights.py --scenarios "one biased source" --spec '{"bias": {"shrinkage_cycles": 0}}'
+                                                (the default run with settings laid over the default RunSpec)
 """
 
 from __future__ import annotations
 
 import argparse
+import json
 import sys
 import time
 from pathlib import Path
@@ -44,6 +47,7 @@ import pandas as pd
 
 # Run from a source checkout without installing: the package sits one folder up.
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 from consensus.methods.accuracy import forecast_errors
 from consensus.methods.combine import combine_sources
@@ -141,13 +145,27 @@ def level_wape(frame: pd.DataFrame, keys: list[str], column: str = "consensus") 
     return 100.0 * float((summed["actual"] - summed[column]).abs().sum() / summed["actual"].sum())
 
 
-def default_run(aligned: pd.DataFrame, errors: pd.DataFrame, *, cycle: str, items, locations) -> pd.DataFrame:
-    """The consensus the run's default settings give: persistent bias corrected, then the default weights."""
+def check_replayable(spec) -> None:
+    """Refuse settings this bench does not replay (it has no published plans, so no reconciliation)."""
+    from consensus.methods.plan import RunSpec
+
+    default = RunSpec()
+    if spec.reconciliation != "bottom_up" or spec.weights_from != "cells":
+        raise SystemExit("bench_weights replays persistent-bias correction and cell weights only: "
+                         "leave reconciliation and weights_from at their defaults "
+                         f"({default.reconciliation!r}, {default.weights_from!r}); bench_backtest.py replays any spec")
+
+
+def default_run(aligned: pd.DataFrame, errors: pd.DataFrame, *, cycle: str, items, locations,
+                spec=None) -> pd.DataFrame:
+    """The consensus the run's settings give (the default RunSpec unless ``spec``): persistent bias corrected,
+    then the weights."""
     from consensus.methods.bias import cell_sums_from_errors, correct_sources, persistent_bias
     from consensus.methods.plan import RunSpec
     from consensus.methods.weights import assign_segments
 
-    spec = RunSpec()
+    spec = spec or RunSpec()
+    check_replayable(spec)
     known = errors[errors["period"] <= cycle]
     segment_of = assign_segments(known, segment=spec.weights.segment, items=items, locations=locations)
     sums = cell_sums_from_errors(known, segment_of=segment_of)
@@ -163,7 +181,7 @@ def default_run(aligned: pd.DataFrame, errors: pd.DataFrame, *, cycle: str, item
 
 
 def run_scenario(name, sigmas, biases, shocks=(0.0, 0.0, 0.0, 0.0), *, n_cells: int, seed: int,
-                 timings: dict) -> tuple[dict[str, float], pd.DataFrame]:
+                 timings: dict, run_spec=None) -> tuple[dict[str, float], pd.DataFrame]:
     items, locations, actuals, forecasts, eval_cycles = simulate(sigmas, biases, shocks, n_cells=n_cells, seed=seed)
     started = time.perf_counter()
     errors = forecast_errors(forecasts, actuals)
@@ -193,7 +211,7 @@ def run_scenario(name, sigmas, biases, shocks=(0.0, 0.0, 0.0, 0.0), *, n_cells: 
         results.setdefault("known variances", []).append(
             combo.consensus[["item", "location", "period", "consensus"]].merge(truth, on=["item", "location", "period"]))
         results.setdefault("default run", []).append(
-            default_run(aligned, errors, cycle=cycle, items=items, locations=locations)
+            default_run(aligned, errors, cycle=cycle, items=items, locations=locations, spec=run_spec)
             .merge(truth, on=["item", "location", "period"]).assign(cycle=cycle))
         for source in SOURCES:
             single = aligned[aligned["source"] == source].rename(columns={"quantity": "consensus"})
@@ -215,12 +233,29 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--cells", type=int, default=800, help="item × location cells (default 800)")
     parser.add_argument("--seed", type=int, default=20260101)
+    parser.add_argument("--scenarios", nargs="*", default=None, metavar="NAME",
+                        help="only these scenarios (each keeps its own seed): " + "; ".join(s[0] for s in SCENARIOS))
+    parser.add_argument("--spec", default=None, metavar="JSON",
+                        help='settings over the default RunSpec for the default run, e.g. \'{"bias": '
+                             '{"shrinkage_cycles": 0}}\'')
     args = parser.parse_args()
+    names = [s[0] for s in SCENARIOS]
+    unknown = [n for n in (args.scenarios or []) if n not in names]
+    if unknown:
+        parser.error(f"unknown scenario(s) {unknown}; choose from {names}")
+    from bench_backtest import spec_over_default
+
+    spec = spec_over_default(json.loads(args.spec)) if args.spec else None
+    if spec is not None:
+        check_replayable(spec)
+        print(f"default run with {args.spec} over the default settings")
     timings: dict[str, list] = {}
     table, by_level = {}, {}
-    for k, (name, sigmas, biases, shocks) in enumerate(SCENARIOS):
+    for k, (name, sigmas, biases, shocks) in enumerate(SCENARIOS):  # seeds follow the full list, so a subset
+        if args.scenarios and name not in args.scenarios:           # draws the same numbers
+            continue
         table[name], by_level[name] = run_scenario(name, sigmas, biases, shocks, n_cells=args.cells,
-                                                   seed=args.seed + k, timings=timings)
+                                                   seed=args.seed + k, timings=timings, run_spec=spec)
     frame = pd.DataFrame(table)
     print(f"Consensus WAPE % over the last {EVAL_CYCLES} cycles, {args.cells} cells, lags 1–{HORIZON}, "
           f"weights from a 12-cycle window (seed {args.seed})\n")

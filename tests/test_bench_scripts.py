@@ -44,3 +44,30 @@ def test_backtest_cache_has_the_run_cache_interface():
     cache = MemoryCache()
     cache.put("k", kind="statistical", cycle="2026-01", content=b"packed")
     assert cache.get("k") == b"packed" and cache.get("other") is None
+
+
+def test_backtest_wape_by_lag_splits_the_level_table_by_lag_bucket():
+    """bench_backtest's lag table: WAPE % = 100 · Σ|A − F| / Σ A of group totals per cycle and month
+    (the bench's own definition, common practice), here on four cells worked by hand."""
+    sys.path.insert(0, str(BENCH))
+    try:
+        from bench_backtest import wape_by_lag
+    finally:
+        sys.path.remove(str(BENCH))
+    import numpy as np
+    import pandas as pd
+
+    frame = pd.DataFrame({
+        "cycle": "2026-01", "period": ["2026-02", "2026-02", "2026-05", "2026-05"], "lag": [1, 1, 4, 4],
+        "lag_bucket": ["1", "1", "4-6", "4-6"], "item": ["A", "B", "A", "B"], "location": "L1", "family": "F",
+        "region": "R", "all": "all", "actual": [10.0, 30.0, 20.0, 20.0], "consensus": [12.0, 27.0, 25.0, 20.0],
+        "value_dc": [np.nan, 33.0, 18.0, 26.0]})
+    table = wape_by_lag(frame, ["dc"]).set_index(["level", "lag bucket"])
+    # lag 1, dc has cell B only: item |30 − 33| / 30, consensus on B |30 − 27| / 30
+    assert table.loc[("item × location", "1"), "source WAPE"] == 100 * 3 / 30
+    assert table.loc[("item × location", "1"), "consensus on its cells"] == 100 * 3 / 30
+    # lag 4: both cells; item Σ|e| = 2 + 6 against 40, family total |40 − 44| against 40; consensus 5 + 0, |40 − 45|
+    assert np.isclose(table.loc[("item × location", "4-6"), "source WAPE"], 100 * 8 / 40)
+    assert np.isclose(table.loc[("family", "4-6"), "source WAPE"], 100 * 4 / 40)
+    assert np.isclose(table.loc[("family", "4-6"), "consensus on its cells"], 100 * 5 / 40)
+    assert np.isclose(table.loc[("family", "4-6"), "gap"], 100 * (5 - 4) / 40)
