@@ -9,8 +9,11 @@ intake: 12 past cycles and the current one, an 18-month horizon, sales at
 family × region, DCs at item × location (DC-5 weekly), marketing events, and
 the statistical source made by the run.  Every step is the CLI a planner
 would type, run as its own process, timed by the wall clock, with its peak
-memory taken as the largest sum of the resident memory of the process and
-its children (sampled from /proc every 0.2 s).
+memory sampled from /proc every 0.2 s in two ways: the largest sum of the
+resident memory (RSS) of the process and its children, and the largest sum
+of their proportional memory (PSS).  RSS counts the pages a forked worker
+shares with the run once more for every worker; PSS splits them, so it is
+what the machine must actually hold.
 
 * cold run: the first run, so every past cycle's statistical forecast is made from scratch;
 * warm run: after one new DC file for the current cycle;
@@ -42,8 +45,13 @@ sys.path.insert(0, str(HERE))
 from scale_store import CURRENT, build_store, correction_file  # noqa: E402
 
 
-def _tree_rss(root: int) -> int:
-    """Resident memory (bytes) of a process and all its descendants."""
+def _tree_memory(root: int) -> tuple[int, int]:
+    """Resident and proportional memory (bytes) of a process and all its descendants.
+
+    RSS counts a page in every process that maps it, so forked workers count the pages they share with the run
+    again; PSS (Linux smaps_rollup) splits each shared page among its sharers, so the tree's PSS is the memory the
+    machine actually gives it.
+    """
     parents: dict[int, int] = {}
     rss: dict[int, int] = {}
     for entry in os.listdir("/proc"):
@@ -61,27 +69,40 @@ def _tree_rss(root: int) -> int:
             rss[int(entry)] = resident
         except (FileNotFoundError, ProcessLookupError, PermissionError):
             continue
-    total = 0
+    total_rss = total_pss = 0
     for pid, resident in rss.items():
         walk = pid
         while walk and walk != root:
             walk = parents.get(walk)
         if walk == root:
-            total += resident
-    return total
+            total_rss += resident
+            total_pss += _pss(pid)
+    return total_rss, total_pss
 
 
-def timed(args: list[str], *, db: str) -> tuple[float, int, str]:
-    """Run the CLI as a planner would; (seconds, peak tree RSS in bytes, output)."""
+def _pss(pid: int) -> int:
+    try:
+        with open(f"/proc/{pid}/smaps_rollup") as rollup:
+            for line in rollup:
+                if line.startswith("Pss:"):
+                    return int(line.split()[1]) * 1024
+    except (FileNotFoundError, ProcessLookupError, PermissionError):
+        pass
+    return 0
+
+
+def timed(args: list[str], *, db: str) -> tuple[float, tuple[int, int], str]:
+    """Run the CLI as a planner would; (seconds, (peak tree RSS, peak tree PSS) in bytes, output)."""
     command = [sys.executable, "-c", "from consensus.cli import entry; entry()", "--db", db, *args]
     start = time.perf_counter()
     process = subprocess.Popen(command, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True,
                                env={**os.environ, "PYTHONPATH": str(HERE.parent)})
-    peak = [0]
+    peak = [0, 0]
 
     def sample():
         while process.poll() is None:
-            peak[0] = max(peak[0], _tree_rss(process.pid))
+            rss, pss = _tree_memory(process.pid)
+            peak[0], peak[1] = max(peak[0], rss), max(peak[1], pss)
             time.sleep(0.2)
 
     sampler = threading.Thread(target=sample, daemon=True)
@@ -91,7 +112,7 @@ def timed(args: list[str], *, db: str) -> tuple[float, int, str]:
     sampler.join()
     if process.returncode != 0:
         raise SystemExit(f"'consensus {' '.join(args)}' failed:\n{output[-3000:]}")
-    return elapsed, peak[0], output
+    return elapsed, (peak[0], peak[1]), output
 
 
 def store_bytes(db: str) -> int:
@@ -125,7 +146,9 @@ def measure(n: int, db: str, folder: Path, *, log) -> dict:
     export, export_rss, _ = timed(["export", "--cycle", CURRENT, "--out", str(export_path)], db=db)
     digest = hashlib.sha256(export_path.read_bytes()).hexdigest()
     return {"series": n, "build_s": build, "cold_s": cold, "warm_s": warm, "pack_s": pack, "export_s": export,
-            "peak_gb": max(cold_rss, warm_rss, pack_rss, export_rss) / 1e9, "store_mb": store_bytes(db) / 1e6,
+            "peak_gb": max(m[0] for m in (cold_rss, warm_rss, pack_rss, export_rss)) / 1e9,
+            "peak_pss_gb": max(m[1] for m in (cold_rss, warm_rss, pack_rss, export_rss)) / 1e9,
+            "store_mb": store_bytes(db) / 1e6,
             "pages": pack_out.split("(")[-1].split(" ")[0] if "(" in pack_out else "?", "export_sha": digest}
 
 
@@ -160,14 +183,14 @@ def main() -> int:
             rows.append({"backend": "postgres", **measure(n, args.postgres, pg_folder, log=log)})
     print()
     header = (f"{'backend':<9} {'series':>8} {'cold run':>9} {'warm run':>9} {'pack':>7} {'pages':>6} "
-              f"{'export':>7} {'peak GB':>8} {'store MB':>9} {'MB/series/cycle':>16} {'cold s/1k':>10}")
+              f"{'export':>7} {'RSS GB':>7} {'PSS GB':>7} {'store MB':>9} {'per series·cycle':>17} {'cold s/1k':>10}")
     print(header)
     print("-" * len(header))
     for r in rows:
         per = r["store_mb"] * 1e6 / (r["series"] * 13) / 1e3
         print(f"{r['backend']:<9} {r['series']:>8,} {r['cold_s']:>8.1f}s {r['warm_s']:>8.1f}s {r['pack_s']:>6.1f}s "
-              f"{r['pages']:>6} {r['export_s']:>6.1f}s {r['peak_gb']:>8.2f} {r['store_mb']:>9.0f} "
-              f"{per:>13.2f} KB {r['cold_s'] / (r['series'] / 1000):>10.2f}")
+              f"{r['pages']:>6} {r['export_s']:>6.1f}s {r['peak_gb']:>7.2f} {r['peak_pss_gb']:>7.2f} "
+              f"{r['store_mb']:>9.0f} {per:>14.2f} KB {r['cold_s'] / (r['series'] / 1000):>10.2f}")
     for n in args.series:
         pair = [r for r in rows if r["series"] == n]
         if len(pair) == 2:
@@ -175,7 +198,8 @@ def main() -> int:
             print(f"N = {n:,}: PostgreSQL / SQLite cold run {pair[1]['cold_s'] / pair[0]['cold_s']:.2f}×, warm run "
                   f"{pair[1]['warm_s'] / pair[0]['warm_s']:.2f}×; exports {'identical' if same else 'DIFFER'}")
     print("\ntargets at 100,000 series: cold < 600 s, warm < 120 s, pack < 60 s, peak < 6 GB, store < 3,000 MB "
-          "(≤ 2 KB per series per cycle)")
+          "(≤ 2 KB per series per cycle); peak memory is the tree's RSS (shared pages counted per process) and "
+          "PSS (shared pages split: what the machine holds)")
     print(f"build times (intake, not a target): " + ", ".join(f"{r['series']:,}: {r['build_s']:.0f} s" for r in rows))
     return 0
 

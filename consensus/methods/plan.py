@@ -389,8 +389,9 @@ def _frame_key(ctx: _Context, c: CycleInputs) -> str:
 
 
 #: Largest past-cycle scoring frame (rows) handed back to be kept in memory: above it a frame costs more to
-#: pack and hold than to remake, and a small catalogue is where the per-cycle overhead dominates.
-FRAME_MEMO_MAX_ROWS = 1_000_000
+#: pack, send back and hold than to remake, and a small catalogue (the sample company's is about 16,000 rows)
+#: is where the per-cycle overhead dominates.
+FRAME_MEMO_MAX_ROWS = 200_000
 
 
 def _stat_task(args) -> bytes:
