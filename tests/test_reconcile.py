@@ -108,7 +108,7 @@ def test_bottom_level_equals_statsmodels_gls(larger, method):
     W = {"ols": np.eye(n_nodes), "wls_var": np.diag((residuals ** 2).mean(axis=1)),
          "mint_shrink": dense_shrunk_covariance(residuals)[1]}[method]
     got = reconcile(base, S, method=method, residuals=residuals, nonnegative=False)
-    for period in range(base.shape[1]):
+    for period in (0, base.shape[1] - 1):  # two periods suffice: each statsmodels fit factors W afresh
         params = GLS(base[:, period], S.toarray(), sigma=W).fit().params
         np.testing.assert_allclose(got[-n_bottom:, period], params, rtol=1e-6, atol=1e-6)
 
