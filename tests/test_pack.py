@@ -529,6 +529,29 @@ def test_joined_page_labels_run_on_without_a_gap(parts_pack):
     assert f"Page 1 of {n}" in pages[0]
 
 
+def test_family_runs_and_back_are_laid_out_once(parts_inputs, tmp_path, monkeypatch):
+    # Their "Page X of N" is printed over them at the join, so no part waits on another's page count; before,
+    # every part was laid out a second time once the counts came in. The front lays out again only to take the
+    # page numbers it lists. Counted where each part's HTML is made (in this process, for every worker's part).
+    import consensus.pack.render as render
+
+    made = []
+    original = render._part_html
+
+    def counting(context, part, numbers):
+        made.append((part.part, tuple(f["anchor"] for f in part.families)))
+        return original(context, part, numbers)
+
+    monkeypatch.setattr(render, "_part_html", counting)
+    pack = render.render_pack(parts_inputs, pdf_path=tmp_path / "pack.pdf", workers=2)
+    assert "join" in pack.seconds
+    laid_out = [anchor for part, anchors in made if part == "families" for anchor in anchors]
+    n_families = parts_inputs.items["family"].nunique()
+    assert sorted(laid_out) == sorted(f"family-{i}" for i in range(1, n_families + 1))  # each family once
+    assert made.count(("back", ())) == 1
+    assert made.count(("front", ())) == 2  # counted, then with its page numbers (this pack's front keeps its length)
+
+
 def test_joined_contents_point_at_the_real_family_pages(parts_inputs, parts_pack):
     pages = pdf_pages_text(parts_pack.pdf_path)
     contents = next(t for t in pages if re.search(r"^Contents$", t, re.M))

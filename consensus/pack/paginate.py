@@ -3,11 +3,14 @@
 A long pack spends nearly all its time in WeasyPrint, which uses one core.  The
 renderer can instead cut the pack into parts (front matter, runs of family
 pages, back matter), lay each out in its own process and join the PDFs with
-pypdf.  Each part is a complete HTML document that is told its first page
-number and the pack's page count, and prints the page numbers of the anchors it
-refers to as given, so running headers, "Page X of N" and the contents stay
-right.  Links that cross parts are recorded here (page, target, rectangle) and
-added to the joined PDF as link annotations.
+pikepdf (or pypdf).  Each part is a complete HTML document; the front matter
+prints the page numbers of the anchors it refers to as given.  No part prints its
+own "Page X of N": that needs every other part's page count, and waiting for them
+meant laying every part out twice.  The parts keep that footer box hidden, and a
+document of blank pages that hold only the page numbers is laid out once the
+count is known and printed over the joined pages.  Links that cross parts are
+recorded here (page, target, rectangle) and added to the joined PDF as link
+annotations.
 
 This module imports WeasyPrint and pypdf only, so a worker process starts
 without pandas or matplotlib.
@@ -156,20 +159,28 @@ def warm_up() -> int:
 # --------------------------------------------------------------------------- joining
 
 
-def join_parts(paths: list[str], firsts: list[int], parts: list[LaidOutPart], out_path: str | Path) -> int:
+def join_parts(paths: list[str], firsts: list[int], parts: list[LaidOutPart], out_path: str | Path, *,
+               page_numbers: str | None = None) -> int:
     """Join the parts' PDFs in order and add the links that cross parts; returns the page count.
 
     ``firsts[k]`` is the 0-based page of the joined PDF where part ``k`` starts.
     Named destinations and outline entries (bookmarks) of every part are kept;
     the later parts' bookmarks go under the first part's top entry, as in a
-    pack laid out whole.  pikepdf (qpdf) joins a 250-page pack in about a
-    second; without it pypdf does the same in pure Python, several times slower.
+    pack laid out whole.  ``page_numbers`` is a PDF of as many pages, page ``i``
+    of which is printed over joined page ``i`` (the parts' "Page X of N").
+    pikepdf (qpdf) joins a 250-page pack in about a second; without it pypdf
+    does the same in pure Python, several times slower.
     """
     try:
         import pikepdf  # noqa: F401
     except ImportError:
-        return _join_with_pypdf(paths, firsts, parts, out_path)
-    return _join_with_pikepdf(paths, firsts, parts, out_path)
+        return _join_with_pypdf(paths, firsts, parts, out_path, page_numbers)
+    return _join_with_pikepdf(paths, firsts, parts, out_path, page_numbers)
+
+
+def _check_page_numbers(n_numbers: int, n_pages: int) -> None:
+    if n_numbers != n_pages:
+        raise RuntimeError(f"page numbers for {n_numbers} pages, but the joined pack has {n_pages}")
 
 
 def _anchor_pages(firsts: list[int], parts: list[LaidOutPart]) -> dict[str, int]:
@@ -194,7 +205,7 @@ def _cross_part_links(firsts, parts, where: dict[str, int]) -> list[tuple[int, i
     return links
 
 
-def _join_with_pikepdf(paths, firsts, parts, out_path) -> int:
+def _join_with_pikepdf(paths, firsts, parts, out_path, page_numbers=None) -> int:
     import pikepdf
     from pikepdf import Array, Dictionary, Name, NameTree
 
@@ -239,9 +250,14 @@ def _join_with_pikepdf(paths, firsts, parts, out_path) -> int:
     if info is not None:
         for key, value in info.items():
             out.docinfo[key] = value
+    numbers = pikepdf.open(page_numbers) if page_numbers is not None else None
+    if numbers is not None:
+        _check_page_numbers(len(numbers.pages), len(out.pages))
+        for page, number in zip(out.pages, numbers.pages):
+            page.add_overlay(number)  # same page size, so drawn at its own place, unscaled
     out.save(out_path)
     n_pages = len(out.pages)
-    for source in sources:
+    for source in [*sources, *([numbers] if numbers is not None else [])]:
         source.close()
     return n_pages
 
@@ -260,7 +276,7 @@ def _copy_outline_item(item, page_index: dict, first: int):
     return copy
 
 
-def _join_with_pypdf(paths, firsts, parts, out_path) -> int:
+def _join_with_pypdf(paths, firsts, parts, out_path, page_numbers=None) -> int:
     from pypdf import PdfReader, PdfWriter
     from pypdf.annotations import Link
 
@@ -268,6 +284,11 @@ def _join_with_pypdf(paths, firsts, parts, out_path) -> int:
     writer = PdfWriter()
     for path in paths:
         writer.append(path)
+    if page_numbers is not None:
+        numbers = PdfReader(page_numbers)
+        _check_page_numbers(len(numbers.pages), len(writer.pages))
+        for page, number in zip(writer.pages, numbers.pages):
+            page.merge_page(number)
     metadata = PdfReader(paths[0]).metadata if paths else None
     if metadata:
         writer.add_metadata({key: str(value) for key, value in metadata.items()})

@@ -50,6 +50,7 @@ from consensus.resources import reports_dir
 
 LOGGER = logging.getLogger(__name__)
 TEMPLATE_NAME = "pack.html.j2"
+PAGE_NUMBERS_TEMPLATE = "page_numbers.html.j2"
 _TABLE_GAP = re.compile(r">\s+<(/?(?:td|th|tr|thead|tbody|tfoot|table|colgroup|col)\b)")
 STYLESHEET_NAME = "pack.css"
 #: The pieces a pack can be laid out in: all of it, or front matter, family pages and back matter apart.
@@ -144,15 +145,15 @@ def _render_context(
     inline_charts: bool,
     part: str = "all",
     families: list[dict] | None = None,
-    page_setup: dict[str, int] | None = None,
+    numbered_apart: bool = False,
     page_numbers: dict[str, int] | None = None,
 ) -> str:
     """Fill the templates; ``inline_charts`` puts SVG in the markup (screen) or in data: images (print).
 
     ``part`` picks the front matter, a run of family pages (``families``) or
-    the back matter, for a pack laid out in parts; ``page_setup`` then gives the
-    part's first page number and the pack's page count, and ``page_numbers``
-    the page of every anchor the part refers to.
+    the back matter, for a pack laid out in parts; ``numbered_apart`` then
+    hides the part's own "Page X of N" (printed over the joined PDF instead),
+    and ``page_numbers`` gives the page of every anchor the part refers to.
     """
     if part not in PARTS:
         raise InvalidSpec(f"part must be one of {PARTS}, got {part!r}")
@@ -162,7 +163,7 @@ def _render_context(
     html = env.get_template(TEMPLATE_NAME).render(
         **context, stylesheet=Markup(stylesheet), inline_charts=inline_charts, part=part,
         part_families=context["families"] if families is None else families,
-        page_setup=page_setup, page_numbers=page_numbers,
+        numbered_apart=numbered_apart, page_numbers=page_numbers,
     )
     # Whitespace between table tags becomes anonymous boxes in WeasyPrint; drop it.
     return _TABLE_GAP.sub(r"><\1", html)
@@ -268,7 +269,10 @@ def _render(inputs, pool, *, pdf_path, html_path, seconds, context_options) -> R
 # --------------------------------------------------------------------------- laying out in parts
 
 #: Packs with fewer families are laid out in one process: starting workers would cost more than it saves.
-PARALLEL_MIN_FAMILIES = 40
+#: Measured on 2 cores with each part laid out once: 12 families 5.5 s in parts against 6.9 s whole (invented
+#: scenario), the 20-family 10k bench store 6.2 s against 8.6 s; on a machine busy with other work, parts cost
+#: about 1.5 s more CPU (workers start, the front is laid out twice).
+PARALLEL_MIN_FAMILIES = 12
 #: Family-page parts per worker, so a worker that finishes early takes another part.
 PARTS_PER_WORKER = 3
 _MAX_ROUNDS = 4
@@ -294,27 +298,28 @@ def _family_runs(n_families: int, workers: int) -> list[tuple[int, int]]:
 
 @dataclass
 class _Part:
-    """One piece of the pack, what it was last laid out with, and what that gave."""
+    """One piece of the pack and what laying it out gave."""
 
     part: str
     families: list[dict]
     path: str
-    laid_out_with: tuple | None = None
     result: LaidOutPart | None = None
 
 
 def _render_pdf_in_parts(
     context: dict[str, Any], pdf_out: Path, *, pool, seconds: dict[str, float]
 ) -> tuple[int, tuple[str, ...], tuple[str, ...]]:
-    """Lay the PDF out in parts on ``workers`` processes and join them.
+    """Lay the PDF out in parts on the ``pool``'s processes and join them.
 
-    Page numbers are fixed point of the parts' page counts: the front matter and
-    back matter are first laid out only to count their pages and find their
-    anchors (the back in a worker while this process does the front); family
-    parts are assumed one page per family.  Every part is then laid out with the
-    numbering that follows, and any part whose numbering changed after the
-    counts came in (a family that ran onto a second page, front matter whose
-    length moved with its page numbers) is laid out again, until none changes.
+    Family runs and the back matter print no page number of their own (their
+    "Page X of N" is printed over them at the join), so each is laid out once,
+    on the workers, whatever the other parts' lengths.  Meanwhile this process
+    lays the front matter out with placeholder numbers of the widest kind, only
+    to count its pages and find its anchors.  Once every count is in, the front
+    is laid out with the page numbers that follow, again while its own length
+    or anchors move (its contents lists every family); then the page-number
+    pages are laid out (on a worker, during the front's last layout, for the
+    count it should settle at) and everything is joined.
     """
     import tempfile
 
@@ -322,57 +327,46 @@ def _render_pdf_in_parts(
     workers = pool._max_workers
     started_all = time.perf_counter()
     with tempfile.TemporaryDirectory(prefix="consensus-pack-") as folder:
-        parts = [_Part("front", [], f"{folder}/front.pdf")]
-        parts += [_Part("families", families[a:b], f"{folder}/families-{a:05d}.pdf")
+        front = _Part("front", [], f"{folder}/front.pdf")
+        back = _Part("back", [], f"{folder}/back.pdf")
+        middle = [_Part("families", families[a:b], f"{folder}/families-{a:05d}.pdf")
                   for a, b in _family_runs(len(families), workers)]
-        parts.append(_Part("back", [], f"{folder}/back.pdf"))
+        parts = [front, *middle, back]
 
-        # Counting pass: the back in a worker, the front here, with placeholder numbers of the widest kind.
         started = time.perf_counter()
-        placeholder = {"first": 1, "total": 999}
-        widest = _NumberedAnchors(999)
-        back_count = pool.submit(lay_out_part, _part_html(context, parts[-1], placeholder, widest), None)
-        front_doc = lay_out(_part_html(context, parts[0], placeholder, widest), in_parts=True)
+        # The back first, so it is not the part left running alone at the end.
+        futures = [(part, pool.submit(lay_out_part, _part_html(context, part, _NumberedAnchors()), part.path))
+                   for part in [back, *middle]]
+        front_doc = lay_out(_part_html(context, front, _NumberedAnchors(999)), in_parts=True)
         front_anchors, front_links = describe_part(front_doc)
-        parts[0].result = LaidOutPart(n_pages=len(front_doc.pages), anchors=front_anchors, outside_links=front_links)
+        front.result = LaidOutPart(n_pages=len(front_doc.pages), anchors=front_anchors, outside_links=front_links)
         del front_doc
-        parts[-1].result = back_count.result()
-        for part in parts[1:-1]:
-            part.result = LaidOutPart(
-                n_pages=len(part.families),
-                anchors={f["anchor"]: i for i, f in enumerate(part.families)}, outside_links=(),
-            )
         seconds["count"] = time.perf_counter() - started
-
-        started = time.perf_counter()
-        for _ in range(_MAX_ROUNDS):
-            firsts, total, numbers = _numbering(parts)
-            stale = []
-            for k, part in enumerate(parts):
-                setup = {"first": firsts[k] + 1, "total": total}
-                wanted = (setup["first"], total, numbers.for_part(part) if part.part == "front" else None)
-                if part.laid_out_with != wanted:
-                    stale.append((part, setup, wanted))
-            if not stale:
-                break
-            # Family parts and the back go to the workers; the front is laid out here meanwhile.
-            futures = [
-                (part, wanted, pool.submit(lay_out_part, _part_html(context, part, setup, numbers), part.path))
-                for part, setup, wanted in stale if part.part != "front"
-            ]
-            for part, setup, wanted in stale:
-                if part.part == "front":
-                    part.result, part.laid_out_with = lay_out_part(_part_html(context, part, setup, numbers),
-                                                                   part.path), wanted
-            for part, wanted, future in futures:
-                part.result, part.laid_out_with = future.result(), wanted
-        else:
-            raise RuntimeError("pack page numbers did not settle; a part keeps changing length")
+        for part, future in futures:
+            part.result = future.result()
         seconds["parts"] = time.perf_counter() - started
 
         started = time.perf_counter()
+        numbered = None
+        for _ in range(_MAX_ROUNDS):
+            firsts, total, numbers = _numbering(parts)
+            if numbered is None or numbered[0] != total:  # one file per count, so a stale one never overwrites it
+                path = f"{folder}/numbers-{total}.pdf"
+                numbered = (total, path, pool.submit(lay_out_part, _page_numbers_html(total), path))
+            laid_out = lay_out_part(_part_html(context, front, numbers), front.path)
+            settled = (laid_out.n_pages, laid_out.anchors) == (front.result.n_pages, front.result.anchors)
+            front.result = laid_out
+            if settled:
+                break
+        else:
+            raise RuntimeError("pack page numbers did not settle; the front matter keeps changing length")
+        numbered[2].result()
+        seconds["front"] = time.perf_counter() - started
+
+        started = time.perf_counter()
         firsts, total, _ = _numbering(parts)
-        n_pages = join_parts([p.path for p in parts], firsts, [p.result for p in parts], pdf_out)
+        n_pages = join_parts([p.path for p in parts], firsts, [p.result for p in parts], pdf_out,
+                             page_numbers=numbered[1])
         seconds["join"] = time.perf_counter() - started
     seconds["layout+pdf"] = time.perf_counter() - started_all
     fetched = tuple(url for p in parts for url in p.result.fetched)
@@ -381,7 +375,7 @@ def _render_pdf_in_parts(
 
 
 class _NumberedAnchors(dict):
-    """Page number of every anchor; ``for_part`` is the hashable view a part was laid out with."""
+    """Page number of every anchor (``default`` for any anchor when only counting pages)."""
 
     def __init__(self, default: int | None = None, pages: dict[str, int] | None = None) -> None:
         super().__init__(pages or {})
@@ -394,9 +388,6 @@ class _NumberedAnchors(dict):
 
     def __bool__(self) -> bool:  # the templates test "are page numbers given", not "are there any yet"
         return True
-
-    def for_part(self, part: _Part) -> tuple:
-        return tuple(sorted(self.items()))
 
 
 def _numbering(parts: list[_Part]) -> tuple[list[int], int, _NumberedAnchors]:
@@ -412,6 +403,14 @@ def _numbering(parts: list[_Part]) -> tuple[list[int], int, _NumberedAnchors]:
     return firsts, at, _NumberedAnchors(pages=pages)
 
 
-def _part_html(context: dict[str, Any], part: _Part, page_setup: dict[str, int], numbers: dict[str, int]) -> str:
+def _part_html(context: dict[str, Any], part: _Part, numbers: dict[str, int]) -> str:
     return _render_context(context, inline_charts=False, part=part.part, families=part.families,
-                           page_setup=page_setup, page_numbers=numbers)
+                           numbered_apart=True, page_numbers=numbers)
+
+
+def _page_numbers_html(total: int) -> str:
+    """``total`` blank pages holding only "Page X of N", in the pack's page setup and footer face."""
+    root = reports_dir()
+    stylesheet = (root / "styles" / STYLESHEET_NAME).read_text(encoding="utf-8")
+    return _environment(str(root / "templates")).get_template(PAGE_NUMBERS_TEMPLATE).render(
+        stylesheet=Markup(stylesheet), total=int(total))
