@@ -324,18 +324,21 @@ class HistoryLedger:
                                              "forecast": forecast, "actual": actual}))
 
     def _add_nodes(self, name, source, sid, month, forecast, actual, unordered) -> None:
-        """Each upper level's group totals of forecast and orders, per source and month (one frame per cycle)."""
-        parts = []
+        """Each upper level's group totals of forecast and orders, per source and month (one frame per cycle).
+
+        Summed level by level: one level's cells at a time is all the memory it takes (a cycle of 100,000
+        series has millions of scored cells, and five levels' copies at once cost gigabytes).
+        """
+        summed = []
         for level_code, (level, (codes, _, offset)) in enumerate(self._levels.items()):
-            parts.append(pd.DataFrame({"level": level_code, "source": source, "node": offset + codes[sid],
-                                       "month": month, "forecast": forecast, "actual": actual}))
+            cells = pd.DataFrame({"source": source, "node": offset + codes[sid], "month": month,
+                                  "forecast": forecast, "actual": actual})
             if unordered is not None:
-                parts.append(unordered.assign(level=level_code, node=offset + self._node_codes(level, unordered))[
-                    parts[0].columns])
-        cells = pd.concat(parts, ignore_index=True)
-        keys = {k: cells[k].to_numpy() for k in ("level", "source", "node", "month")}
-        summed = _sums_by(keys, cells[["forecast", "actual"]])
-        self._nodes.append(summed.drop(columns="level").assign(cycle=name))
+                cells = pd.concat([cells, unordered.assign(node=offset + self._node_codes(level, unordered))[
+                    cells.columns]], ignore_index=True)
+            keys = {k: cells[k].to_numpy() for k in ("source", "node", "month")}
+            summed.append(_sums_by(keys, cells[["forecast", "actual"]]))
+        self._nodes.append(pd.concat(summed, ignore_index=True).assign(cycle=name))
 
     def _unordered_cells(self, frame: pd.DataFrame, month: np.ndarray, outside: np.ndarray) -> pd.DataFrame | None:
         """Forecasts of series that never had an order, scored at zero in group totals (months whose orders are known).
