@@ -426,6 +426,8 @@ def test_weekly_split_keeps_the_half_year_total(monthly_units):
     exact = sum(u / pd.Period(m).days_in_month * sum(
         1 for _, days in weeks for d in days if max(d.strftime("%Y-%m"), months[0]) == m)
         for u, m in zip(monthly_units, months))
-    # Cumulative rounding: the rounded weeks sum to the rounded exact total, and none is negative.
-    assert weekly["quantity"].sum() == round(exact)
+    # Cumulative rounding: the rounded weeks sum to within half a unit of the exact total, and none is
+    # negative. (Not "== round(exact)": a total that lands on .5 rounds either way, depending on the order the
+    # floats were added in; hypothesis found such a case.)
+    assert abs(weekly["quantity"].sum() - exact) <= 0.5 + 1e-9
     assert (weekly["quantity"] >= 0).all()
