@@ -166,8 +166,7 @@ def test_past_cycles_kept_in_the_process_memo_give_the_digits_of_cycles_made_afr
     spec = RunSpec.from_dict(run.spec)
     _, fresh, _ = compute_cycle(CYCLE, url=url, spec=spec, through=run.through_seq, use_cache=False,
                                 require_open=False, jobs=1)
-    cache.MEMO.entries.clear()
-    cache.MEMO.size = 0
+    cache.MEMO.clear()
     with session_scope(url) as s:  # no kept history summary: the past cycles must be scored again
         s.execute(text("DELETE FROM cacheentry WHERE kind = 'history'"))
     loaded, _, _ = compute_cycle(CYCLE, url=url, spec=spec, through=run.through_seq, require_open=False, jobs=1)

@@ -198,7 +198,8 @@ class HistoryLedger:
         self._pattern_codes, self._pattern_names = _codes(pd.Series(self.book.pattern).replace("", "unknown"))
         self._levels = {}
         # Nodes are every pair the book or the master can name, so a series without orders has a node too.
-        # Each level's nodes get a block of one numbering (offset + code), so every level is summed in one pass.
+        # Each level's nodes get a block of one numbering (offset + code), so the summary labels every level's
+        # totals in one vectorised lookup.
         names = {"family": sorted({*keys["family"], *self.book.family_of.dropna(), UNKNOWN_FAMILY}),
                  "region": sorted({*keys["region"], *self.book.region_of.dropna(), UNKNOWN_REGION}),
                  "location": sorted({*keys["location"], *self.book.region_of.index}), "all": ["all"]}
@@ -330,7 +331,7 @@ class HistoryLedger:
         series has millions of scored cells, and five levels' copies at once cost gigabytes).
         """
         summed = []
-        for level_code, (level, (codes, _, offset)) in enumerate(self._levels.items()):
+        for level, (codes, _, offset) in self._levels.items():
             cells = pd.DataFrame({"source": source, "node": offset + codes[sid], "month": month,
                                   "forecast": forecast, "actual": actual})
             if unordered is not None:

@@ -313,6 +313,10 @@ class _Context:
     made: list[str] = field(default_factory=list)
     prepared: dict = field(default_factory=dict)  # (kind, cycle) -> the part's frames
     keys: dict = field(default_factory=dict)  # (key maker, cycle) -> the part's cache key
+    master: str = field(init=False)  # the master data's digest, made once: every part key reads it
+
+    def __post_init__(self) -> None:
+        self.master = self.inputs.master_digest()
 
 
 #: The context forked worker processes read (set before the pool starts, so it reaches them by fork).
@@ -357,12 +361,6 @@ def _memo_key(make):
     return key
 
 
-def _master_digest(ctx: _Context) -> str:
-    if "master" not in ctx.keys:
-        ctx.keys["master"] = ctx.inputs.master_digest()
-    return ctx.keys["master"]
-
-
 @_memo_key
 def _statistical_key(ctx: _Context, c: CycleInputs) -> str:
     return digest_of("statistical", METHOD_VERSION, c.name, c.horizon, ctx.history.digest_at(c.name),
@@ -375,7 +373,7 @@ def _aligned_key(ctx: _Context, c: CycleInputs) -> str:
     return digest_of("aligned", METHOD_VERSION, c.name, forecasts[["seq", "source", "lines_sha256"]].astype(str)
                      .values.tolist(), [str(d) for d in forecasts["scope_detail"]],
                      [list(m or []) for m in forecasts["months"]], ctx.history.digest_at(c.name),
-                     _master_digest(ctx), ctx.spec.mix_window_months)
+                     ctx.master, ctx.spec.mix_window_months)
 
 
 @_memo_key
@@ -385,7 +383,7 @@ def _frame_key(ctx: _Context, c: CycleInputs) -> str:
     events = c.submissions[c.submissions["kind"] == "events"]
     return digest_of("frame", METHOD_VERSION, c.name, c.horizon, _statistical_key(ctx, c), _aligned_key(ctx, c),
                      events[["seq", "source", "lines_sha256"]].astype(str).values.tolist(),
-                     [str(d) for d in events["scope_detail"]], _master_digest(ctx))
+                     [str(d) for d in events["scope_detail"]], ctx.master)
 
 
 #: Largest past-cycle scoring frame (rows) handed back to be kept in memory: above it a frame costs more to
@@ -599,7 +597,7 @@ def _history_key(ctx: _Context) -> str:
         past_keys.append([c.name, c.horizon, forecasts, [str(d) for d in c.submissions["scope_detail"]],
                           frame_digest(c.published) if c.published is not None else None])
     return digest_of("history", METHOD_VERSION, inputs.cycle.name, past_keys, ctx.history.digest_at(inputs.cycle.name),
-                     _master_digest(ctx), spec.mix_window_months, spec.weights.segment,
+                     ctx.master, spec.mix_window_months, spec.weights.segment,
                      spec.reconciliation != "bottom_up", list(spec.band_levels), spec.band_rule,
                      _statistical_key(ctx, inputs.cycle))
 

@@ -38,6 +38,10 @@ class ProcessMemo:
             self.entries.move_to_end(key)
         return content
 
+    def clear(self) -> None:
+        self.entries.clear()
+        self.size = 0
+
     def put(self, key: str, content: bytes) -> None:
         if len(content) > self.limit_bytes:
             return
