@@ -696,7 +696,7 @@ def _compute(ctx: _Context) -> PlanResult:
     bias, corrected_rows = _corrected_sources(summary, combined_rows, cycle.name, segments, present, inputs, spec)
     weights = _weights(summary, cycle.name, segments, present, spec)
     combined = combine_sources(corrected_rows, weights, items=inputs.items, locations=inputs.locations,
-                               spec=spec.weights)
+                               spec=spec.weights, audit=False)
     table = combined.consensus
     reconciled = reconcile_hierarchy(table, corrected_rows, summary.cell_errors if summary.cell_errors is not None
                                      else _no_errors(), items=inputs.items, locations=inputs.locations,

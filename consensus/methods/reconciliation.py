@@ -275,7 +275,8 @@ def _level_bases(table: pd.DataFrame, current: pd.DataFrame, errors: pd.DataFram
         names = sorted(level_sources["source"].unique())
         weights = estimate_weights(level_errors, cycle=cycle, items=level_items, locations=level_locations,
                                    spec=spec, sources=names)
-        combined = combine_sources(level_sources, weights, items=level_items, locations=level_locations, spec=spec)
+        combined = combine_sources(level_sources, weights, items=level_items, locations=level_locations, spec=spec,
+                                   audit=False)
         entry = {"base": combined.consensus[["item", "location", "period", "consensus"]]}
         if with_residuals:
             entry["residuals"] = _combined_residuals(level_errors, weights, spec=spec, level_items=level_items,
