@@ -28,6 +28,7 @@ Run:  python bench/bench_backtest.py                         (the default spec, 
       python bench/bench_backtest.py --specs default --spec 'k2={"bias": {"shrinkage_cycles": 2}}'
                                                                 (any setting over the default)
       python bench/bench_backtest.py --quiet --by-lag            (where a miss comes from: level × lag bucket)
+      python bench/bench_backtest.py --quiet --score-from 2026-02  (also scored on the later cycles only)
 """
 
 from __future__ import annotations
@@ -346,6 +347,9 @@ def main() -> None:
     parser.add_argument("--quiet", action="store_true", help="the WAPE table and the verdicts only")
     parser.add_argument("--by-lag", action="store_true",
                         help="also the WAPE of the consensus against each source by level and lag bucket")
+    parser.add_argument("--score-from", metavar="CYCLE",
+                        help="also the WAPE table on the cycles from CYCLE on (the first replayed cycles have "
+                             "no error record to weigh the sources by)")
     args = parser.parse_args()
     specs = named_specs()
     for text in args.spec:
@@ -378,6 +382,15 @@ def main() -> None:
               "on the same cells")
         print(table.round(2).T.to_string())
         print("consensus worse than a single source:", misses(table, sources) or "nowhere")
+        if args.score_from:
+            later = errors[errors["cycle"] >= args.score_from]
+            if later.empty:
+                parser.error(f"--score-from {args.score_from}: no replayed cycle from then on "
+                             f"({cycles[0]} … {cycles[-1]})")
+            table = wape_by_level(later, sources)
+            print(f"\nWAPE % by level on the cycles from {args.score_from} on")
+            print(table.round(2).T.to_string())
+            print("consensus worse than a single source:", misses(table, sources) or "nowhere")
         if args.by_lag:
             print("\nWAPE % by level and lag bucket: each source on its cells, the consensus on the same cells "
                   "(gap > 0: the consensus is behind)")
