@@ -156,6 +156,23 @@ def test_any_number_of_processes_gives_the_same_digits_on_the_sample_company(dem
 
 
 @pytest.mark.slow
+def test_how_the_statistical_fits_are_grouped_changes_no_digit_and_no_row(demo_url, monkeypatch):
+    """The fits' group count is a memory setting: every part, rows in order, is the same for 2 groups as for 64."""
+    with session_scope(demo_url, write=False) as s:
+        run = latest_run(s, CYCLE)
+    spec = RunSpec.from_dict(run.spec)
+    results = []
+    for groups in (2, 64):
+        monkeypatch.setattr(plan, "STATISTICAL_GROUPS", groups)
+        _, result, _ = compute_cycle(CYCLE, url=demo_url, spec=spec, through=run.through_seq, use_cache=False,
+                                     require_open=False, jobs=1)
+        results.append(result)
+    few, many = results
+    for name in few.parts:
+        pd.testing.assert_frame_equal(few.parts[name], many.parts[name], check_exact=True, obj=name)
+
+
+@pytest.mark.slow
 def test_past_cycles_kept_in_the_process_memo_give_the_digits_of_cycles_made_afresh(demo_dir, tmp_path):
     """A run that finds its past cycles' scoring frames in memory equals one that made them (and found none)."""
     from consensus.store import cache

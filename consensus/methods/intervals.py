@@ -133,9 +133,10 @@ def _with_lag_bucket(frame: pd.DataFrame) -> pd.DataFrame:
 
 
 def _group_quantiles(errors: pd.DataFrame, keys: list[str], probabilities: list[float]) -> pd.DataFrame:
-    """Per group: count, MAD and the empirical quantiles of the relative error."""
+    """Per group: count, MAD and the empirical quantiles of the relative error (groups in key order, so the
+    table does not depend on the order the errors came in)."""
     if keys:
-        grouped = errors.assign(_abs=errors["relative"].abs()).groupby(keys, sort=False, dropna=False)
+        grouped = errors.assign(_abs=errors["relative"].abs()).groupby(keys, sort=True, dropna=False)
         summary = grouped.agg(n=("relative", "size"), mad=("_abs", "mean"))
         quantiles = grouped["relative"].quantile(probabilities).unstack()
     else:
@@ -220,7 +221,7 @@ def band_table(past_errors: pd.DataFrame, *, levels: Sequence[float] = (0.8, 0.9
     group_keys = list(keys)
     if rule == "relative_by_size":
         # As many classes as the errors allow: on average min_errors errors per class and group.
-        n_groups = max(1, errors.groupby(keys, sort=False, dropna=False).ngroups) if keys else 1
+        n_groups = max(1, errors.groupby(keys, sort=True, dropna=False).ngroups) if keys else 1
         affordable = int(np.clip(len(errors) // (min_errors * n_groups), 1, size_classes))
         edges = size_class_edges(f_past[usable].to_numpy(), size_classes=affordable)
         errors["_size_class"] = np.searchsorted(edges, f_past[usable].to_numpy(), side="right")
