@@ -146,12 +146,13 @@ def _kill(child, *, after_s: float | None = None, when=None, limit_s: float = 12
         if when is not None and when():
             break
         time.sleep(0.001)
-    killed = child.poll() is None
-    if killed:
+    if child.poll() is None:
         child.send_signal(signal.SIGKILL)
     child.communicate(timeout=60)
-    if killed:
-        assert child.returncode == -signal.SIGKILL
+    # The child can finish between the poll and the signal: then it was not killed, and it must have succeeded.
+    killed = child.returncode == -signal.SIGKILL
+    if not killed:
+        assert child.returncode == 0, child.returncode
     return killed
 
 
