@@ -221,7 +221,7 @@ def band_table(past_errors: pd.DataFrame, *, levels: Sequence[float] = (0.8, 0.9
     group_keys = list(keys)
     if rule == "relative_by_size":
         # As many classes as the errors allow: on average min_errors errors per class and group.
-        n_groups = max(1, errors.groupby(keys, sort=True, dropna=False).ngroups) if keys else 1
+        n_groups = max(1, errors.groupby(keys, sort=False, dropna=False).ngroups) if keys else 1
         affordable = int(np.clip(len(errors) // (min_errors * n_groups), 1, size_classes))
         edges = size_class_edges(f_past[usable].to_numpy(), size_classes=affordable)
         errors["_size_class"] = np.searchsorted(edges, f_past[usable].to_numpy(), side="right")

@@ -41,6 +41,7 @@ import zlib
 from collections.abc import Callable
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import asdict, dataclass, field
+from functools import partial
 from multiprocessing import get_context
 from typing import Protocol
 
@@ -397,12 +398,64 @@ def _frame_key(ctx: _Context, c: CycleInputs) -> str:
 FRAME_MEMO_MAX_ROWS = 200_000
 
 
-def _give_back_freed_memory() -> None:
-    """Hand the memory a finished task freed back to the system (glibc's malloc_trim; elsewhere nothing).
+def _stat_task(args) -> bytes:
+    """In a worker (or here): one statistical group of one cycle, packed."""
+    name, horizon, group = args
+    ctx = _WORKER
+    forecast, naive, series = _fit_group(ctx.history, ctx.inputs.items, name, horizon, group)
+    return pack_frames({"statistical": forecast, "naive": naive, "series": series})
 
-    A worker's heap otherwise keeps the high-water mark of its largest task, and the
-    idle pages of two workers at 100,000 series are gigabytes the machine must hold.
+
+def _align_task(name: str) -> bytes:
+    """In a worker (or here): one cycle's submitted sources at planning grain, in force, packed."""
+    ctx = _WORKER
+    c = _cycle(ctx, name)
+    forecasts = c.submissions[c.submissions["kind"] == "forecast"]
+    lines = _cycle_lines(ctx, c, "forecast")
+    aligned, warnings = _align(lines, forecasts, c.name, ctx.inputs, ctx.history, ctx.spec.mix_window_months)
+    return pack_frames({"aligned": aligned, "warnings": pd.DataFrame({"text": warnings}, dtype=object)})
+
+
+def _cycle(ctx: _Context, name: str) -> CycleInputs:
+    return next(c for c in (ctx.inputs.cycle, *ctx.inputs.past) if c.name == name)
+
+
+def _worker_start() -> None:
+    """A forked worker opens its own store connections (the parent's are not shared across processes)."""
+    from consensus.store.db import get_engine
+
+    get_engine.cache_clear()
+
+
+def _new_pool(jobs: int) -> ProcessPoolExecutor:
+    """Workers forked from this process, so they read ``_WORKER`` (and ``_WORKER_LEDGER``) as they are now."""
+    return ProcessPoolExecutor(max_workers=jobs, mp_context=get_context("fork"), initializer=_worker_start)
+
+
+def _pool_map(pool: ProcessPoolExecutor, task: Callable, items: list, **kwargs):
+    """``pool.map`` of a task, with the two things that keep two workers' memory down at 100,000 series.
+
+    Before the fork, the parent's objects are frozen out of the garbage collector
+    (gc.freeze): a collection writes to every tracked object's header, which would copy
+    the inherited pages into each worker.  After each task, the worker hands what it
+    freed back to the system (glibc's malloc_trim), or its heap keeps the high-water
+    mark of its largest task.  :func:`_close_pool` unfreezes.
     """
+    gc.collect()
+    gc.freeze()
+    return pool.map(partial(_trimmed, task), items, **kwargs)
+
+
+def _trimmed(task: Callable, args):
+    """In a worker: run one task, then give back the memory it freed."""
+    try:
+        return task(args)
+    finally:
+        _malloc_trim()
+
+
+def _malloc_trim() -> None:
+    """glibc's malloc_trim(0); nothing where there is no glibc."""
     global _LIBC
     if _LIBC is None:
         try:
@@ -417,50 +470,12 @@ def _give_back_freed_memory() -> None:
 _LIBC = None
 
 
-def _before_fork() -> None:
-    """Keep the objects the workers inherit out of their garbage collector's sweeps.
-
-    A forked worker shares the parent's pages until it writes to them, and a collection
-    writes to every tracked object's header: frozen objects are left alone, so their pages
-    stay shared (gc.freeze, Python 3.7+).  ``compute_plan`` unfreezes when the run ends.
-    """
-    gc.collect()
-    gc.freeze()
-
-
-def _stat_task(args) -> bytes:
-    """In a worker (or here): one statistical group of one cycle, packed."""
-    name, horizon, group = args
-    ctx = _WORKER
-    try:
-        forecast, naive, series = _fit_group(ctx.history, ctx.inputs.items, name, horizon, group)
-        return pack_frames({"statistical": forecast, "naive": naive, "series": series})
-    finally:
-        _give_back_freed_memory()
-
-
-def _align_task(name: str) -> bytes:
-    """In a worker (or here): one cycle's submitted sources at planning grain, in force, packed."""
-    ctx = _WORKER
-    c = _cycle(ctx, name)
-    forecasts = c.submissions[c.submissions["kind"] == "forecast"]
-    lines = _cycle_lines(ctx, c, "forecast")
-    aligned, warnings = _align(lines, forecasts, c.name, ctx.inputs, ctx.history, ctx.spec.mix_window_months)
-    packed = pack_frames({"aligned": aligned, "warnings": pd.DataFrame({"text": warnings}, dtype=object)})
-    del lines, aligned
-    _give_back_freed_memory()
-    return packed
-
-
-def _cycle(ctx: _Context, name: str) -> CycleInputs:
-    return next(c for c in (ctx.inputs.cycle, *ctx.inputs.past) if c.name == name)
-
-
-def _worker_start() -> None:
-    """A forked worker opens its own store connections (the parent's are not shared across processes)."""
-    from consensus.store.db import get_engine
-
-    get_engine.cache_clear()
+def _close_pool(ctx: _Context) -> None:
+    """Stop the workers (their memory goes with them) and let the collector see every object again."""
+    if ctx.pool is not None:
+        ctx.pool.shutdown()
+        ctx.pool = None
+    gc.unfreeze()
 
 
 def _prepare(ctx: _Context, cycles: list[CycleInputs]) -> None:
@@ -495,12 +510,12 @@ def _prepare(ctx: _Context, cycles: list[CycleInputs]) -> None:
     ctx.progress(f"statistical forecast of {len({t[0] for t in stat_tasks})} cycle(s), alignment of "
                  f"{len(align_names)}")
     pool = ctx.pool if len(stat_tasks) + len(align_names) > 1 else None
-    if pool is not None:
-        _before_fork()
-    aligned = iter(pool.map(_align_task, align_names)) if pool is not None else (_align_task(n) for n in align_names)
+    aligned = iter(_pool_map(pool, _align_task, align_names)) if pool is not None else \
+        (_align_task(n) for n in align_names)
     groups: dict[str, list[bytes]] = {}
     expected = pd.Series([t[0] for t in stat_tasks]).value_counts().to_dict() if stat_tasks else {}
-    results = pool.map(_stat_task, stat_tasks, chunksize=1) if pool is not None else map(_stat_task, stat_tasks)
+    results = _pool_map(pool, _stat_task, stat_tasks, chunksize=1) if pool is not None else \
+        map(_stat_task, stat_tasks)
     for task, packed in zip(stat_tasks, results):
         groups.setdefault(task[0], []).append(packed)
         if len(groups[task[0]]) == expected[task[0]]:  # the cycle's last group: assemble it, keep it packed
@@ -511,7 +526,7 @@ def _prepare(ctx: _Context, cycles: list[CycleInputs]) -> None:
                           content=made)
             ctx.made.append(task[0])
             del parts
-            _give_back_freed_memory()
+            _malloc_trim()  # the parent too: the unpacked groups are gone, their pages need not stay
     for name, made in zip(align_names, aligned):
         ctx.prepared[("aligned", name)] = made
         ctx.cache.put(ctx.prepared[("key", "aligned", name)], kind="aligned", cycle=name, content=made)
@@ -546,10 +561,7 @@ def _score_task(args) -> tuple[dict, list[str], bytes | None]:
         published = c.published[c.published["period"] <= cycle]
         frame = pd.concat([frame, published[["item", "location", "period", "consensus"]]
                            .rename(columns={"consensus": "quantity"}).assign(source="consensus")], ignore_index=True)
-    state = _WORKER_LEDGER.score_cycle(name, frame, bands=published)
-    del frame, published
-    _give_back_freed_memory()
-    return state, warnings, made
+    return _WORKER_LEDGER.score_cycle(name, frame, bands=published), warnings, made
 
 
 def _unpacked(ctx: _Context, kind: str, c: CycleInputs, *, keep: bool = True) -> dict[str, pd.DataFrame]:
@@ -674,12 +686,11 @@ def _history_summary(ctx: _Context, patterns: pd.DataFrame, key: str,
     if tasks:
         ctx.progress(f"score {len(tasks)} past cycle(s)")
     if ctx.pool is not None and len(tasks) > 1:  # forked again, so the workers see the ledger
-        ctx.pool.shutdown()
-        ctx.pool = ProcessPoolExecutor(max_workers=ctx.pool._max_workers, mp_context=get_context("fork"),
-                                       initializer=_worker_start)
-        _give_back_freed_memory()
-        _before_fork()
-        results = ctx.pool.map(_score_task, tasks)
+        jobs = ctx.pool._max_workers
+        _close_pool(ctx)
+        ctx.pool = _new_pool(jobs)
+        _malloc_trim()
+        results = _pool_map(ctx.pool, _score_task, tasks)
     else:
         results = map(_score_task, tasks)
     for c, (state, warnings, made) in zip(inputs.past, results):  # merged in cycle order, whichever process
@@ -688,10 +699,7 @@ def _history_summary(ctx: _Context, patterns: pd.DataFrame, key: str,
         if made is not None:
             ctx.cache.put(_frame_key(ctx, c), kind="frame", cycle=c.name, content=made, durable=False)
     _WORKER_LEDGER = None
-    if ctx.pool is not None:  # no later step uses the workers: let go of their memory now
-        ctx.pool.shutdown()
-        ctx.pool = None
-        gc.unfreeze()
+    _close_pool(ctx)  # no later step uses the workers: let go of their memory now
     summary = ledger.summary()
     ctx.cache.put(key, kind="history", cycle=cycle, content=pack_frames(summary.frames()))
     return summary
@@ -720,13 +728,11 @@ def compute_plan(inputs: PlanInputs, spec: RunSpec | None = None, *, cache: Cach
                    cache=cache or NoCache(), pool=None, progress=progress or (lambda _m: None))
     _WORKER = ctx  # set before the pool starts: forked workers read it
     if jobs > 1 and series_count >= PARALLEL_MIN_SERIES:
-        ctx.pool = ProcessPoolExecutor(max_workers=jobs, mp_context=get_context("fork"), initializer=_worker_start)
+        ctx.pool = _new_pool(jobs)
     try:
         return _compute(ctx)
     finally:
-        if ctx.pool is not None:
-            ctx.pool.shutdown()
-        gc.unfreeze()
+        _close_pool(ctx)
         _WORKER = None
 
 
