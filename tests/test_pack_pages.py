@@ -285,3 +285,33 @@ def test_demo_store_pages_show_the_runs_stored_parts(demo_dir, demo_url):
     patterns = next(t for t in pages if re.search(r"^Accuracy by demand pattern$", t, re.M))
     consensus = pooled[(pooled["source"] == "consensus") & (pooled["pattern"] == "intermittent")].iloc[0]
     assert f"{consensus['wape']:.1f}%" in patterns and f"{consensus['mase']:.2f}" in patterns
+
+
+# --------------------------------------------------------------------------- headline tiles carry their error
+
+def _with_total_bands(inputs, low: float, high: float):
+    """The example with a stored total band at plan × (1 + low) … plan × (1 + high) in every month."""
+    plan = inputs.consensus.assign(consensus=pd.to_numeric(inputs.consensus["consensus"])).groupby(
+        "period", as_index=False)["consensus"].sum()
+    total = pd.DataFrame({"level": "total", "node": "all", "period": plan["period"],
+                          "lower_80": plan["consensus"] * (1 + low), "upper_80": plan["consensus"] * (1 + high),
+                          "lower_95": plan["consensus"] * (1 + 2 * low), "upper_95": plan["consensus"] * (1 + 2 * high)})
+    return dataclasses.replace(inputs, level_bands=pd.concat([inputs.level_bands, total], ignore_index=True))
+
+
+def test_each_headline_tile_reads_the_totals_stored_80_band_as_percent_of_plan(inputs):
+    # Hand-worked: a band from 0.9 to 1.2 times every month's total reads −10.0% to +20.0% in every window.
+    context = build_pack_context(_with_total_bands(inputs, -0.10, 0.20))
+    bands = [w["band_80"] for w in context["summary"]["windows"]]
+    assert bands and all(b is not None for b in bands)
+    assert [round(b["low_pct"], 6) for b in bands] == [-10.0] * len(bands)
+    assert [round(b["high_pct"], 6) for b in bands] == [20.0] * len(bands)
+    assert [b["months"] for b in bands] == [w["months"] for w in context["summary"]["windows"]]
+    page = section(_render_context(context, inline_charts=True), "summary")
+    assert "80% band, month by month: −10.0% to +20.0% of the plan" in page
+
+
+def test_a_tile_without_a_stored_total_band_prints_no_made_up_band(inputs):
+    context = build_pack_context(inputs)  # the example stores family bands only
+    assert all(w["band_80"] is None for w in context["summary"]["windows"])
+    assert "month by month" not in section(build_html(inputs), "summary")

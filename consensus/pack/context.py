@@ -228,7 +228,8 @@ def build_pack_context(
     family_value = fam_plan.groupby("family")["value"].sum().sort_values(ascending=False)
     family_order = list(family_value.index)
 
-    summary = _summary_tables(fam_plan, plan_months, summary_windows, family_order, summary_family_rows)
+    summary = _summary_tables(fam_plan, plan_months, summary_windows, family_order, summary_family_rows,
+                              total_bands=_total_bands(inputs.level_bands, cons))
     total_12 = next((w for w in summary["windows"] if w["months"] == 12), None)
     changes_top, changes_flagged = _changes_vs_last_cycle(
         cons, previous, sources, inputs, top_changes, change_threshold_pct, source_names
@@ -391,13 +392,29 @@ def _format_when(value: Any) -> str:
 # --------------------------------------------------------------------------- executive summary
 
 
+def _total_bands(level_bands: pd.DataFrame, cons: pd.DataFrame) -> pd.DataFrame:
+    """The run's 80% band of each month's total as fractions of that month's plan: [period, low, high]."""
+    stored = _as_numeric(level_bands, ["lower_80", "upper_80"])
+    stored = stored[stored["level"] == "total"]
+    plan = cons.groupby("period")["consensus"].sum()
+    point = stored["period"].map(plan).to_numpy(dtype=float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        low = np.where(point > 0, stored["lower_80"].to_numpy(dtype=float) / point - 1, np.nan)
+        high = np.where(point > 0, stored["upper_80"].to_numpy(dtype=float) / point - 1, np.nan)
+    return pd.DataFrame({"period": stored["period"].to_numpy(), "low": low, "high": high}).dropna()
+
+
 def _summary_tables(
-    fam_plan: pd.DataFrame, plan_months: list[str], windows, family_order: list[str], max_rows: int
+    fam_plan: pd.DataFrame, plan_months: list[str], windows, family_order: list[str], max_rows: int,
+    *, total_bands: pd.DataFrame | None = None,
 ) -> dict[str, Any]:
     """Consensus for the next N months by family, against last cycle and the same months last year.
 
     Changes are measured on the months both figures cover, so a last plan that
-    stops short does not read as a fall.
+    stops short does not read as a fall.  Each window carries the total's 80% band
+    month by month (the mean of its months' bands, as % of plan), so the headline
+    figures are read with their error; no band is made up for the window's sum,
+    whose months' errors are not independent.
     """
     month_pos = {m: i for i, m in enumerate(plan_months)}
     frame = fam_plan.assign(position=fam_plan["period"].map(month_pos))
@@ -434,6 +451,8 @@ def _summary_tables(
             "vs_ly_pct": float(100 * (total["cons_vs_ly"] / total["ly"] - 1)) if total["ly"] > 0 else None,
         }
         other = per_family.loc[rest, sums_cols].sum() if rest else None
+        months_band = (total_bands[total_bands["period"].isin(plan_months[:months])]
+                       if total_bands is not None else pd.DataFrame())
         out_windows.append(
             {
                 "months": months,
@@ -441,6 +460,11 @@ def _summary_tables(
                 "first": plan_months[0],
                 "last": plan_months[months - 1],
                 "total": total_row,
+                "band_80": None if months_band.empty else {
+                    "low_pct": float(100 * months_band["low"].mean()),
+                    "high_pct": float(100 * months_band["high"].mean()),
+                    "months": int(len(months_band)),
+                },
                 "partial_previous": bool(total["n_prev"] < months * max(len(family_order), 1)),
                 "other": None if other is None else {
                     "consensus": float(other["consensus"]),
