@@ -70,6 +70,7 @@ def test_family_region_matches_sklearn_on_group_totals():
                                                                           ("FB", "R1"), ("FB", "R2")]
 
 
+@pytest.mark.slow
 @settings(max_examples=20, deadline=None)
 @given(st.integers(0, 2**31 - 1))
 def test_wape_never_rises_as_cells_are_summed(seed):

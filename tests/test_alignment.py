@@ -278,6 +278,7 @@ def cached_mix(seasonal: bool) -> pd.DataFrame:
                           cycle="2026-11")
 
 
+@pytest.mark.slow
 @settings(max_examples=30, deadline=None)
 @given(data=st.lists(row_strategy, min_size=1, max_size=30), seasonal=st.booleans())
 def test_splitting_then_summing_returns_the_original(data, seasonal):
@@ -309,6 +310,7 @@ def test_value_of_family_row_uses_mix_weighted_price(mix):
     assert out["quantity"].iloc[0] == pytest.approx(60.0)
 
 
+@pytest.mark.slow
 @settings(max_examples=20, deadline=None)
 @given(data=st.lists(row_strategy, min_size=1, max_size=15))
 def test_units_split_and_priced_return_the_value(data):

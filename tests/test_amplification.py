@@ -146,6 +146,7 @@ def simulate_policy(*, p: int, lead: int, rho: float = 0.0, z: float = 0.0, n_it
     return pd.concat(forecasts, ignore_index=True), actuals
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("p,lead", [(3, 1), (6, 2), (12, 1)])
 def test_simulated_moving_average_meets_the_bound_for_iid_demand(p, lead):
     # Chen et al. (2000): with i.i.d. demand and a constant safety stock the bound holds with equality

@@ -82,6 +82,7 @@ def test_off_and_sources_outside_the_list_are_never_corrected():
     assert (others["factor"] == 1.0).all()
 
 
+@pytest.mark.slow
 @settings(max_examples=30, deadline=None)
 @given(st.lists(st.floats(min_value=-0.3, max_value=0.3), min_size=3, max_size=12), st.integers(0, 2**31 - 1))
 def test_property_a_correction_is_off_when_the_bias_is_not_persistent(shifts, seed):

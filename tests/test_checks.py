@@ -166,6 +166,7 @@ def test_every_broken_check_file_has_an_expectation():
     assert on_disk == set(BAD_ROWS)
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("name", sorted(BAD_ROWS))
 def test_broken_file_yields_exactly_its_problems(name):
     result = run_check(BAD / name, default_cycle=None if "no_cycle" in name else DEFAULT_CYCLE)
@@ -570,6 +571,7 @@ def _forecast_result(rows):
                                default_cycle=DEFAULT_CYCLE, max_problems=10_000)
 
 
+@pytest.mark.slow
 @settings(max_examples=40, deadline=None)
 @given(rows=st.lists(FORECAST_ROW, min_size=1, max_size=30))
 def test_each_bad_cell_is_reported_once(rows):
@@ -602,6 +604,7 @@ def test_each_bad_cell_is_reported_once(rows):
     assert [(r, int(e.rsplit(" ", 1)[1])) for r, e in reported] == duplicates
 
 
+@pytest.mark.slow
 @settings(max_examples=20, deadline=None)
 @given(rows=st.lists(FORECAST_ROW, min_size=1, max_size=20), seed=st.integers(0, 2**16))
 def test_row_order_does_not_change_the_clean_set(rows, seed):
@@ -615,6 +618,7 @@ def test_row_order_does_not_change_the_clean_set(rows, seed):
     assert one.total_problems == two.total_problems
 
 
+@pytest.mark.slow
 @settings(max_examples=40, deadline=None)
 @given(year=st.integers(1990, 2060), week=st.integers(0, 54))
 def test_iso_weeks_accepted_exactly_when_the_calendar_has_them(year, week):

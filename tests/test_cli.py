@@ -256,6 +256,7 @@ def run_store(tmp_path_factory):
     return url
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("args, words", BROKEN_OUT, ids=[" ".join(a)[:50] for a, _ in BROKEN_OUT])
 def test_an_output_path_that_cannot_work_is_refused_in_one_line_and_nothing_is_written(run_store, tmp_path, capsys,
                                                                                        args, words):

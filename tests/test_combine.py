@@ -189,6 +189,7 @@ def _random_case(values, weight_list):
     return weights, cells
 
 
+@pytest.mark.slow
 @settings(max_examples=30, deadline=None)
 @given(cell_values, raw_weights)
 def test_consensus_lies_between_the_sources_without_bias_correction(values, weight_list):
@@ -205,6 +206,7 @@ def test_consensus_lies_between_the_sources_without_bias_correction(values, weig
     np.testing.assert_allclose(sums, 1.0, atol=1e-12)
 
 
+@pytest.mark.slow
 @settings(max_examples=30, deadline=None)
 @given(cell_values, raw_weights, st.randoms(use_true_random=False))
 def test_permuting_input_rows_changes_nothing(values, weight_list, random):

@@ -312,6 +312,7 @@ def test_score_bands_by_hand():
     assert total["coverage"] == 0.5 and total["mean_winkler"] == pytest.approx((10 + 30) / 2)
 
 
+@pytest.mark.slow
 def test_backtest_by_level_holds_nominal_at_every_level():
     # Stable, correlated errors (as above) over 60 cycles and lags 1-3: a rolling origin reading each level's
     # bands off its own past errors covers within the planning target of 5 points at item × location, family

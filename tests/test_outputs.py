@@ -236,6 +236,7 @@ def _old_file(target: Path) -> str:
     return hashlib.sha256(target.read_bytes()).hexdigest()
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("kill_after", [0.0, 0.05, 0.2])
 def test_kill_9_mid_write_leaves_the_old_file_or_the_complete_new_one(tmp_path, kill_after):
     target = tmp_path / "pack.pdf"
@@ -257,6 +258,7 @@ def test_kill_9_mid_write_truncates_a_file_written_straight_over_its_target(tmp_
     assert hashlib.sha256(data).hexdigest() != old and 0 < len(data) < NEW_SIZE
 
 
+@pytest.mark.slow
 def test_uninterrupted_child_replaces_the_file_in_full(tmp_path):
     target = tmp_path / "pack.pdf"
     _old_file(target)

@@ -45,6 +45,7 @@ def test_family_level_measures_the_summed_family_series():
     assert row["mad"] == pytest.approx(mean_absolute_error(fam["actual"], fam["forecast"]))
 
 
+@pytest.mark.slow
 @settings(max_examples=20, deadline=None)
 @given(st.integers(0, 10_000))
 def test_wape_never_rises_from_item_to_family_to_total(seed):

@@ -320,6 +320,7 @@ def test_compressed_bomb_is_refused_from_the_zip_directory_before_any_xml_is_par
         read_table(path)
 
 
+@pytest.mark.slow
 def test_declared_unpacked_size_is_capped(tmp_path):
     rows = [SMALL[0]] + [[f"A{i:05d}", "L1", "2026-12", i] for i in range(20_000)]
     path = tmp_path / "big.xlsx"

@@ -95,6 +95,7 @@ def test_bottom_up_leaves_the_combined_consensus_unchanged():
     assert result.notes["cells_changed"] == 0 and result.notes["method"] == "bottom_up"
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("method", RECONCILIATION_METHODS)
 def test_every_method_is_coherent_and_nonnegative(method):
     _, result, _ = _run(method)
@@ -161,6 +162,7 @@ def _schafer_strimmer_lambda(x: np.ndarray) -> float:
     return float(min(max(num / den, 0.0), 1.0))
 
 
+@pytest.mark.slow
 def test_mint_shrink_matches_a_dense_evaluation_on_a_tiny_hierarchy():
     # Equal weights make the node bases and their in-sample errors plain means of the two
     # sources, so the whole computation can be redone here with dense numpy.
@@ -201,6 +203,7 @@ def test_mint_shrink_matches_a_dense_evaluation_on_a_tiny_hierarchy():
             assert fr[(a, b)] == pytest.approx(y_hat[k])
 
 
+@pytest.mark.slow
 def test_top_down_splits_the_total_by_historical_proportions():
     spec = WeightSpec(scheme="equal")
     current, errors, actuals = _scenario(5, horizon=2)
@@ -219,6 +222,7 @@ def test_top_down_splits_the_total_by_historical_proportions():
     assert notes["method"] == "top_down_hist_avg" and notes["cells_changed"] > 0
 
 
+@pytest.mark.slow
 def test_sales_are_weighted_on_their_family_region_totals():
     # Sales get the family × region totals nearly right and the split wrong; with all weight on
     # the lowest MSE ("best"), the family × region base is sales' own total while at cell level
@@ -236,6 +240,7 @@ def test_sales_are_weighted_on_their_family_region_totals():
     assert (planned["weight"] == 1).all()
 
 
+@pytest.mark.slow
 def test_unknown_method_is_refused_and_run_spec_accepts_each_method():
     current, errors, actuals = _scenario(1, horizon=1)
     table = _combined(current, errors, WeightSpec())

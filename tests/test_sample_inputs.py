@@ -92,6 +92,7 @@ def _workbook_cells(path) -> dict:
     return {ws.title: (ws.sheet_state, [tuple(row) for row in ws.iter_rows(values_only=True)]) for ws in book}
 
 
+@pytest.mark.slow
 def test_generator_reproduces_committed_files(regenerated):
     # Text files must match byte for byte.  Workbooks are compared by content: openpyxl writes the same cells
     # with slightly different XML spacing depending on whether lxml is installed.

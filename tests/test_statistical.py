@@ -283,6 +283,7 @@ def test_history_after_the_cycle_changes_nothing(rows, later_rows):
         pd.testing.assert_frame_equal(getattr(a, name), getattr(b, name))
 
 
+@pytest.mark.slow
 @settings(max_examples=15, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(histories)
 def test_reruns_and_row_order_give_identical_results(rows):

@@ -25,6 +25,11 @@ BAD_FORECASTS = sorted(p.name for p in (DATA / "bad").glob("forecast_*.csv"))
 OTHER_BAD = sorted(p.name for p in (DATA / "bad").iterdir() if not p.name.startswith("forecast_"))
 
 
+def fast_first(names, n_fast: int = 2):
+    """The first files in the fast tier, the rest in the full suite (each is a whole store import)."""
+    return [name if k < n_fast else pytest.param(name, marks=pytest.mark.slow) for k, name in enumerate(names)]
+
+
 def counts(url) -> dict:
     """Rows of every table: what a rejected file may change (Submission, Blob, JournalEntry) and what it may not."""
     with session_scope(url) as s:
@@ -99,7 +104,7 @@ def test_the_same_bytes_for_another_cycle_are_a_new_submission(master_store, tmp
     assert for_december.submission_id != for_november.submission_id and for_december.reinstates is None
 
 
-@pytest.mark.parametrize("name", BAD_FORECASTS)
+@pytest.mark.parametrize("name", fast_first(BAD_FORECASTS))
 def test_rejected_file_changes_nothing_and_is_kept(master_store, name):
     submit_file(DATA / "good" / "forecast.csv", url=master_store, source="dc", cycle="2026-11")
     before = counts(master_store)
@@ -188,7 +193,7 @@ def _submit_any(path, url):
                        cycle=None if "cycle" in path.name else "2026-11")
 
 
-@pytest.mark.parametrize("name", OTHER_BAD)
+@pytest.mark.parametrize("name", fast_first(OTHER_BAD))
 def test_every_broken_file_is_refused_by_the_store_and_changes_nothing(master_store, name):
     before = counts(master_store)
     with pytest.raises(InputRejected) as caught:
@@ -213,6 +218,7 @@ def test_a_published_cycle_takes_no_more_files_and_says_how_to_reopen(master_sto
     assert counts(master_store) == before
 
 
+@pytest.mark.slow
 def test_small_cycle_end_to_end_on_this_store(master_store, tmp_path):
     """Actuals, a forecast, a run, publish and export on the store under test (SQLite or PostgreSQL)."""
     from consensus.intake.submission import load_actuals_file

@@ -308,6 +308,7 @@ def identifier_keys() -> set[str]:
     return {k for k in keys if "_" in k or k not in PLAIN_WORDS}
 
 
+@pytest.mark.slow
 def test_no_raw_identifier_is_visible_text(pack_html):
     text = " ".join(read_page(pack_html).text)
     # Labels may contain a key as a word ("Seasonal naive"): take them out first, longest first.
@@ -317,6 +318,7 @@ def test_no_raw_identifier_is_visible_text(pack_html):
     assert leaked == set()
 
 
+@pytest.mark.slow
 def test_no_paths_and_no_lower_case_section_headings(pack_html):
     text = " ".join(read_page(pack_html).text)
     assert not re.search(r"\b\w+/\w+\.py\b|bench/|\.py\b", text)
@@ -406,6 +408,7 @@ def test_exception_headings_are_the_kind_names_with_units_and_rules(pack_html):
 # --------------------------------------------------------------------------- what the pages say
 
 
+@pytest.mark.slow
 def test_decisions_read_set_to_not_a_signed_change():
     html = build_html(store_shaped_inputs())
     log = html[html.index('id="decisions"'):html.index('id="components"')]
@@ -413,6 +416,7 @@ def test_decisions_read_set_to_not_a_signed_change():
     assert "set +1,200" not in html and "pct +15" not in html
 
 
+@pytest.mark.slow
 def test_lateness_is_worded_only_when_it_is_known():
     base = store_shaped_inputs()
     html = build_html(base)
@@ -427,6 +431,7 @@ def methods_section(html: str) -> str:
     return html[html.index('id="methods"'):]
 
 
+@pytest.mark.slow
 def test_methods_page_prints_no_run_notes_paths_or_sample_figures():
     html = methods_section(build_html(store_shaped_inputs()))
     text = " ".join(read_page(html).text)
@@ -435,6 +440,7 @@ def test_methods_page_prints_no_run_notes_paths_or_sample_figures():
     assert "did not record" in text  # settings the run did not pass are said to be unknown, not guessed
 
 
+@pytest.mark.slow
 def test_methods_page_measures_this_stores_history():
     inputs = example_pack_inputs()
     context = build_pack_context(inputs, with_charts=False)
@@ -454,6 +460,7 @@ def test_methods_page_measures_this_stores_history():
     assert "Bottom-up" in html
 
 
+@pytest.mark.slow
 def test_methods_page_says_not_enough_history_when_there_is_too_little():
     inputs = example_pack_inputs()
     recent = sorted(inputs.scorecard_history["cycle"].unique())[-(MIN_HISTORY_CYCLES - 1):]
@@ -478,6 +485,7 @@ def test_colour_means_better_or_worse_only_where_direction_is_good_or_bad():
             assert row["tone"] == ("better" if row["change"] < 0 else "worse"), row
 
 
+@pytest.mark.slow
 def test_a_new_source_kind_is_one_registry_entry(monkeypatch):
     finance = vocabulary.SourceKind("finance", "Finance plan", "Fin", 35, submitted=True, combined=True,
                                     answers_for="all", colour="#3f7f3f", dashes=(0, (3, 3)),
@@ -507,6 +515,7 @@ def test_a_new_source_kind_is_one_registry_entry(monkeypatch):
     assert steps[-1] == "Consensus"
 
 
+@pytest.mark.slow
 def test_a_source_missing_from_the_registry_still_prints_in_words():
     base = example_pack_inputs()
     extra = base.sources[base.sources["source"] == "sales"].assign(source="field_sales")

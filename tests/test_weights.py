@@ -165,6 +165,7 @@ error_values = st.lists(st.floats(min_value=-50, max_value=50, allow_nan=False, 
                         min_size=5, max_size=40)
 
 
+@pytest.mark.slow
 @settings(max_examples=20, deadline=None)
 @given(st.lists(error_values, min_size=2, max_size=4), st.sampled_from(SCHEMES), st.sampled_from(["family", "all"]))
 def test_weights_non_negative_sum_to_one_and_ignore_source_order(per_source, scheme, segment):
@@ -180,6 +181,7 @@ def test_weights_non_negative_sum_to_one_and_ignore_source_order(per_source, sch
     pd.testing.assert_frame_equal(forward, backward)
 
 
+@pytest.mark.slow
 @settings(max_examples=30, deadline=None)
 @given(st.lists(error_values, min_size=2, max_size=4))
 def test_equal_scheme_gives_the_mean(per_source):
@@ -190,6 +192,7 @@ def test_equal_scheme_gives_the_mean(per_source):
     np.testing.assert_allclose(weights["weight"], 1 / len(names))
 
 
+@pytest.mark.slow
 @settings(max_examples=30, deadline=None)
 @given(st.lists(error_values, min_size=2, max_size=4),
        st.floats(min_value=0.01, max_value=100, allow_nan=False),

@@ -104,6 +104,7 @@ def _submit(path: Path, url: str, **flags) -> pd.DataFrame:
     return _stored_lines(url, outcome.submission_id)
 
 
+@pytest.mark.slow
 def test_a_filled_workbook_in_each_layout_stores_the_same_lines(master_store, tmp_path):
     expected = _expected_lines()
     flags = {"source": "sales", "cycle": CYCLE, "scope": "region NORTH"}
