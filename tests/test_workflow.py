@@ -8,6 +8,8 @@ only as input here.
 
 from __future__ import annotations
 
+import re
+
 import shutil
 
 import numpy as np
@@ -134,6 +136,14 @@ def test_explain_shows_the_meeting_decision(demo_url):
     text = explain_cell(CYCLE, item=touched["item"], location=touched["location"], period=touched["period"],
                         url=demo_url).text
     assert "Changed in the meeting" in text and "by " in text
+    # The line reads the cell's own move and names each decision's scope (the demo's decisions are on an item
+    # over all its locations and on a family × region, so their total is spread in proportion to the plan).
+    before, after = float(touched["before_override"]), float(touched["consensus"])
+    shown = [f"{x:,.0f}" if abs(x) >= 10 or x == 0 else f"{x:,.1f}" for x in (before, after)]
+    assert f"Changed in the meeting from {shown[0]} to {shown[1]} units:" in text
+    assert re.search(rf"#\d+ (item {re.escape(touched['item'])}|family \S+ × region \S+), {touched['period']}: "
+                     r"(set to|raised by|lowered by) ", text)
+    assert "spread over the cells by their shares of the month’s plan" in text
 
 
 def test_family_decision_spreads_to_items_by_the_consensus_mix(demo_url):

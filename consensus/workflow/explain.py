@@ -15,12 +15,13 @@ import pandas as pd
 from consensus.errors import NotFound
 from consensus.methods.bias import correct_sources
 from consensus.methods.combine import combine_sources
+from consensus.methods.decisions import decision_scope
 from consensus.methods.weights import assign_segments
 from consensus.methods.plan import RunSpec, trace_cell
 from consensus.periods import lag_bucket_labels, lags
 from consensus.store import frames
 from consensus.store.db import session_scope
-from consensus.vocabulary import source_label
+from consensus.vocabulary import describe_change, source_label
 from consensus.workflow.decisions import load_decisions
 from consensus.workflow.inputs import load_plan_inputs, run_parts
 from consensus.workflow.publish import latest_run
@@ -157,10 +158,13 @@ def _write(cycle, run, spec: RunSpec, line, family, sources, traces, weights, de
                    f"{line['reconciliation_adjustment']:+,.1f} so that it agrees with the family, region and total "
                    f"plans ({spec.reconciliation}).")
     if pd.notna(line.get("before_override")):
-        from consensus.vocabulary import describe_change
-
-        out.append(f"Changed in the meeting from {_fmt(line['before_override'])} units:")
-        for d in decisions.itertuples(index=False):
+        out.append(f"Changed in the meeting from {_fmt(line['before_override'])} to {_fmt(line['consensus'])} units:")
+        scopes = decision_scope(decisions) if not decisions.empty else pd.Series(dtype=object)
+        for d, scope in zip(decisions.itertuples(index=False), scopes):
             state = f" (withdrawn by {d.withdrawn_by}: {d.withdrawn_reason})" if pd.notna(d.withdrawn_at) else ""
-            out.append(f"  #{int(d.id)} {describe_change(d.kind, d.amount)} by {d.author}: {d.reason}{state}")
+            out.append(f"  #{int(d.id)} {scope}, {d.period}: {describe_change(d.kind, d.amount)} by {d.author}: "
+                       f"{d.reason}{state}")
+        if not decisions.empty and (decisions["item"].isna() | decisions["location"].isna()).any():
+            out.append("  A decision on several cells sets or moves their total, spread over the cells by their "
+                       "shares of the month’s plan.")
     return "\n".join(out)
