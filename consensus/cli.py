@@ -107,6 +107,17 @@ def _cell(value) -> str:
     return str(value)
 
 
+def _short_sources(keys) -> tuple[list[str], str]:
+    """Sources by their short names, for narrow tables, and the legend of those that differ from the label."""
+    from consensus import vocabulary
+    from consensus.vocabulary import source_label, source_short
+
+    present = [k for k in dict.fromkeys(keys) if isinstance(k, str)]
+    named = [k for k in vocabulary.ordered(present) if source_short(k) != source_label(k)]
+    legend = ("Sources: " + ", ".join(f"{source_short(k)} = {source_label(k)}" for k in named)) if named else ""
+    return [source_short(k) if isinstance(k, str) else "" for k in keys], legend
+
+
 def _print_frame(frame, *, title: str | None = None, fmt: str = "table", headers: dict | None = None,
                  legend: str | None = None) -> None:
     """Print a listing: a table that wraps to the terminal (headers from ``headers``), CSV or JSON."""
@@ -333,8 +344,7 @@ def status(ctx: typer.Context, cycle: str = CycleOpt, fmt: str = FormatOpt) -> N
     """
     import pandas as pd
 
-    from consensus.vocabulary import (STATE_HEADING, describe_submission_state, source_label, source_short,
-                                      submitted_sources)
+    from consensus.vocabulary import STATE_HEADING, describe_submission_state
     from consensus.workflow.cycles import submission_status
     _check_format(fmt)
     try:
@@ -352,12 +362,11 @@ def status(ctx: typer.Context, cycle: str = CycleOpt, fmt: str = FormatOpt) -> N
         if state == "not_received" and known and days <= 0:
             text += f" ({-int(days)} days left)" if days < 0 else " (due today)"
         states.append(text)
-    shown = table.assign(source=table["source"].map(lambda s: source_short(s) if isinstance(s, str) else ""),
+    short, legend = _short_sources(table["source"])
+    shown = table.assign(source=short,
                          state=states, file=table["filename"].fillna("") + table["id"].map(
                              lambda i: "" if i != i else f" #{int(i)}"), when=when)[
         ["source", "scope", "state", "file", "submitted_by", "when"]]
-    legend = "Sources: " + ", ".join(f"{source_short(k)} = {source_label(k)}" for k in submitted_sources()
-                                     if source_short(k) != source_label(k))
     _print_frame(shown.fillna(""), title=f"Submissions for cycle {cycle}", fmt=fmt,
                  headers={"source": "Source", "scope": "Scope", "state": STATE_HEADING, "file": "File",
                           "submitted_by": "By", "when": "Received"}, legend=legend)
@@ -449,7 +458,6 @@ def scorecard(ctx: typer.Context, cycle: str = CycleOpt,
 
     Example: consensus scorecard --cycle 2027-03 --level family --format csv
     """
-    from consensus.vocabulary import source_label
     from consensus.workflow.scorecard import scorecard_report
     _check_format(fmt)
     try:
@@ -461,15 +469,17 @@ def scorecard(ctx: typer.Context, cycle: str = CycleOpt,
         return
     columns = [c for c in ("source", "lag_bucket", "node_item", "node_location", "n", "mad", "wape", "bias_pct",
                            "tracking_signal", "ts_flag", "mase") if c in table.columns]
-    shown = table[columns].assign(source=table["source"].map(source_label))
+    short, sources_legend = _short_sources(table["source"])
+    shown = table[columns].assign(source=short)
     if level in ("family", "total"):
         shown = shown.drop(columns=[c for c in ("node_location",) if c in shown])
     if level in ("region", "location", "total"):
         shown = shown.drop(columns=[c for c in ("node_item",) if c in shown])
     _print_frame(shown, title=f"Accuracy known at cycle {cycle}, by {level.replace('_', ' × ')}", fmt=fmt,
                  headers=_SCORE_HEADERS,
-                 legend="TS: tracking signal, Σ error / MAD (! beyond ±4); MASE: error scaled by the seasonal naive "
-                        "forecast's (below 1 beats it); error = actual − forecast.")
+                 legend=(sources_legend + "\n" if sources_legend else "")
+                 + "TS: tracking signal, Σ error / MAD (! beyond ±4); MASE: error scaled by the seasonal naive "
+                   "forecast's (below 1 beats it); error = actual − forecast.")
     if len(uplift):
         _print_frame(uplift[["lag_bucket", "n_cells", "wape_without", "wape_with", "wape_gain"]],
                      title="Marketing's events: statistical forecast without and with them", fmt=fmt,

@@ -268,3 +268,19 @@ def test_an_output_path_that_cannot_work_is_refused_in_one_line_and_nothing_is_w
     assert code == 1 and err.startswith("error: ") and words.replace("{tmp}", str(tmp_path)) in err, err
     assert len(err.strip().splitlines()) == 1 and "unexpected problem" not in err
     assert sorted(tmp_path.rglob("*")) == before  # not a file, not a folder, not a temporary left behind
+
+
+def test_narrow_tables_name_sources_short_with_a_legend_of_the_full_names():
+    """Scorecard and status print the registry's short names and one legend line (vocabulary.SOURCES)."""
+    from consensus.cli import _short_sources
+    from consensus.vocabulary import source_label, source_short
+
+    keys = ["dc", "consensus", None, "dc", "sales"]
+    short, legend = _short_sources(keys)
+    assert short == [source_short("dc"), source_short("consensus"), "", source_short("dc"), source_short("sales")]
+    differing = [k for k in ("consensus", "dc", "sales") if source_short(k) != source_label(k)]
+    assert legend.startswith("Sources: ") and legend.count(" = ") == len(differing)
+    for k in differing:
+        assert f"{source_short(k)} = {source_label(k)}" in legend
+    assert _short_sources(["sales"]) == ([source_short("sales")], "" if source_short("sales") == source_label("sales")
+                                         else f"Sources: {source_short('sales')} = {source_label('sales')}")
