@@ -315,3 +315,28 @@ def test_a_tile_without_a_stored_total_band_prints_no_made_up_band(inputs):
     context = build_pack_context(inputs)  # the example stores family bands only
     assert all(w["band_80"] is None for w in context["summary"]["windows"])
     assert "month by month" not in section(build_html(inputs), "summary")
+
+
+# --------------------------------------------------------------------------- bias factors beside the weights
+
+def test_a_family_page_shows_the_runs_persistent_bias_factors_beside_the_weights(inputs):
+    """The bias part as consensus.methods.bias stores it; only persistent factors print (common practice)."""
+    family = inputs.items["family"].iloc[0]
+    other = next(f for f in inputs.items["family"].unique() if f != family)
+    bias = pd.DataFrame({
+        "segment": [family, family, family, other],
+        "lag_bucket": ["1", "4-6", "1", "1"],
+        "source": ["sales", "sales", "dc", "sales"],
+        "persistent": [True, True, False, True],
+        "factor": [0.9, 0.875, 1.2, 1.0],  # dc is not persistent; other's factor 1 changes nothing
+    })
+    context = build_pack_context(dataclasses.replace(inputs, bias=bias))
+    pages = {p["name"]: p for p in context["families"]}
+    sales = [b for b in pages[family]["bias_corrections"] if b["label"] == vocabulary.source_label("sales")]
+    assert len(pages[family]["bias_corrections"]) == 1 and len(sales) == 1
+    by_bucket = dict(zip(pages[family]["bucket_labels"], sales[0]["factors"]))
+    assert by_bucket["1"] == 0.9 and by_bucket["4-6"] == 0.875 and by_bucket["2-3"] is None
+    assert pages[other]["bias_corrections"] == []
+    html = _render_context(context, inline_charts=True)
+    assert f"Bias factor, {vocabulary.source_label('sales')}" in html and "× 0.875" in html
+    assert "× 1.200" not in html

@@ -863,6 +863,7 @@ def _family_pages(
     weight_lookup = dict(zip(weights_wide.index, weight_values.where(weight_values.notna(), None)
                              .astype(object).to_numpy().tolist()))
     lag_lookup = _weights_per_lag(per_lag, bucket_labels)
+    bias_lookup = _bias_corrections(inputs.bias, bucket_labels)
     month_grid = _month_grid(plan_cube, plan_cols, plan_months, source_names)
     lines_per_family = len(plan_months)
     series_lines, series_columns, series_items = _series_grid(series_by_item)
@@ -922,6 +923,8 @@ def _family_pages(
             "weights": weight_rows,
             "weights_per_lag": lag_lookup.get(segment, []),
             "weights_are_own": segment == family,
+            "bias_corrections": [{"label": vocabulary.source_label(source), "factors": bias_lookup[(segment, source)]}
+                                 for source in source_names if (segment, source) in bias_lookup],
             "grid": {
                 "columns": [
                     {**c, "label": c["label"] + "*"} if c.get("source") in partly_covered else c
@@ -939,6 +942,17 @@ def _family_pages(
             "fallback_notes": fallback_notes.get(family, {"lines": [], "n_hidden": 0}),
         })
     return pages
+
+
+def _bias_corrections(bias: pd.DataFrame, bucket_labels: list[str]) -> dict[tuple, list]:
+    """Per (segment, source) the run's persistent-bias factor in each lag bucket (None where none applies)."""
+    if bias is None or bias.empty:
+        return {}
+    frame = _as_numeric(bias, ["factor"])
+    frame = frame[frame["persistent"].astype(bool) & frame["factor"].notna() & (frame["factor"] - 1).abs().gt(5e-4)]
+    wide = frame.pivot_table(index=["segment", "source"], columns="lag_bucket", values="factor", aggfunc="first")
+    wide = wide.reindex(columns=bucket_labels)
+    return {key: [None if pd.isna(v) else float(v) for v in row] for key, row in zip(wide.index, wide.to_numpy())}
 
 
 def _weights_per_lag(per_lag: pd.DataFrame, bucket_labels: list[str]) -> dict[str, list[dict]]:

@@ -58,6 +58,9 @@ FRAME_COLUMNS: dict[str, tuple[str, ...]] = {
     # Accuracy by demand pattern pooled over every lag, as consensus.methods.scoring stores it (a lag_bucket
     # column, when present, is kept to its "all" rows); wape and bias_pct in %, mase a ratio.
     "accuracy_patterns": ("pattern", "source", "n", "wape", "mase", "bias_pct"),
+    # The run's persistent-bias corrections (consensus.methods.bias.BIAS_COLUMNS): a source's numbers are
+    # multiplied by factor, per segment and lag bucket, before they are weighed.
+    "bias": ("segment", "lag_bucket", "source", "persistent", "factor"),
 }
 
 
@@ -93,6 +96,7 @@ class PackInputs:
     series: pd.DataFrame = field(default_factory=lambda: empty_frame("series"))
     amplification: pd.DataFrame = field(default_factory=lambda: empty_frame("amplification"))
     accuracy_patterns: pd.DataFrame = field(default_factory=lambda: empty_frame("accuracy_patterns"))
+    bias: pd.DataFrame = field(default_factory=lambda: empty_frame("bias"))
     # Months of implied orders an item × DC needed before it counted for amplification (None: not recorded).
     amplification_min_months: int | None = None
     # Labels only: the pack never converts units or currencies.

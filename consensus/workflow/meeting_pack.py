@@ -133,6 +133,8 @@ def gather_pack_inputs(cycle: str, *, revision: int | None = None, url=None) -> 
         level_bands=parts.get("level_bands", empty_frame("level_bands")).reindex(
             columns=list(empty_frame("level_bands").columns)),
         series=series.reindex(columns=list(empty_frame("series").columns)) if len(series) else empty_frame("series"),
+        bias=parts["bias"].reindex(columns=list(empty_frame("bias").columns)) if len(parts.get("bias", ()))
+        else empty_frame("bias"),
         weight_scheme=spec.weights.scheme, weight_segment=spec.weights.segment,
         weight_window_cycles=spec.weights.window_cycles, reconciliation_method=spec.reconciliation,
         disagreement_threshold=spec.weights.disagreement_threshold,
