@@ -192,3 +192,13 @@ def test_band_levels_of_the_spec_are_stored_and_exported(demo_dir, tmp_path):
     assert (lines["lower_90"] <= lines["lower_50"] + 1e-9).all() and (lines["upper_50"] <= lines["upper_90"] + 1e-9).all()
     path, _, _ = export_consensus(CYCLE, tmp_path / "bands.csv", url=url)
     assert {"lower_50", "upper_90"} <= set(pd.read_csv(path).columns)
+
+
+def test_a_small_smoothing_parameter_is_not_printed_as_zero():
+    """A grid fit can settle at α = 0.0001 (a level that hardly moves); '0.00' would read as no smoothing at all."""
+    from consensus.workflow.explain import describe_method
+
+    row = pd.Series({"method": "holt_winters_mul", "alpha": 0.0001, "beta": 0.0, "gamma": 0.1171, "phi": 0.995475,
+                     "pattern": "smooth", "holdout_wape": 0.2365, "fallback": ""})
+    text = describe_method(row)
+    assert "(α 0.0001, β 0.00, γ 0.12, φ 1.00)" in text and "holdout WAPE 24%" in text

@@ -82,12 +82,19 @@ def explain_cell(cycle: str, *, item: str, location: str, period: str, revision:
     return CellExplanation(line, sources, traces, weights, mine, text)
 
 
+def _parameter(value: float) -> str:
+    """A smoothing parameter to two decimals, or to its first digit when smaller (α 0.0001 is not α 0.00)."""
+    value = float(value)
+    return f"{value:.2f}" if value == 0 or abs(value) >= 0.01 else f"{value:.1g}"
+
+
 def describe_method(row: pd.Series) -> str:
     """The statistical source's method for one series in words, with its fitted parameters."""
     from consensus.vocabulary import method_label
 
-    params = ", ".join(f"{name} {row[key]:.2f}" for name, key in (("α", "alpha"), ("β", "beta"), ("γ", "gamma"),
-                                                                  ("φ", "phi")) if key in row and pd.notna(row[key]))
+    params = ", ".join(f"{name} {_parameter(row[key])}" for name, key in (("α", "alpha"), ("β", "beta"),
+                                                                          ("γ", "gamma"), ("φ", "phi"))
+                       if key in row and pd.notna(row[key]))
     text = f"Statistical source: {method_label(row['method'])}" + (f" ({params})" if params else "")
     text += f", demand pattern {row['pattern']}"
     if "holdout_wape" in row and pd.notna(row["holdout_wape"]):
