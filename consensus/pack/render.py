@@ -96,12 +96,13 @@ def _fixed(digits: int):
     return render
 
 
-def _signed_one(value: Any) -> str:
+def _signed_one(value: Any, suffix: str = "") -> str:
+    """One decimal with its sign and no arrow ("+6.3", "−4.3%"): a position, not a change for better or worse."""
     try:
         number = float(value)
     except (TypeError, ValueError):
         return "–"
-    return f"{number:+.1f}".replace("-", "\u2212") if math.isfinite(number) else "–"
+    return f"{number:+.1f}{suffix}".replace("-", "\u2212") if math.isfinite(number) else "–"
 
 
 def _svg_data_uri(svg: str) -> str:
@@ -128,6 +129,7 @@ def _environment(templates: str) -> jinja2.Environment:
         fixed1=_fixed(1),
         fixed2=_fixed(2),
         signed1=_signed_one,
+        signed_pct1=lambda value: _signed_one(value, "%"),
         svg_data_uri=_svg_data_uri,
     )
     return env

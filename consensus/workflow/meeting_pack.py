@@ -80,6 +80,13 @@ def _fva(fva: pd.DataFrame) -> pd.DataFrame:
     return fva.set_index("step").reindex(order).reset_index()[["step", "wape", "n"]]
 
 
+def _stored_part(parts: dict, name: str) -> pd.DataFrame:
+    """A stored run part in the pack's columns for it (pack.inputs.FRAME_COLUMNS), or its empty frame."""
+    found = parts.get(name)
+    return found.reindex(columns=list(empty_frame(name).columns)) if found is not None and len(found) \
+        else empty_frame(name)
+
+
 def gather_pack_inputs(cycle: str, *, revision: int | None = None, url=None) -> PackInputs:
     """Everything the pack shows for a cycle, read from its run's stored result."""
     with session_scope(url, write=False) as session:
@@ -115,7 +122,6 @@ def gather_pack_inputs(cycle: str, *, revision: int | None = None, url=None) -> 
     fva = _fva(parts.get("fva", pd.DataFrame(columns=["step", "wape", "n"])))
     coverage = parts.get("band_coverage", pd.DataFrame())
     coverage = coverage[coverage["lag_bucket"] == "all"] if len(coverage) else empty_frame("band_coverage")
-    series = parts.get("series", pd.DataFrame())
     amplification, accuracy_patterns = _amplification(parts), _pattern_accuracy(parts)
     spec = RunSpec.from_dict(run.spec)
     known = actuals
@@ -130,11 +136,8 @@ def gather_pack_inputs(cycle: str, *, revision: int | None = None, url=None) -> 
         disagreement=flagged[["item", "location", "period", "family", "spread", "spread_ratio", "flagged"]],
         fva=fva, decisions=active if len(active) else empty_frame("decisions"),
         components=parts.get("components", empty_frame("components")), band_coverage=coverage,
-        level_bands=parts.get("level_bands", empty_frame("level_bands")).reindex(
-            columns=list(empty_frame("level_bands").columns)),
-        series=series.reindex(columns=list(empty_frame("series").columns)) if len(series) else empty_frame("series"),
-        bias=parts["bias"].reindex(columns=list(empty_frame("bias").columns)) if len(parts.get("bias", ()))
-        else empty_frame("bias"),
+        level_bands=_stored_part(parts, "level_bands"), series=_stored_part(parts, "series"),
+        bias=_stored_part(parts, "bias"),
         weight_scheme=spec.weights.scheme, weight_segment=spec.weights.segment,
         weight_window_cycles=spec.weights.window_cycles, reconciliation_method=spec.reconciliation,
         disagreement_threshold=spec.weights.disagreement_threshold,
