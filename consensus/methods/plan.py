@@ -432,15 +432,18 @@ def _new_pool(jobs: int) -> ProcessPoolExecutor:
     return ProcessPoolExecutor(max_workers=jobs, mp_context=get_context("fork"), initializer=_worker_start)
 
 
-def _pool_map(pool: ProcessPoolExecutor, task: Callable, items: list, **kwargs):
-    """``pool.map`` of a task, with the two things that keep two workers' memory down at 100,000 series.
+def _map_tasks(pool: ProcessPoolExecutor | None, task: Callable, items: list, **kwargs):
+    """The task over the items, lazily, in order: here when there is no pool, else in its workers.
 
+    In the workers it does the two things that keep two workers' memory down at 100,000 series.
     Before the fork, the parent's objects are frozen out of the garbage collector
     (gc.freeze): a collection writes to every tracked object's header, which would copy
     the inherited pages into each worker.  After each task, the worker hands what it
     freed back to the system (glibc's malloc_trim), or its heap keeps the high-water
     mark of its largest task.  :func:`_close_pool` unfreezes.
     """
+    if pool is None:
+        return map(task, items)
     gc.collect()
     gc.freeze()
     return pool.map(partial(_trimmed, task), items, **kwargs)
@@ -510,12 +513,10 @@ def _prepare(ctx: _Context, cycles: list[CycleInputs]) -> None:
     ctx.progress(f"statistical forecast of {len({t[0] for t in stat_tasks})} cycle(s), alignment of "
                  f"{len(align_names)}")
     pool = ctx.pool if len(stat_tasks) + len(align_names) > 1 else None
-    aligned = iter(_pool_map(pool, _align_task, align_names)) if pool is not None else \
-        (_align_task(n) for n in align_names)
+    aligned = _map_tasks(pool, _align_task, align_names)
     groups: dict[str, list[bytes]] = {}
     expected = pd.Series([t[0] for t in stat_tasks]).value_counts().to_dict() if stat_tasks else {}
-    results = _pool_map(pool, _stat_task, stat_tasks, chunksize=1) if pool is not None else \
-        map(_stat_task, stat_tasks)
+    results = _map_tasks(pool, _stat_task, stat_tasks, chunksize=1)
     for task, packed in zip(stat_tasks, results):
         groups.setdefault(task[0], []).append(packed)
         if len(groups[task[0]]) == expected[task[0]]:  # the cycle's last group: assemble it, keep it packed
@@ -685,14 +686,13 @@ def _history_summary(ctx: _Context, patterns: pd.DataFrame, key: str,
               ctx.prepared.pop(("aligned", c.name), None)) for c in inputs.past]
     if tasks:
         ctx.progress(f"score {len(tasks)} past cycle(s)")
+    pool = None
     if ctx.pool is not None and len(tasks) > 1:  # forked again, so the workers see the ledger
         jobs = ctx.pool._max_workers
         _close_pool(ctx)
-        ctx.pool = _new_pool(jobs)
+        pool = ctx.pool = _new_pool(jobs)
         _malloc_trim()
-        results = _pool_map(ctx.pool, _score_task, tasks)
-    else:
-        results = map(_score_task, tasks)
+    results = _map_tasks(pool, _score_task, tasks)
     for c, (state, warnings, made) in zip(inputs.past, results):  # merged in cycle order, whichever process
         ledger.merge(state)
         ctx.warnings += warnings
