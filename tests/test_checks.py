@@ -226,6 +226,20 @@ def test_code_that_matches_two_master_codes_ignoring_case_is_unknown():
     assert result.clean["item"].tolist() == ["AB"]
 
 
+def test_unknown_code_names_the_nearest_master_code():
+    # A one-letter slip gets the master's nearest code (difflib's ratio ≥ 0.8, Python standard library);
+    # a code near nothing gets the plain message.
+    items = pd.DataFrame({"item": ["A100"], "family": ["VALVE-KITS"], "unit_price": [1.0]})
+    raw = _raw({"family": ["VALVE-KTS", "QQQ"], "location": ["L1", "L1"], "period": ["2026-12", "2026-12"],
+                "quantity": ["1", "2"]})
+    result = check_forecast_rows(raw, filename="f.csv", items=items, locations=LOCATIONS, horizons=HORIZONS,
+                                 default_cycle=DEFAULT_CYCLE)
+    assert [str(p) for p in result.problems] == [
+        "f.csv, row 2, column 'family': got 'VALVE-KTS'; expected a family code in the item master; "
+        "did you mean 'VALVE-KITS'?",
+        "f.csv, row 3, column 'family': got 'QQQ'; expected a family code in the item master"]
+
+
 def test_good_events():
     result = run_check(GOOD / "events.csv")
     assert result.is_clean

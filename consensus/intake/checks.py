@@ -40,6 +40,7 @@ Policy decisions, kept in one place:
 from __future__ import annotations
 
 import datetime as dt
+import difflib
 import math
 from dataclasses import dataclass, field
 
@@ -52,6 +53,8 @@ from consensus.outputs import looks_like_formula, unescape_formula_text
 from consensus.periods import MONTH_PATTERN, is_month, month_index, shift_month
 
 DEFAULT_MAX_PROBLEMS = 50
+#: Distinct unknown codes per column given a "did you mean" hint (each hint reads the whole master).
+MAX_CODE_HINTS = 20
 REFERENCE_COLUMNS = frozenset({"last_consensus"})
 WEEK_PATTERN = r"^\d{4}-W(0[1-9]|[1-4]\d|5[0-3])$"
 DATE_PATTERN = r"^\d{4}-\d{2}-\d{2}$"
@@ -322,13 +325,36 @@ def _match_codes(issues: _Issues, text: pd.Series, filled, codes, *, column: str
     inexact = filled & ~is_exact
     respelled = text[inexact].str.lower().map(by_lower)
     found = respelled.notna().to_numpy()
-    issues.add(_spread(inexact, ~found), column, text, f"{_with_article(what)} code in the {MASTER_OF[column]} master")
+    unknown = _spread(inexact, ~found)
+    expected = f"{_with_article(what)} code in the {MASTER_OF[column]} master"
+    issues.add(unknown, column, text, _with_hints(text, unknown, exact, expected))
     if found.any():
         pairs = pd.DataFrame({"given": text[inexact][found], "master": respelled[found]}).drop_duplicates()
         for given, master in zip(pairs["given"], pairs["master"]):
             issues.warn(column, given, f"the exact spelling; read as the master's '{master}'")
         resolved[_spread(inexact, found)] = respelled[found].to_numpy()
     return resolved
+
+
+def _with_hints(text: pd.Series, unknown: np.ndarray, exact: set[str], expected: str) -> str | pd.Series:
+    """``expected`` per row, naming the master's nearest code where one is close ("DRIP-KTS" for "DRIP-KITS").
+
+    A submitter who mistyped one letter then fixes the file without looking the code up.  Only the first
+    ``MAX_CODE_HINTS`` distinct unknown codes are looked at: a hint costs a pass over the master.
+    """
+    if not unknown.any() or not exact:
+        return expected
+    by_upper = {code.upper(): code for code in sorted(exact)}
+    hints = {}
+    for given in pd.unique(text[unknown])[:MAX_CODE_HINTS]:
+        if given.upper() in by_upper:  # matches several codes but for case: no one code to suggest
+            continue
+        close = difflib.get_close_matches(given.upper(), list(by_upper), n=1, cutoff=0.8)
+        if close:
+            hints[given] = f"{expected}; did you mean '{by_upper[close[0]]}'?"
+    if not hints:
+        return expected
+    return text.map(hints).fillna(expected)
 
 
 def _spread(where: np.ndarray, subset: np.ndarray) -> np.ndarray:
