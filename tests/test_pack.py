@@ -519,12 +519,6 @@ def test_joined_pages_read_like_the_pack_laid_out_whole(parts_pack, whole_pack):
         assert squash(a) == squash(b), f"page {number} differs"
 
 
-def test_charts_drawn_on_the_workers_are_the_charts_drawn_here(parts_pack, whole_pack):
-    # Same inputs, same markup: the family charts drawn in runs on the pack's workers match, byte for byte,
-    # those one painter draws in this process (the screen HTML carries them inline).
-    assert "<svg" in parts_pack.html and parts_pack.html == whole_pack.html
-
-
 def test_joined_page_labels_run_on_without_a_gap(parts_pack):
     pages = pdf_pages_text(parts_pack.pdf_path)
     n = len(pages)

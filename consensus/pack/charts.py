@@ -284,13 +284,6 @@ class FamilyChartPainter:
         return _figure_to_svg(self.figure, salt)
 
 
-def draw_family_charts(painter_settings: Mapping, specs: Sequence[Mapping]) -> list[str]:
-    """SVGs of many families on one painter: ``painter_settings`` as :class:`FamilyChartPainter` takes them,
-    each spec as :meth:`FamilyChartPainter.draw` does.  Picklable, so a worker process can draw a run of them."""
-    painter = FamilyChartPainter(**painter_settings)
-    return [painter.draw(**spec) for spec in specs]
-
-
 def draw_family_chart(
     *,
     history_months: Sequence[str],

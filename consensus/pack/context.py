@@ -9,7 +9,6 @@ lay out what this module hands them (plus the number formatting filters below).
 from __future__ import annotations
 
 import math
-from collections.abc import Callable
 from typing import Any
 
 import numpy as np
@@ -180,12 +179,8 @@ def build_pack_context(
     history_months_shown: int = 24,
     component_rows: int = 40,
     with_charts: bool = True,
-    draw_family_charts: Callable[[dict, list[dict]], list[str]] = charts.draw_family_charts,
 ) -> dict[str, Any]:
     """Everything the templates show, aggregated once from ``inputs``.
-
-    ``draw_family_charts(painter_settings, specs)`` draws the family charts (one per family page, the pack's
-    largest drawing job): the renderer hands in one that spreads them over its worker processes.
 
     Money at stake for an exception is quantity × unit price: the spread between
     sources for disagreement, the change for a moved plan, half the 80% band
@@ -254,7 +249,7 @@ def build_pack_context(
     )
     families = _family_pages(
         inputs, fam_plan, fam_act, sources, cons, family_order, source_names, plan_months,
-        history_months_shown=history_months_shown, with_charts=with_charts, draw_charts=draw_family_charts,
+        history_months_shown=history_months_shown, with_charts=with_charts,
         series_by_item=summarise_series(inputs.series, items, actuals, inputs.last_actual_month),
         series_fallbacks=_fallback_series(inputs.series, items),
     )
@@ -805,7 +800,7 @@ def _worst_per_source_level(biased: pd.DataFrame) -> pd.DataFrame:
 
 def _family_pages(
     inputs, fam_plan, fam_act, sources, cons, family_order, source_names, plan_months, *,
-    history_months_shown, with_charts, series_by_item, series_fallbacks, draw_charts=charts.draw_family_charts,
+    history_months_shown, with_charts, series_by_item, series_fallbacks,
 ) -> list[dict]:
     """One page per family, all built from family × month frames grouped once."""
     last_actual = month_index(inputs.last_actual_month)
@@ -875,7 +870,11 @@ def _family_pages(
     fallback_notes = _fallback_notes(series_fallbacks)
     pattern_mix = _pattern_mix(inputs.series, inputs.items)
     source_labels = [vocabulary.source_label(s) for s in source_names]
-    chart_specs = []
+    painter = (
+        charts.FamilyChartPainter(history_months=hist_months, plan_months=plan_months, source_names=source_names,
+                                  quantity_unit=inputs.quantity_unit)
+        if with_charts else None
+    )
 
     pages = []
     for number, family in enumerate(family_order, start=1):
@@ -899,8 +898,9 @@ def _family_pages(
             }
             for period, row in zip(plan_months, cells)
         ]
-        if with_charts:
-            chart_specs.append(dict(
+        chart = None
+        if painter is not None:
+            chart = Markup(painter.draw(
                 actual=actual, consensus=p[:, col["consensus"]],
                 lower_80=p[:, col["lower_80"]], upper_80=p[:, col["upper_80"]],
                 lower_95=p[:, col["lower_95"]], upper_95=p[:, col["upper_95"]],
@@ -914,7 +914,7 @@ def _family_pages(
             "n_items": int(n_items.get(family, 0)),
             "n_disagreements": int(dis_counts.get(family, 0)),
             "total_consensus": float(np.nansum(p[:, col["consensus"]])),
-            "chart": None,
+            "chart": chart,
             "rows": table_rows,
             "source_names": source_names,
             "source_labels": source_labels,
@@ -941,11 +941,6 @@ def _family_pages(
             "pattern_mix": pattern_mix.get(family),
             "fallback_notes": fallback_notes.get(family, {"lines": [], "n_hidden": 0}),
         })
-    if chart_specs:
-        painter_settings = dict(history_months=hist_months, plan_months=plan_months, source_names=source_names,
-                                quantity_unit=inputs.quantity_unit)
-        for page, svg in zip(pages, draw_charts(painter_settings, chart_specs), strict=True):
-            page["chart"] = Markup(svg)
     return pages
 
 

@@ -26,7 +26,7 @@ import os
 import re
 import time
 from dataclasses import dataclass, field
-from functools import lru_cache, partial
+from functools import lru_cache
 from pathlib import Path
 from typing import Any
 
@@ -43,7 +43,6 @@ from consensus.pack.context import (
 )
 from consensus.errors import InvalidSpec
 from consensus.outputs import atomic_target, check_output_path, write_text
-from consensus.pack import charts
 from consensus.pack.inputs import PackInputs
 from consensus.pack.paginate import LaidOutPart, describe_part, join_parts, lay_out, lay_out_part, warm_up
 from consensus.pack.paginate import restricted_fetcher  # noqa: F401 - part of this module's interface
@@ -226,8 +225,6 @@ def _start_pool(n_workers: int):
 
 def _render(inputs, pool, *, pdf_path, html_path, seconds, context_options) -> RenderedPack:
     started = time.perf_counter()
-    if pool is not None:
-        context_options = {"draw_family_charts": partial(_draw_charts_on, pool), **context_options}
     context = build_pack_context(inputs, **context_options)
     seconds["context"] = time.perf_counter() - started
 
@@ -269,13 +266,6 @@ def _render(inputs, pool, *, pdf_path, html_path, seconds, context_options) -> R
         html=html, pdf_path=pdf_out, html_path=html_out, n_pages=n_pages,
         fetched=fetched, refused=refused, seconds=seconds,
     )
-
-
-def _draw_charts_on(pool, painter_settings: dict, specs: list[dict]) -> list[str]:
-    """The family charts drawn in runs on the pool's workers (each run on one painter), in family order."""
-    runs = _family_runs(len(specs), pool._max_workers)
-    futures = [pool.submit(charts.draw_family_charts, painter_settings, specs[a:b]) for a, b in runs]
-    return [svg for future in futures for svg in future.result()]
 
 
 # --------------------------------------------------------------------------- laying out in parts
