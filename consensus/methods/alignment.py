@@ -524,17 +524,32 @@ def split_to_grain(rows: pd.DataFrame, *, mix: pd.DataFrame, items: pd.DataFrame
     if missing:
         raise ValueError(f"rows lack columns {missing}")
     rows = rows.reset_index(drop=True)
-    groups = _resolve_groups(rows, items=items, locations=locations)
-    lines = _expand_to_pairs(rows, groups, mix=mix, items=items, locations=locations)
-    carried = rows.drop(columns=[c for c in ("item", "family", "location", "region") if c in rows.columns])
-    out = carried.iloc[lines["_row"].to_numpy()].reset_index(drop=True)
-    out["item"] = lines["item"].to_numpy()
-    out["location"] = lines["location"].to_numpy()
-    out["share"] = lines["share"].to_numpy()
-    out["share_basis"] = lines["share_basis"].to_numpy()
+    carried = [c for c in rows.columns if c not in ("item", "family", "location", "region")]
+    # Rows already at item × location are their own pair (share 1): checked against the masters, never
+    # grouped or expanded.  At 100,000 series they are most rows (a DC's weekly file spread to months),
+    # and grouping them cost gigabytes of per-row group names.
+    at_pair = _present(rows, "item") & _present(rows, "location")
+    own = rows.loc[at_pair]
+    if at_pair.any():
+        _check_known(own, "item", items["item"], "items in rows")
+        _check_known(own, "location", locations["location"], "locations in rows")
+    own = own[carried].assign(**{side: own[side].to_numpy(dtype=object) if side in own else np.empty(0, dtype=object)
+                                 for side in ("item", "location")}, share=1.0, share_basis="given at item × location")
+    rest = rows.loc[~at_pair]
+    del rows
+    lines = _expand_to_pairs(rest, _resolve_groups(rest, items=items, locations=locations), mix=mix, items=items,
+                             locations=locations)
+    spread = rest[carried].iloc[lines["_row"].to_numpy()].reset_index(drop=True)
+    del rest
+    spread["item"] = lines["item"].to_numpy()
+    spread["location"] = lines["location"].to_numpy()
+    spread["share"] = lines["share"].to_numpy()
+    spread["share_basis"] = lines["share_basis"].to_numpy()
+    out = pd.concat([own, spread], ignore_index=True) if len(spread) else own.reset_index(drop=True)
     out["quantity"] = out["quantity"].astype(float).to_numpy() * out["share"].to_numpy()
     order = GRAIN_COLUMNS + [c for c in out.columns if c not in GRAIN_COLUMNS]
-    warnings = _used_warnings(mix, lines)
+    warnings = _used_warnings(mix, pd.concat([own[["item"]], lines[["item"]]], ignore_index=True))
+    del own, spread
     equal = lines.loc[lines["share_basis"].str.contains("no mix for this group", regex=False), "share_basis"]
     warnings += [text.split(":")[0] + ": no mix for this group; split equally" for text in equal.unique()]
     return out[order], warnings

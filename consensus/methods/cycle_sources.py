@@ -58,8 +58,10 @@ def describe_rows(lines: pd.DataFrame) -> pd.Series:
 
 
 def _for_columns(lines: pd.DataFrame) -> pd.DataFrame:
-    out = lines.copy()
-    for column in ("item", "family", "location", "region", "period", "week", "note"):
+    """The columns alignment reads, and no others (every column is carried through the split to grain)."""
+    out = lines[[c for c in ("seq", "source", "submission_id", "row", "item", "family", "location", "region",
+                             "period", "week", "quantity", "value") if c in lines]]  # a new frame: lines stay as given
+    for column in ("item", "family", "location", "region", "period", "week"):
         if column not in out:
             out[column] = None
     for column in ("quantity", "value"):
@@ -89,12 +91,18 @@ def align_submissions(lines: pd.DataFrame, *, cycle: str, items: pd.DataFrame, l
     direct = (rows["item"].notna() & rows["location"].notna() & rows["period"].notna() & rows["week"].isna()
               & rows["quantity"].notna()).to_numpy()
     parts, warnings, traced_parts = [], [], []
-    at_grain = rows.loc[direct & rows["period"].isin(horizon).to_numpy()]
+    keys = ["seq", "source", "item", "location", "period", "quantity"]
+    in_grain = direct & rows["period"].isin(horizon).to_numpy()
+    at_grain = rows.loc[in_grain] if with_traces else rows.loc[in_grain, keys]
     if len(at_grain):
-        parts.append(at_grain[["seq", "source", "item", "location", "period", "quantity"]])
+        parts.append(at_grain[keys])
         if with_traces:
             traced_parts.append(at_grain.assign(share=1.0, share_basis="given at item × location"))
     rest = rows.loc[~direct]
+    # Only the trace needs each piece's submission, row and share; the sum needs its file and source.
+    origin = rows.set_index("row_id")[["seq", "source", "submission_id", "row"] if with_traces else ["seq", "source"]]
+    if not with_traces:
+        del rows  # a big catalogue's lines are gigabytes: let each copy go as soon as it is read
     mixed_seqs: set = set()
     if len(rest):
         weekly = rest["week"].notna()
@@ -102,6 +110,8 @@ def align_submissions(lines: pd.DataFrame, *, cycle: str, items: pd.DataFrame, l
         if weekly.any():
             spread = alignment.spread_weeks(rest.loc[weekly].drop(columns=["period"]))
             monthly = pd.concat([monthly, spread], ignore_index=True)
+            del spread
+        del rest, weekly
         monthly = monthly[monthly["period"].isin(horizon)]
         in_value = (monthly["quantity"].isna() & monthly["value"].notna()).to_numpy()
         needed = alignment.levels_of(monthly)
@@ -113,15 +123,17 @@ def align_submissions(lines: pd.DataFrame, *, cycle: str, items: pd.DataFrame, l
             monthly[["row_id", "item", "family", "location", "region", "period", "quantity", "week_share"]],
             mix=the_mix, items=items, locations=locations)
         warnings += split_warnings
-        origin = rows.set_index("row_id")[["seq", "source", "submission_id", "row"]]
-        traced = split.join(origin, on="row_id")
-        traced["share"] = traced["share"] * traced["week_share"].fillna(1.0)
+        traced = split[["row_id", "item", "location", "period", "quantity", "share", "share_basis", "week_share"]
+                       if with_traces else ["row_id", "item", "location", "period", "quantity"]].join(origin, on="row_id")
+        del split, monthly
         grouped = traced.groupby(["seq", "source", "item", "location", "period"], as_index=False, sort=False)[
             "quantity"].sum()
         parts.append(grouped)
         mixed_seqs = set(grouped["seq"]) & set(at_grain["seq"])
         if with_traces:
+            traced["share"] = traced["share"] * traced["week_share"].fillna(1.0)
             traced_parts.append(traced)
+        del traced
     aligned = pd.concat(parts, ignore_index=True) if parts else empty
     if mixed_seqs:  # a file that gives both item rows and group rows of the same cells: its parts add up
         mixed = aligned["seq"].isin(mixed_seqs)

@@ -411,8 +411,9 @@ def _align_task(name: str) -> bytes:
     ctx = _WORKER
     c = _cycle(ctx, name)
     forecasts = c.submissions[c.submissions["kind"] == "forecast"]
-    lines = _cycle_lines(ctx, c, "forecast")
-    aligned, warnings = _align(lines, forecasts, c.name, ctx.inputs, ctx.history, ctx.spec.mix_window_months)
+    # The lines go straight in, so only _align holds them and lets go once it has what it needs.
+    aligned, warnings = _align(_cycle_lines(ctx, c, "forecast"), forecasts, c.name, ctx.inputs, ctx.history,
+                               ctx.spec.mix_window_months)
     return pack_frames({"aligned": aligned, "warnings": pd.DataFrame({"text": warnings}, dtype=object)})
 
 
