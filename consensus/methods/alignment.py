@@ -42,6 +42,8 @@ SEASONAL_VARIANCE_RATIO = 4.0
 
 MIX_COLUMNS = ["level", "group_item", "group_location", "item", "location", "month_of_year", "share", "basis",
                "imputed"]
+#: The share basis of a row given at item × location: its own pair, share 1.
+GIVEN_AT_PAIR = "given at item × location"
 GRAIN_COLUMNS = ["row_id", "item", "location", "period", "quantity", "share", "share_basis"]
 
 _WEEK_PATTERN = r"^(\d{4})-W(\d{2})$"
@@ -464,7 +466,7 @@ def _expand_to_pairs(rows: pd.DataFrame, groups: pd.DataFrame, *, mix: pd.DataFr
     direct = (groups["level"] == "item×location").to_numpy()
     parts = [pd.DataFrame({"_row": position[direct], "item": groups["group_item"].to_numpy()[direct],
                            "location": groups["group_location"].to_numpy()[direct], "share": 1.0,
-                           "share_basis": "given at item × location"})]
+                           "share_basis": GIVEN_AT_PAIR})]
     if (~direct).any():
         keyed, seasonal_groups = _mix_lookup(mix)
         wanted = groups.loc[~direct, ["level", "group_item", "group_location"]].astype(object)
@@ -534,7 +536,7 @@ def split_to_grain(rows: pd.DataFrame, *, mix: pd.DataFrame, items: pd.DataFrame
         _check_known(own, "item", items["item"], "items in rows")
         _check_known(own, "location", locations["location"], "locations in rows")
     own = own[carried].assign(**{side: own[side].to_numpy(dtype=object) if side in own else np.empty(0, dtype=object)
-                                 for side in ("item", "location")}, share=1.0, share_basis="given at item × location")
+                                 for side in ("item", "location")}, share=1.0, share_basis=GIVEN_AT_PAIR)
     rest = rows.loc[~at_pair]
     del rows
     lines = _expand_to_pairs(rest, _resolve_groups(rest, items=items, locations=locations), mix=mix, items=items,
@@ -548,16 +550,16 @@ def split_to_grain(rows: pd.DataFrame, *, mix: pd.DataFrame, items: pd.DataFrame
     out = pd.concat([own, spread], ignore_index=True) if len(spread) else own.reset_index(drop=True)
     out["quantity"] = out["quantity"].astype(float).to_numpy() * out["share"].to_numpy()
     order = GRAIN_COLUMNS + [c for c in out.columns if c not in GRAIN_COLUMNS]
-    warnings = _used_warnings(mix, pd.concat([own[["item"]], lines[["item"]]], ignore_index=True))
+    warnings = _used_warnings(mix, {*own["item"].unique(), *lines["item"].unique()})
     del own, spread
     equal = lines.loc[lines["share_basis"].str.contains("no mix for this group", regex=False), "share_basis"]
     warnings += [text.split(":")[0] + ": no mix for this group; split equally" for text in equal.unique()]
     return out[order], warnings
 
 
-def _used_warnings(mix: pd.DataFrame, lines: pd.DataFrame) -> list[str]:
+def _used_warnings(mix: pd.DataFrame, items_touched) -> list[str]:
     """The mix's warnings that concern items the split actually touched."""
-    touched = set(map(str, lines["item"].unique()))
+    touched = set(map(str, items_touched))
     used = []
     for text in mix.attrs.get("warnings", []):
         if text.startswith("item "):

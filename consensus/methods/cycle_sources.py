@@ -97,7 +97,7 @@ def align_submissions(lines: pd.DataFrame, *, cycle: str, items: pd.DataFrame, l
     if len(at_grain):
         parts.append(at_grain[keys])
         if with_traces:
-            traced_parts.append(at_grain.assign(share=1.0, share_basis="given at item × location"))
+            traced_parts.append(at_grain.assign(share=1.0, share_basis=alignment.GIVEN_AT_PAIR))
     rest = rows.loc[~direct]
     # Only the trace needs each piece's submission, row and share; the sum needs its file and source.
     origin = rows.set_index("row_id")[["seq", "source", "submission_id", "row"] if with_traces else ["seq", "source"]]
