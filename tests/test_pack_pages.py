@@ -340,3 +340,34 @@ def test_a_family_page_shows_the_runs_persistent_bias_factors_beside_the_weights
     html = _render_context(context, inline_charts=True)
     assert f"Bias factor, {vocabulary.source_label('sales')}" in html and "× 0.875" in html
     assert "× 1.200" not in html
+
+
+# --------------------------------------------------------------------------- family grids as text blocks
+
+def test_family_grids_print_as_blocks_whose_lines_keep_step_with_their_stripes(inputs):
+    """The family page's grids are one block of lines each; every line sits one stripe pitch below the last.
+
+    The stripes and rules are the block's repeating background, two line pitches a period, so a line that
+    drifted from the pitch would print across a rule (a fact of the layout, checked on the laid-out boxes).
+    """
+    context = build_pack_context(inputs)
+    family = context["families"][0]
+    document = lay_out(_render_context(context, inline_charts=False))
+    blocks = [box for page in document.pages for box in page._page_box.descendants()
+              if getattr(box, "element_tag", None) == "div" and "text-lines" in (box.element.get("class") or "")
+              and "family-grid" in box.element.get("class")]
+    assert blocks, "no family grid block laid out"
+    block = blocks[0]
+    style = block.element.get("style")
+    pitch_pt = float(re.search(r"line-height: ([\d.]+)pt", style).group(1))
+    period = re.findall(r"#e4e9ee ([\d.]+)pt", style)[-1]
+    assert float(period) == pytest.approx(2 * pitch_pt)
+    lines = [box for box in block.children if type(box).__name__ == "LineBox"]
+    assert len(lines) == len(family["grid"]["lines"])
+    pitch_px = pitch_pt * 96 / 72  # WeasyPrint lays out in CSS pixels
+    tops = np.array([line.position_y for line in lines])
+    np.testing.assert_allclose(np.diff(tops), pitch_px, atol=1e-6)
+    assert tops[0] == pytest.approx(block.content_box_y())
+    text = "\n".join("".join(child.text for child in line.descendants() if hasattr(child, "text"))
+                     for line in lines)
+    assert text.split("\n") == [line.rstrip("\n") for line in family["grid"]["lines"]]
