@@ -41,7 +41,8 @@ def _pdf_stages(seconds: dict[str, float]) -> list[tuple[str, str]]:
     if "layout" in seconds:  # one process
         return [("WeasyPrint layout", f"{seconds['layout']:6.1f} s"), ("PDF write", f"{seconds.get('pdf', 0):6.1f} s")]
     return [
-        ("count front pages (here, while the workers lay out the rest)", f"{seconds.get('count', 0):6.1f} s"),
+        ("count front pages (a worker, first)", f"{seconds.get('count', 0):6.1f} s"),
+        ("hand the parts out, drawing the family charts (here)", f"{seconds.get('submit', 0):6.1f} s"),
         ("family runs and back laid out once (workers)", f"{seconds.get('parts', 0):6.1f} s"),
         ("front with its page numbers (here); page numbers (worker)", f"{seconds.get('front', 0):6.1f} s"),
         (f"join parts and print page numbers ({_joiner()})", f"{seconds.get('join', 0):6.1f} s"),

@@ -552,6 +552,26 @@ def test_family_runs_and_back_are_laid_out_once(parts_inputs, tmp_path, monkeypa
     assert made.count(("front", ())) == 2  # counted, then with its page numbers (this pack's front keeps its length)
 
 
+def test_family_charts_are_drawn_once_as_the_runs_go_out_and_the_html_matches_the_whole_pack(
+        parts_inputs, parts_pack, whole_pack, tmp_path, monkeypatch):
+    # The family charts are deferred (charts.DeferredChart): drawn when a run's HTML is made, kept for the HTML
+    # file. Oracle: the pack laid out whole, in one process, gives the same HTML byte for byte.
+    import consensus.pack.charts as charts
+
+    assert parts_pack.html == whole_pack.html
+    drawn = []
+    original = charts.FamilyChartPainter.draw
+
+    def counting(self, **kwargs):
+        drawn.append(kwargs["salt"])
+        return original(self, **kwargs)
+
+    monkeypatch.setattr(charts.FamilyChartPainter, "draw", counting)
+    render_pack(parts_inputs, pdf_path=tmp_path / "pack.pdf", html_path=tmp_path / "pack.html", workers=2)
+    n_families = parts_inputs.items["family"].nunique()
+    assert sorted(drawn) == sorted(f"fam{i}" for i in range(1, n_families + 1))
+
+
 def test_joined_contents_point_at_the_real_family_pages(parts_inputs, parts_pack):
     pages = pdf_pages_text(parts_pack.pdf_path)
     contents = next(t for t in pages if re.search(r"^Contents$", t, re.M))

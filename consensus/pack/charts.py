@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import io
 import re
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 
 import matplotlib
 
@@ -22,6 +22,7 @@ from matplotlib.backends.backend_svg import FigureCanvasSVG
 from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
+from markupsafe import Markup
 from matplotlib.ticker import FuncFormatter, MaxNLocator
 
 from consensus import vocabulary
@@ -165,6 +166,33 @@ def _style_axes(ax, *, y_label: str) -> None:
     ax.grid(axis="y", color="#e3e3e3", linewidth=0.5)
     ax.set_axisbelow(True)
     ax.margins(x=0.01)
+
+
+class DeferredChart:
+    """A chart drawn the first time a page shows it, then kept.
+
+    A family page's chart is most of what building its page costs; deferred, the pack can lay out its first
+    family pages in other processes while this one is still drawing the later ones' charts.  Truthy before it
+    is drawn, so a template's ``{% if chart %}`` does not draw it.
+    """
+
+    __slots__ = ("_draw", "_svg")
+
+    def __init__(self, draw: Callable[[], str]) -> None:
+        self._draw, self._svg = draw, None
+
+    @property
+    def svg(self) -> Markup:
+        if self._svg is None:
+            self._svg = Markup(self._draw())
+            self._draw = None
+        return self._svg
+
+    def __html__(self) -> str:
+        return self.svg
+
+    def __str__(self) -> str:
+        return str(self.svg)
 
 
 class FamilyChartPainter:

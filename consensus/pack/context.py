@@ -8,6 +8,7 @@ lay out what this module hands them (plus the number formatting filters below).
 
 from __future__ import annotations
 
+import functools
 import math
 from typing import Any
 
@@ -900,8 +901,8 @@ def _family_pages(
         ]
         chart = None
         if painter is not None:
-            chart = Markup(painter.draw(
-                actual=actual, consensus=p[:, col["consensus"]],
+            chart = charts.DeferredChart(functools.partial(
+                painter.draw, actual=actual, consensus=p[:, col["consensus"]],
                 lower_80=p[:, col["lower_80"]], upper_80=p[:, col["upper_80"]],
                 lower_95=p[:, col["lower_95"]], upper_95=p[:, col["upper_95"]],
                 sources={s: p[:, col[f"src_{s}"]] for s in source_names}, previous=p[:, col["previous"]],

@@ -44,7 +44,7 @@ from consensus.pack.context import (
 from consensus.errors import InvalidSpec
 from consensus.outputs import atomic_target, check_output_path, write_text
 from consensus.pack.inputs import PackInputs
-from consensus.pack.paginate import LaidOutPart, describe_part, join_parts, lay_out, lay_out_part, warm_up
+from consensus.pack.paginate import LaidOutPart, join_parts, lay_out, lay_out_part, warm_up
 from consensus.pack.paginate import restricted_fetcher  # noqa: F401 - part of this module's interface
 from consensus.resources import reports_dir
 
@@ -228,10 +228,6 @@ def _render(inputs, pool, *, pdf_path, html_path, seconds, context_options) -> R
     context = build_pack_context(inputs, **context_options)
     seconds["context"] = time.perf_counter() - started
 
-    started = time.perf_counter()
-    html = _render_context(context, inline_charts=True)
-    seconds["html"] = time.perf_counter() - started
-
     pdf_out, n_pages, fetched, refused = None, None, (), ()
     if pdf_path is not None:
         pdf_out = Path(pdf_path)
@@ -257,6 +253,10 @@ def _render(inputs, pool, *, pdf_path, html_path, seconds, context_options) -> R
             n_pages = len(document.pages)
             fetched, refused = tuple(fetcher.fetched), tuple(fetcher.refused)
 
+    # After the PDF: its family charts are drawn as the parts go out (charts.DeferredChart), and kept for this.
+    started = time.perf_counter()
+    html = _render_context(context, inline_charts=True)
+    seconds["html"] = time.perf_counter() - started
     # After the PDF, so a failed PDF leaves the HTML beside it unchanged as well.
     html_out = None
     if html_path is not None:
@@ -315,9 +315,10 @@ def _render_pdf_in_parts(
 
     Family runs and the back matter print no page number of their own (their
     "Page X of N" is printed over them at the join), so each is laid out once,
-    on the workers, whatever the other parts' lengths.  Meanwhile this process
-    lays the front matter out with placeholder numbers of the widest kind, only
-    to count its pages and find its anchors.  Once every count is in, the front
+    on the workers, whatever the other parts' lengths.  The back and the front
+    matter go first, the front with placeholder numbers of the widest kind, only
+    to count its pages and find its anchors; this process meanwhile draws the
+    family charts run by run as it hands the runs out.  Once every count is in, the front
     is laid out with the page numbers that follow, again while its own length
     or anchors move (its contents lists every family); then the page-number
     pages are laid out (on a worker, during the front's last layout, for the
@@ -336,16 +337,16 @@ def _render_pdf_in_parts(
         parts = [front, *middle, back]
 
         started = time.perf_counter()
-        # The back first, so it is not the part left running alone at the end.
-        futures = [(part, pool.submit(lay_out_part, _part_html(context, part, _NumberedAnchors()), part.path))
-                   for part in [back, *middle]]
-        front_doc = lay_out(_part_html(context, front, _NumberedAnchors(999)), in_parts=True)
-        front_anchors, front_links = describe_part(front_doc)
-        front.result = LaidOutPart(n_pages=len(front_doc.pages), anchors=front_anchors, outside_links=front_links)
-        del front_doc
-        seconds["count"] = time.perf_counter() - started
+        # The back and the front's page count go first: the workers lay them out while this process draws the
+        # family runs' charts (each run's HTML draws its own), so no core waits for the whole context.
+        futures = [(back, pool.submit(lay_out_part, _part_html(context, back, _NumberedAnchors()), back.path)),
+                   (front, pool.submit(lay_out_part, _part_html(context, front, _NumberedAnchors(999)), None))]
+        futures += [(part, pool.submit(lay_out_part, _part_html(context, part, _NumberedAnchors()), part.path))
+                    for part in middle]
+        seconds["submit"] = time.perf_counter() - started
         for part, future in futures:
             part.result = future.result()
+        seconds["count"] = front.result.seconds.get("layout", 0.0)
         seconds["parts"] = time.perf_counter() - started
 
         started = time.perf_counter()
