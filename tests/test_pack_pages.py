@@ -371,3 +371,23 @@ def test_family_grids_print_as_blocks_whose_lines_keep_step_with_their_stripes(i
     text = "\n".join("".join(child.text for child in line.descendants() if hasattr(child, "text"))
                      for line in lines)
     assert text.split("\n") == [line.rstrip("\n") for line in family["grid"]["lines"]]
+
+
+def test_an_item_grid_that_would_split_from_its_header_starts_on_the_next_page_with_it():
+    """A block's header does not repeat across a page, so title, header and lines are kept together.
+
+    100 items a family make a 50-line item grid, more than the rest of a family's first page holds
+    (the layout rule is this pack's own; checked on the laid-out boxes).
+    """
+    inputs = example_pack_inputs(n_families=2, n_items=200, seed=3)
+    document = lay_out(_render_context(build_pack_context(inputs), inline_charts=False))
+
+    def pages_of(tag, cls):
+        return sorted({n for n, page in enumerate(document.pages) for box in page._page_box.descendants()
+                       if getattr(box, "element_tag", None) == tag
+                       and cls in (box.element.get("class") or "").split()})
+
+    titles, heads, lines = pages_of("h3", "with-grid"), pages_of("table", "series-grid"), pages_of("div", "series-grid")
+    assert len(titles) == 2 and titles == heads == lines, (titles, heads, lines)
+    first_pages = {min(_section_pages(document, f"family-{k}")) for k in (1, 2)}
+    assert not set(lines) & first_pages  # each moved past its family's first page, with its header
