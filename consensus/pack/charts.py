@@ -22,8 +22,8 @@ from matplotlib.backends.backend_svg import FigureCanvasSVG
 from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
-from markupsafe import Markup
 from matplotlib.ticker import FuncFormatter, MaxNLocator
+from markupsafe import Markup
 
 from consensus import vocabulary
 from consensus.periods import month_indexes

@@ -253,11 +253,11 @@ def _render(inputs, pool, *, pdf_path, html_path, seconds, context_options) -> R
             n_pages = len(document.pages)
             fetched, refused = tuple(fetcher.fetched), tuple(fetcher.refused)
 
-    # After the PDF: its family charts are drawn as the parts go out (charts.DeferredChart), and kept for this.
+    # After the PDF: the family charts it drew (charts.DeferredChart) serve again here, and a failed PDF
+    # leaves the HTML beside it unchanged as well.
     started = time.perf_counter()
     html = _render_context(context, inline_charts=True)
     seconds["html"] = time.perf_counter() - started
-    # After the PDF, so a failed PDF leaves the HTML beside it unchanged as well.
     html_out = None
     if html_path is not None:
         html_out = Path(html_path)
@@ -318,8 +318,8 @@ def _render_pdf_in_parts(
     on the workers, whatever the other parts' lengths.  The back and the front
     matter go first, the front with placeholder numbers of the widest kind, only
     to count its pages and find its anchors; this process meanwhile draws the
-    family charts run by run as it hands the runs out.  Once every count is in, the front
-    is laid out with the page numbers that follow, again while its own length
+    family charts run by run as it hands the runs out.  Once every count is in,
+    the front is laid out with the page numbers that follow, again while its own length
     or anchors move (its contents lists every family); then the page-number
     pages are laid out (on a worker, during the front's last layout, for the
     count it should settle at) and everything is joined.
