@@ -91,4 +91,66 @@ def test_sums_by_folded_keys_equal_a_grouping_on_several_columns():
     values = pd.DataFrame({"x": rng.normal(size=500), "n": np.ones(500, dtype=int)})
     mine = _sums_by(keys, values)
     reference = values.assign(**keys).groupby(["a", "b", "c"], sort=True)[["x", "n"]].sum().reset_index()
-    pd.testing.assert_frame_equal(mine, reference, check_exact=True, check_dtype=False)
+    # pandas sums with compensation, the ledger in plain row order: the same to rounding, counts exactly
+    pd.testing.assert_frame_equal(mine, reference, check_exact=False, rtol=1e-12, check_dtype=False)
+    assert (mine["n"].to_numpy() == reference["n"].to_numpy()).all() and mine["n"].dtype.kind == "i"
+
+
+def test_a_groups_sum_is_its_own_rows_added_in_order_so_a_leading_cycle_code_changes_no_digit():
+    """Sequential left-to-right addition (a reduce over +, the plain float sum) is the reference, group by group;
+    and summing several cycles at once with their code leading the key gives each cycle its own digits."""
+    from functools import reduce
+    from operator import add
+
+    from consensus.methods.history import _sums_by
+
+    rng = np.random.default_rng(11)
+    n = 3000
+    cycle = np.repeat(np.arange(3), n)
+    source = rng.integers(0, 4, 3 * n)
+    x = np.round(rng.gamma(1.0, 80.0, 3 * n), 2) * 1.37  # magnitudes where addition order shows in the digits
+    together = _sums_by({"k": cycle, "source": source}, pd.DataFrame({"x": x}))
+    for k in range(3):
+        rows = slice(k * n, (k + 1) * n)
+        alone = _sums_by({"source": source[rows]}, pd.DataFrame({"x": x[rows]}))
+        mine = together[together["k"] == k]
+        assert mine["x"].tolist() == alone["x"].tolist()
+        for s in range(4):
+            values = x[rows][source[rows] == s].tolist()
+            assert alone.loc[alone["source"] == s, "x"].item() == reduce(add, values)
+
+
+def test_cycles_scored_together_or_in_any_row_order_give_the_digits_of_cycles_scored_one_by_one():
+    """The ledger's batched pass (small catalogues) against its own one-cycle pass: every summary frame equal.
+
+    The reference for the figures themselves is the first tests' plain pandas sums; this one checks that the
+    batching is invisible, so a store's plan does not depend on its size class."""
+    rng = np.random.default_rng(3)
+
+    def cycle(name, months):
+        rows = []
+        for source in ("sales", "statistical", "statistical_base", "dc"):
+            for item, location in (("A", "L1"), ("B", "L2"), ("N", "L1")):
+                for month in months:
+                    rows.append((source, item, location, month, float(np.round(rng.gamma(2.0, 5.0), 1))))
+        return pd.DataFrame(rows, columns=["source", "item", "location", "period", "quantity"])
+
+    batch = [("2025-12", cycle("2025-12", MONTHS[:3])), ("2026-01", cycle("2026-01", MONTHS[1:])),
+             ("2026-02", cycle("2026-02", MONTHS[2:]))]
+    book = build_series_book(ACTUALS, items=ITEMS, locations=LOCATIONS, cycle="2026-04")
+    sources = ("sales", "statistical", "statistical_base", "dc")
+    together = HistoryLedger(book=book, cycle="2026-04", segment="family", sources=sources, keep_cells=True)
+    together.add_cycles([(name, frame, None) for name, frame in batch])
+    apart = HistoryLedger(book=book, cycle="2026-04", segment="family", sources=sources, keep_cells=True)
+    for name, frame in batch:
+        apart.add_cycle(name, frame)
+    shuffled = HistoryLedger(book=book, cycle="2026-04", segment="family", sources=sources, keep_cells=True)
+    shuffled.add_cycles([(name, frame.sample(frac=1.0, random_state=5), None) for name, frame in batch])
+    mine, reference = together.summary().frames(), apart.summary().frames()
+    assert mine.keys() == reference.keys()
+    for name in mine:
+        pd.testing.assert_frame_equal(mine[name], reference[name], check_exact=True, obj=name)
+    # rows in another order (fits gathered in other groups, say): the same digits where the figures are sums
+    for name in ("cell_sums", "pattern_sums", "node_errors", "history", "fva", "cell_signals", "cell_errors"):
+        pd.testing.assert_frame_equal(shuffled.summary().frames()[name], reference[name], check_exact=True, obj=name)
+    assert len(mine["node_errors"]) and len(mine["uplift"]) and len(mine["dc_forecasts"])

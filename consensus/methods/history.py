@@ -138,24 +138,35 @@ def build_series_book(actuals: pd.DataFrame, *, items: pd.DataFrame, locations: 
 def _sums_by(keys: dict[str, np.ndarray], values: pd.DataFrame) -> pd.DataFrame:
     """``values`` summed by whole-number keys, one row per key combination in sorted order, keys as columns.
 
-    The keys are folded into one (mixed radix), which groups several times faster than a grouping on
-    several columns; the sums are the same, taken over the same rows in the same order.
+    The keys are folded into one (mixed radix) and each group summed in row order (``np.bincount``), so a
+    group's sum depends only on its own rows: scoring cycles together, a cycle code leading the keys, gives
+    each cycle the digits it gets alone.
     """
     lows = {name: int(k.min()) if len(k) else 0 for name, k in keys.items()}
     sizes = {name: int(k.max()) - lows[name] + 1 if len(k) else 1 for name, k in keys.items()}
     folded = np.zeros(len(values), dtype=np.int64)
     for name, k in keys.items():
         folded = folded * sizes[name] + (k.astype(np.int64) - lows[name])
-    summed = values.groupby(folded, sort=True).sum()
-    rest = summed.index.to_numpy(np.int64)
+    groups, inverse = np.unique(folded, return_inverse=True)
+    rest = groups
     columns = {}
     for name in reversed(list(keys)):
         rest, columns[name] = np.divmod(rest, sizes[name])
         columns[name] = columns[name] + lows[name]
     out = pd.DataFrame({name: columns[name] for name in keys})
-    for column in summed.columns:
-        out[column] = summed[column].to_numpy()
+    for column in values.columns:
+        summed = np.bincount(inverse, weights=values[column].to_numpy(float), minlength=len(groups))
+        if values[column].dtype.kind in "iub":
+            summed = np.rint(summed).astype(np.int64)
+        out[column] = summed
     return out
+
+
+def _with_cycle(frame: pd.DataFrame, names: np.ndarray, k: np.ndarray) -> pd.DataFrame:
+    """``frame`` with each row's cycle name, the column typed as one cycle's name would type it (even empty)."""
+    if len(names) == 1 or not len(frame):
+        return frame.assign(cycle=names[0])
+    return frame.assign(cycle=names[k])
 
 
 def _codes(values: pd.Series | np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -255,8 +266,12 @@ class HistoryLedger:
 
     def score_cycle(self, name: str, forecasts: pd.DataFrame, *, bands: pd.DataFrame | None = None) -> dict:
         """One cycle's gatherings as a state to :meth:`merge` (so cycles can be scored apart, in any process)."""
+        return self.score_cycles([(name, forecasts, bands)])
+
+    def score_cycles(self, batch: list[tuple[str, pd.DataFrame, pd.DataFrame | None]]) -> dict:
+        """Several cycles' gatherings as one state, the same digits as scoring them one by one and merging."""
         part = self.fresh()
-        part.add_cycle(name, forecasts, bands=bands)
+        part.add_cycles(batch)
         return part.state()
 
     def add_cycle(self, name: str, forecasts: pd.DataFrame, *, bands: pd.DataFrame | None = None) -> None:
@@ -265,27 +280,55 @@ class HistoryLedger:
         ``bands``: the cycle's published plan with its bands [item, location,
         period, lower_80, upper_80, lower_95, upper_95], for band coverage.
         """
+        self.add_cycles([(name, forecasts, bands)])
+
+    def add_cycles(self, batch: list[tuple[str, pd.DataFrame, pd.DataFrame | None]]) -> None:
+        """Score past cycles (name, forecasts, bands), in order, in one pass over their rows.
+
+        A small catalogue's cycles cost more in per-call overhead than in arithmetic, so they are scored
+        together; every reduction still runs cycle by cycle over the same rows in the same order (a cycle
+        code leads each grouping key, the running sums are added one cycle at a time), so the digits are those
+        of :meth:`add_cycle` called for each cycle.
+        """
+        if not batch:
+            return
         book = self.book
-        c_index = periods.month_index(name)
-        near = forecasts[(forecasts["source"] == "dc")]
-        near_lag = month_indexes_factorized(near["period"]) - c_index
-        self._dc.append(near.loc[(near_lag >= 1) & (near_lag <= MAX_LEAD_TIME_MONTHS),
-                                 ["item", "location", "period", "quantity"]].assign(cycle=name))
-        frame = forecasts[forecasts["source"].isin(self.sources)]
+        names = np.asarray([name for name, _, _ in batch], dtype=object)
+        starts = np.asarray([periods.month_index(name) for name in names], dtype=np.int64)
+        forecasts = pd.concat([f for _, f, _ in batch], ignore_index=True) if len(batch) > 1 else \
+            batch[0][1].reset_index(drop=True)
+        row_cycle = np.repeat(np.arange(len(batch), dtype=np.int64), [len(f) for _, f, _ in batch])
+        is_dc = (forecasts["source"] == "dc").to_numpy()
+        near = forecasts[is_dc]
+        near_lag = month_indexes_factorized(near["period"]) - starts[row_cycle[is_dc]]
+        near_ok = (near_lag >= 1) & (near_lag <= MAX_LEAD_TIME_MONTHS)
+        self._dc.append(_with_cycle(near.loc[near_ok, ["item", "location", "period", "quantity"]], names,
+                                    row_cycle[is_dc][near_ok]))
+        in_sources = forecasts["source"].isin(self.sources).to_numpy()
+        frame = forecasts[in_sources]
+        k = row_cycle[in_sources]
         sid = book.index.get_indexer(pd.MultiIndex.from_frame(frame[["item", "location"]].astype(object)))
         month = month_indexes_factorized(frame["period"])
-        lag = month - c_index
+        lag = month - starts[k]
         in_window = (month <= self._now) & (lag >= 1) & (month >= book.first_month)
-        unordered = self._unordered_cells(frame, month, in_window & (sid < 0))
+        unordered = self._unordered_cells(frame, month, in_window & (sid < 0), k)
         keep = (sid >= 0) & in_window
-        sid, month, lag = sid[keep], month[keep], lag[keep]
+        sid, month, lag, k = sid[keep], month[keep], lag[keep], k[keep]
         forecast = frame["quantity"].to_numpy(float)[keep]
         actual = book.actual[sid, month - book.first_month]
         scored = np.isfinite(actual) & np.isfinite(forecast)
-        sid, month, lag, forecast, actual = sid[scored], month[scored], lag[scored], forecast[scored], actual[scored]
+        sid, month, lag, k = sid[scored], month[scored], lag[scored], k[scored]
+        forecast, actual = forecast[scored], actual[scored]
         source = frame["source"].map(self._source_code).to_numpy()[keep][scored].astype(np.int64)
+        # Scored in one canonical order (cycle, source, series, month), whatever order the rows came in: a sum
+        # is its rows added in order, so this keeps the digits free of how the frame was put together.
+        n_months = book.actual.shape[1]
+        order = np.argsort(((k * len(self.sources) + source) * max(self._n, 1) + sid) * n_months
+                           + (month - book.first_month), kind="stable")
+        k, source, sid, month, lag = k[order], source[order], sid[order], month[order], lag[order]
+        forecast, actual = forecast[order], actual[order]
+        self._add_nodes(names, k, source, sid, month, forecast, actual, unordered)
         if not len(sid):
-            self._add_nodes(name, source, sid, month, forecast, actual, unordered)
             return
         error = actual - forecast
         bucket = np.searchsorted([first for _, first, _ in DEFAULT_LAG_BUCKETS], lag, side="right") - 1
@@ -299,49 +342,63 @@ class HistoryLedger:
             "sum_scaled": np.where(scaled_ok, np.abs(error) / np.where(scaled_ok, scale, 1.0), 0.0),
             "n_scaled": scaled_ok.astype(int)})
         for target, codes in ((self._cell_sums, self._segment_codes), (self._pattern_sums, self._pattern_codes)):
-            target.append(_sums_by({"source": source, "lag": lag, "group": codes[sid]}, parts[SUM_FIELDS])
-                          .assign(cycle=name))
+            summed = _sums_by({"k": k, "source": source, "lag": lag, "group": codes[sid]}, parts[SUM_FIELDS])
+            target.append(_with_cycle(summed.drop(columns="k"), names, summed["k"].to_numpy()))
+        # the rows are in cycle order: each cycle's slice, so the running sums are added one cycle at a time
+        bounds = np.searchsorted(k, np.arange(len(batch) + 1))
+        cycles = [(c, slice(bounds[c], bounds[c + 1])) for c in range(len(batch)) if bounds[c + 1] > bounds[c]]
         flat = (source * len(BUCKETS) + bucket) * self._n + sid
         size = self._cell_acc[0].size
-        for k, values in enumerate((error, np.abs(error), None)):
-            self._cell_acc[k] += np.bincount(flat, weights=values, minlength=size).reshape(self._cell_acc[k].shape)
-        self._add_nodes(name, source, sid, month, forecast, actual, unordered)
+        for _, rows in cycles:
+            for j, values in enumerate((error, np.abs(error), None)):
+                self._cell_acc[j] += np.bincount(flat[rows], weights=None if values is None else values[rows],
+                                                 minlength=size).reshape(self._cell_acc[j].shape)
         for band_source in BAND_SOURCES:
             code = self._source_code.get(band_source)
             if code is None:
                 continue
             mine = (source == code) & (forecast > 0)
+            if not mine.any():  # no rows: an empty frame's column types would differ from a full one's
+                continue
             self._bands.setdefault(band_source, []).append(
                 pd.DataFrame({"lag_bucket": np.asarray(BUCKETS, dtype=object)[bucket[mine]],
                               "forecast": forecast[mine], "actual": actual[mine]}))
-        self._history.append(parts.groupby("source", sort=True)[["sum_abs", "sum_err", "sum_actual"]].sum()
-                             .reset_index().assign(cycle=name))
-        self._add_fva(name, source, sid, month, forecast, actual)
-        self._add_uplift(source, sid, month, bucket, forecast, actual)
-        if bands is not None and len(bands):
-            self._add_coverage(name, bands)
+        history = _sums_by({"k": k, "source": source}, parts[["sum_abs", "sum_err", "sum_actual"]])
+        self._history.append(_with_cycle(history.drop(columns="k"), names, history["k"].to_numpy()))
+        for c, rows in cycles:
+            self._add_fva(names[c], source[rows], sid[rows], month[rows], forecast[rows], actual[rows])
+        self._add_uplift(k, source, sid, month, bucket, forecast, actual)
+        for c, _ in cycles:
+            bands = batch[c][2]
+            if bands is not None and len(bands):
+                self._add_coverage(names[c], bands)
         if self.keep_cells:
-            self._cells.append(pd.DataFrame({"source": source, "sid": sid, "cycle": name, "month": month, "lag": lag,
-                                             "forecast": forecast, "actual": actual}))
+            self._cells.append(_with_cycle(pd.DataFrame({"source": source, "sid": sid}), names, k).assign(
+                month=month, lag=lag, forecast=forecast, actual=actual))
 
-    def _add_nodes(self, name, source, sid, month, forecast, actual, unordered) -> None:
-        """Each upper level's group totals of forecast and orders, per source and month (one frame per cycle).
+    def _add_nodes(self, names, k, source, sid, month, forecast, actual, unordered) -> None:
+        """Each upper level's group totals of forecast and orders, per cycle, source and month.
 
         Summed level by level: one level's cells at a time is all the memory it takes (a cycle of 100,000
-        series has millions of scored cells, and five levels' copies at once cost gigabytes).
+        series has millions of scored cells, and five levels' copies at once cost gigabytes).  The totals are
+        kept cycle by cycle, each cycle's levels in order.
         """
         summed = []
         for level, (codes, _, offset) in self._levels.items():
-            cells = pd.DataFrame({"source": source, "node": offset + codes[sid], "month": month,
+            cells = pd.DataFrame({"k": k, "source": source, "node": offset + codes[sid], "month": month,
                                   "forecast": forecast, "actual": actual})
             if unordered is not None:
                 cells = pd.concat([cells, unordered.assign(node=offset + self._node_codes(level, unordered))[
                     cells.columns]], ignore_index=True)
-            keys = {k: cells[k].to_numpy() for k in ("source", "node", "month")}
+            keys = {c: cells[c].to_numpy() for c in ("k", "source", "node", "month")}
             summed.append(_sums_by(keys, cells[["forecast", "actual"]]))
-        self._nodes.append(pd.concat(summed, ignore_index=True).assign(cycle=name))
+        nodes = pd.concat(summed, ignore_index=True)
+        if len(names) > 1:
+            nodes = nodes.iloc[np.argsort(nodes["k"].to_numpy(), kind="stable")].reset_index(drop=True)
+        self._nodes.append(_with_cycle(nodes.drop(columns="k"), names, nodes["k"].to_numpy()))
 
-    def _unordered_cells(self, frame: pd.DataFrame, month: np.ndarray, outside: np.ndarray) -> pd.DataFrame | None:
+    def _unordered_cells(self, frame: pd.DataFrame, month: np.ndarray, outside: np.ndarray,
+                         k: np.ndarray) -> pd.DataFrame | None:
         """Forecasts of series that never had an order, scored at zero in group totals (months whose orders are known).
 
         Such a series is not scored on its own (:func:`consensus.methods.accuracy.forecast_errors`), but what a
@@ -358,10 +415,13 @@ class HistoryLedger:
         if not known.any():
             return None
         rows = rows[known]
-        return pd.DataFrame({"source": rows["source"].map(self._source_code).to_numpy().astype(np.int64),
-                             "item": rows["item"].to_numpy(object), "location": rows["location"].to_numpy(object),
-                             "month": month[outside][known], "forecast": rows["quantity"].to_numpy(float),
-                             "actual": 0.0})
+        cells = pd.DataFrame({"k": k[outside][known],
+                              "source": rows["source"].map(self._source_code).to_numpy().astype(np.int64),
+                              "item": rows["item"].to_numpy(object), "location": rows["location"].to_numpy(object),
+                              "month": month[outside][known], "forecast": rows["quantity"].to_numpy(float),
+                              "actual": 0.0})
+        # one canonical order, as for the scored cells (these are few: launches and dropped series)
+        return cells.sort_values(["k", "source", "item", "location", "month"], kind="mergesort", ignore_index=True)
 
     def _node_codes(self, level: str, cells: pd.DataFrame) -> np.ndarray:
         item_side, location_side = UPPER_LEVELS[level]
@@ -411,16 +471,17 @@ class HistoryLedger:
                                                                               .sum()),
                                   "sum_actual": float(actual[mine].sum()), "n": int(mine.sum())})
 
-    def _add_uplift(self, source, sid, month, bucket, forecast, actual) -> None:
-        """Statistical with and without marketing's events, on the cells the events changed."""
+    def _add_uplift(self, k, source, sid, month, bucket, forecast, actual) -> None:
+        """Statistical with and without marketing's events, on the cells the events changed (cycle by cycle)."""
         with_code, without_code = self._source_code.get("statistical"), self._source_code.get("statistical_base")
         if with_code is None or without_code is None:
             return
         key = self._cell_key(sid, month)
-        a = pd.DataFrame({"key": key[source == with_code], "with": forecast[source == with_code],
-                          "actual": actual[source == with_code], "bucket": bucket[source == with_code]})
-        b = pd.DataFrame({"key": key[source == without_code], "without": forecast[source == without_code]})
-        paired = a.merge(b, on="key", how="inner")
+        mine, base = source == with_code, source == without_code
+        a = pd.DataFrame({"k": k[mine], "key": key[mine], "with": forecast[mine], "actual": actual[mine],
+                          "bucket": bucket[mine]})
+        b = pd.DataFrame({"k": k[base], "key": key[base], "without": forecast[base]})
+        paired = a.merge(b, on=["k", "key"], how="inner")
         changed = paired[~np.isclose(paired["with"], paired["without"], rtol=0, atol=1e-9)]
         if len(changed):
             self._uplift.append(changed.assign(abs_with=(changed["actual"] - changed["with"]).abs(),
