@@ -33,7 +33,7 @@ demand nor a zero).
 from __future__ import annotations
 
 import numpy as np
-from scipy import stats
+from scipy import special  # fdtrc is scipy.stats' f.sf without the 0.3 s import of scipy.stats
 
 ADI_CUTOFF = 1.32
 CV2_CUTOFF = 0.49
@@ -177,5 +177,5 @@ def detect_seasonality(y: np.ndarray, start: np.ndarray, *, season_length: int =
     """True where the seasonal-slot ANOVA of the detrended span rejects 'no seasonality' at 1 %."""
     f, df_between, df_within = seasonal_f_statistic(y, start, season_length=season_length)
     with np.errstate(all="ignore"):
-        p_value = stats.f.sf(f, df_between, np.maximum(df_within, 1))
+        p_value = special.fdtrc(df_between, np.maximum(df_within, 1), f)  # F upper tail
     return np.isfinite(f) & (p_value < SEASONALITY_P)

@@ -58,7 +58,7 @@ from collections.abc import Mapping, Sequence
 
 import numpy as np
 import pandas as pd
-from scipy import stats
+from scipy import special  # stdtrit and ndtri are what scipy.stats' t.ppf and norm.ppf call; stats costs 0.3 s to import
 
 from consensus.errors import InvalidSpec
 from consensus.methods.accuracy import LEVEL_KEYS
@@ -296,9 +296,9 @@ def apply_bands(forecast: pd.DataFrame, table: pd.DataFrame, *, levels: Sequence
         low_q = out[f"_q{(1 - level) / 2!r}"].to_numpy(dtype=float)
         high_q = out[f"_q{(1 + level) / 2!r}"].to_numpy(dtype=float)
         if few_errors == "student_t":
-            factor = stats.t.ppf((1 + level) / 2, df=np.maximum(n, 1))
+            factor = special.stdtrit(np.maximum(n, 1).astype(float), (1 + level) / 2)  # Student t quantile
         else:
-            factor = stats.norm.ppf((1 + level) / 2)
+            factor = special.ndtri((1 + level) / 2)  # normal quantile
         half_width = factor * SIGMA_PER_MAD * out["mad"].to_numpy(dtype=float)
         low = np.where(empirical, low_q, -half_width)
         high = np.where(empirical, high_q, half_width)
