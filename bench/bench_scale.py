@@ -3,6 +3,8 @@
     python3 bench/bench_scale.py                       # N = 1,000, 10,000, 100,000 on SQLite
     python3 bench/bench_scale.py --series 1000 10000   # a quicker look
     python3 bench/bench_scale.py --series 10000 --postgres postgresql+psycopg://postgres@127.0.0.1:55432/scale
+    python3 bench/bench_scale.py --series 100000 --keep DIR    # keeps DIR/n100000/built.db (unrun) as well
+    python3 bench/bench_scale.py --series 100000 --built DIR   # measures a copy of it again, without the build
 
 Each store is invented (bench/scale_store.py) and loaded through the tool's own
 intake: 12 past cycles and the current one, an 18-month horizon, sales at
@@ -42,7 +44,7 @@ HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE.parent))
 sys.path.insert(0, str(HERE))
 
-from scale_store import CURRENT, build_store, correction_file  # noqa: E402
+from scale_store import CURRENT, build_store, correction_file, invent_company  # noqa: E402
 
 
 def _tree_memory(root: int) -> tuple[int, int]:
@@ -126,14 +128,23 @@ def store_bytes(db: str) -> int:
         return int(connection.execute(sqlalchemy.text("SELECT pg_database_size(current_database())")).scalar())
 
 
-def measure(n: int, db: str, folder: Path, *, log) -> dict:
+def measure(n: int, db: str, folder: Path, *, log, built: Path | None = None) -> dict:
+    """Build (or copy from ``built``, a SQLite store this script built and kept unrun) and measure."""
     from consensus.store.db import get_engine
 
     get_engine.cache_clear()
     started = time.perf_counter()
-    company = build_store(n, db, folder=folder / "files", log=log)
+    if built is not None:
+        shutil.copy(built, db.split("///", 1)[1])
+        company = invent_company(n)  # the same invented company: the scenario is seeded
+        log(f"  store copied from {built} (built earlier, never run)")
+    else:
+        company = build_store(n, db, folder=folder / "files", log=log)
+        if db.startswith("sqlite"):  # kept unrun, for --built
+            shutil.copy(db.split("///", 1)[1], folder / "built.db")
     build = time.perf_counter() - started
-    log(f"  store built in {build:.0f} s")
+    if built is None:
+        log(f"  store built in {build:.0f} s")
     cold, cold_rss, _ = timed(["run", "--cycle", CURRENT], db=db)
     log(f"  cold run {cold:.1f} s")
     correction = correction_file(company, folder)
@@ -145,7 +156,7 @@ def measure(n: int, db: str, folder: Path, *, log) -> dict:
     export_path = folder / "consensus.csv"
     export, export_rss, _ = timed(["export", "--cycle", CURRENT, "--out", str(export_path)], db=db)
     digest = hashlib.sha256(export_path.read_bytes()).hexdigest()
-    return {"series": n, "build_s": build, "cold_s": cold, "warm_s": warm, "pack_s": pack, "export_s": export,
+    return {"series": n, "build_s": build, "copied": built is not None, "cold_s": cold, "warm_s": warm, "pack_s": pack, "export_s": export,
             "peak_gb": max(m[0] for m in (cold_rss, warm_rss, pack_rss, export_rss)) / 1e9,
             "peak_pss_gb": max(m[1] for m in (cold_rss, warm_rss, pack_rss, export_rss)) / 1e9,
             "store_mb": store_bytes(db) / 1e6,
@@ -156,7 +167,9 @@ def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--series", type=int, nargs="+", default=[1_000, 10_000, 100_000])
     parser.add_argument("--postgres", help="also run each N on this PostgreSQL database URL (emptied first)")
-    parser.add_argument("--keep", help="keep the stores in this folder")
+    parser.add_argument("--keep", help="keep the stores in this folder (each N's unrun store too, as built.db)")
+    parser.add_argument("--built", help="measure copies of the unrun stores a --keep run left in this folder "
+                                        "(FOLDER/nN/built.db) instead of building them again (SQLite only)")
     args = parser.parse_args()
     root = Path(args.keep or tempfile.mkdtemp(prefix="bench_scale_"))
     root.mkdir(parents=True, exist_ok=True)
@@ -164,10 +177,19 @@ def main() -> int:
     rows = []
     for n in args.series:
         folder = root / f"n{n}"
+        built = None
+        if args.built:
+            built = Path(args.built) / f"n{n}" / "built.db"
+            if not built.exists():
+                raise SystemExit(f"--built: {built} does not exist (run once with --keep {args.built})")
+            built = shutil.copy(built, Path(tempfile.mkdtemp(prefix="bench_built_")) / "built.db")
         shutil.rmtree(folder, ignore_errors=True)
         folder.mkdir(parents=True)
         log(f"N = {n:,} series (SQLite)")
-        rows.append({"backend": "sqlite", **measure(n, f"sqlite:///{folder / 'store.db'}", folder, log=log)})
+        rows.append({"backend": "sqlite", **measure(n, f"sqlite:///{folder / 'store.db'}", folder, log=log,
+                                                     built=built)})
+        if built is not None:
+            shutil.rmtree(built.parent, ignore_errors=True)
         if args.postgres:
             import sqlalchemy
 
@@ -200,7 +222,8 @@ def main() -> int:
     print("\ntargets at 100,000 series: cold < 600 s, warm < 120 s, pack < 60 s, peak < 6 GB, store < 3,000 MB "
           "(≤ 2 KB per series per cycle); peak memory is the tree's RSS (shared pages counted per process) and "
           "PSS (shared pages split: what the machine holds)")
-    print(f"build times (intake, not a target): " + ", ".join(f"{r['series']:,}: {r['build_s']:.0f} s" for r in rows))
+    print("build times (intake, not a target): " + ", ".join(
+        f"{r['series']:,}: " + ("copied (--built)" if r["copied"] else f"{r['build_s']:.0f} s") for r in rows))
     return 0
 
 
