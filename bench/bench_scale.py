@@ -128,6 +128,18 @@ def store_bytes(db: str) -> int:
         return int(connection.execute(sqlalchemy.text("SELECT pg_database_size(current_database())")).scalar())
 
 
+def _snapshot(source: Path, target: Path) -> None:
+    """A consistent copy of a SQLite store: the backup API copies the pages still in its WAL file too."""
+    import sqlite3
+
+    src, dst = sqlite3.connect(source), sqlite3.connect(target)
+    try:
+        src.backup(dst)
+    finally:
+        src.close()
+        dst.close()
+
+
 def measure(n: int, db: str, folder: Path, *, log, built: Path | None = None) -> dict:
     """Build (or copy from ``built``, a SQLite store this script built and kept unrun) and measure."""
     from consensus.store.db import get_engine
@@ -135,13 +147,13 @@ def measure(n: int, db: str, folder: Path, *, log, built: Path | None = None) ->
     get_engine.cache_clear()
     started = time.perf_counter()
     if built is not None:
-        shutil.copy(built, db.split("///", 1)[1])
+        _snapshot(built, Path(db.split("///", 1)[1]))
         company = invent_company(n)  # the same invented company: the scenario is seeded
         log(f"  store copied from {built} (built earlier, never run)")
     else:
         company = build_store(n, db, folder=folder / "files", log=log)
         if db.startswith("sqlite"):  # kept unrun, for --built
-            shutil.copy(db.split("///", 1)[1], folder / "built.db")
+            _snapshot(Path(db.split("///", 1)[1]), folder / "built.db")
     build = time.perf_counter() - started
     if built is None:
         log(f"  store built in {build:.0f} s")
@@ -182,7 +194,9 @@ def main() -> int:
             built = Path(args.built) / f"n{n}" / "built.db"
             if not built.exists():
                 raise SystemExit(f"--built: {built} does not exist (run once with --keep {args.built})")
-            built = shutil.copy(built, Path(tempfile.mkdtemp(prefix="bench_built_")) / "built.db")
+            copy = Path(tempfile.mkdtemp(prefix="bench_built_")) / "built.db"
+            _snapshot(built, copy)
+            built = copy
         shutil.rmtree(folder, ignore_errors=True)
         folder.mkdir(parents=True)
         log(f"N = {n:,} series (SQLite)")
