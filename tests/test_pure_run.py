@@ -173,6 +173,23 @@ def test_how_the_statistical_fits_are_grouped_changes_no_digit_and_no_row(demo_u
 
 
 @pytest.mark.slow
+def test_how_many_past_cycles_are_scored_in_one_pass_changes_no_digit_and_no_row(demo_url, monkeypatch):
+    """A small catalogue's past cycles are scored several at a time: one per pass gives every part of all in one."""
+    with session_scope(demo_url, write=False) as s:
+        run = latest_run(s, CYCLE)
+    spec = RunSpec.from_dict(run.spec)
+    results = []
+    for rows in (1, 10**9):  # every cycle its own pass; all twelve in one
+        monkeypatch.setattr(plan, "SCORE_PASS_MAX_ROWS", rows)
+        _, result, _ = compute_cycle(CYCLE, url=demo_url, spec=spec, through=run.through_seq, use_cache=False,
+                                     require_open=False, jobs=1)
+        results.append(result)
+    apart, together = results
+    for name in apart.parts:
+        pd.testing.assert_frame_equal(apart.parts[name], together.parts[name], check_exact=True, obj=name)
+
+
+@pytest.mark.slow
 def test_past_cycles_kept_in_the_process_memo_give_the_digits_of_cycles_made_afresh(demo_dir, tmp_path):
     """A run that finds its past cycles' scoring frames in memory equals one that made them (and found none)."""
     from consensus.store import cache

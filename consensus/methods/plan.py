@@ -540,11 +540,34 @@ def _score_task(args) -> tuple[dict, list[str], bytes | None]:
     return _WORKER_LEDGER.score_cycle(name, frame, bands=published), warnings, made
 
 
-def _score_batch(batch: list) -> tuple[dict, list[list[str]], list[bytes | None]]:
-    """Here: several small past cycles scored in one pass (the same digits as one by one, less overhead)."""
-    made = [_scoring_frame(args) for args in batch]
-    state = _WORKER_LEDGER.score_cycles([(name, frame, published) for name, frame, published, _, _ in made])
-    return state, [m[3] for m in made], [m[4] for m in made]
+#: Rows of past-cycle frames scored in one pass in this process (a small catalogue's twelve cycles are ~200,000).
+SCORE_PASS_MAX_ROWS = 1_000_000
+
+
+def _score_here(ledger: hist.HistoryLedger, tasks: list) -> list[tuple[dict, list[str], bytes | None]]:
+    """Here: small past cycles scored into ``ledger`` a few at a time, in order (the digits of one by one).
+
+    Cycles go into one pass until their frames reach :data:`SCORE_PASS_MAX_ROWS`, so the overhead is paid once
+    per pass while memory stays bounded; each pass adds to the ledger's running sums cycle by cycle, as merging
+    one cycle's state after another would.
+    """
+    results, waiting, rows = [], [], 0
+
+    def flush():
+        ledger.add_cycles([(name, frame, published) for name, frame, published in waiting])
+        waiting.clear()
+
+    for args in tasks:
+        name, frame, published, warnings, made = _scoring_frame(args)
+        waiting.append((name, frame, published))
+        results.append(({}, warnings, made))
+        rows += len(frame)
+        if rows >= SCORE_PASS_MAX_ROWS:
+            flush()
+            rows = 0
+    if waiting:
+        flush()
+    return results
 
 
 def _scoring_frame(args) -> tuple[str, pd.DataFrame, pd.DataFrame | None, list[str], bytes | None]:
@@ -706,11 +729,8 @@ def _history_summary(ctx: _Context, patterns: pd.DataFrame, key: str,
         _close_pool(ctx)
         pool = ctx.pool = _new_pool(jobs)
         _malloc_trim()
-    if pool is None and len(book.keys) < PARALLEL_MIN_SERIES:  # small: one pass, same digits
-        state, warnings, made = _score_batch(tasks) if tasks else ({}, [], [])
-        results = [({}, w, m) for w, m in zip(warnings, made)]
-        if tasks:
-            ledger.merge(state)
+    if pool is None and len(book.keys) < PARALLEL_MIN_SERIES:  # small: in passes of several cycles, same digits
+        results = _score_here(ledger, tasks)
     else:
         results = _map_tasks(pool, _score_task, tasks)
     for c, (state, warnings, made) in zip(inputs.past, results):  # merged in cycle order, whichever process
