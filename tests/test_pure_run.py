@@ -155,38 +155,33 @@ def test_any_number_of_processes_gives_the_same_digits_on_the_sample_company(dem
         pd.testing.assert_frame_equal(one.parts[name], four.parts[name], check_exact=True, obj=name)
 
 
-@pytest.mark.slow
-def test_how_the_statistical_fits_are_grouped_changes_no_digit_and_no_row(demo_url, monkeypatch):
-    """The fits' group count is a memory setting: every part, rows in order, is the same for 2 groups as for 64."""
+def _same_parts_whatever(demo_url, monkeypatch, setting: str, values: tuple) -> None:
+    """The demo's current run computed afresh with ``plan.<setting>`` at each value: every part, rows in order, equal."""
     with session_scope(demo_url, write=False) as s:
         run = latest_run(s, CYCLE)
     spec = RunSpec.from_dict(run.spec)
     results = []
-    for groups in (2, 64):
-        monkeypatch.setattr(plan, "STATISTICAL_GROUPS", groups)
+    for value in values:
+        monkeypatch.setattr(plan, setting, value)
         _, result, _ = compute_cycle(CYCLE, url=demo_url, spec=spec, through=run.through_seq, use_cache=False,
                                      require_open=False, jobs=1)
         results.append(result)
-    few, many = results
-    for name in few.parts:
-        pd.testing.assert_frame_equal(few.parts[name], many.parts[name], check_exact=True, obj=name)
+    first, *others = results
+    for other in others:
+        for name in first.parts:
+            pd.testing.assert_frame_equal(first.parts[name], other.parts[name], check_exact=True, obj=name)
+
+
+@pytest.mark.slow
+def test_how_the_statistical_fits_are_grouped_changes_no_digit_and_no_row(demo_url, monkeypatch):
+    """The fits' group count is a memory setting: every part, rows in order, is the same for 2 groups as for 64."""
+    _same_parts_whatever(demo_url, monkeypatch, "STATISTICAL_GROUPS", (2, 64))
 
 
 @pytest.mark.slow
 def test_how_many_past_cycles_are_scored_in_one_pass_changes_no_digit_and_no_row(demo_url, monkeypatch):
     """A small catalogue's past cycles are scored several at a time: one per pass gives every part of all in one."""
-    with session_scope(demo_url, write=False) as s:
-        run = latest_run(s, CYCLE)
-    spec = RunSpec.from_dict(run.spec)
-    results = []
-    for rows in (1, 10**9):  # every cycle its own pass; all twelve in one
-        monkeypatch.setattr(plan, "SCORE_PASS_MAX_ROWS", rows)
-        _, result, _ = compute_cycle(CYCLE, url=demo_url, spec=spec, through=run.through_seq, use_cache=False,
-                                     require_open=False, jobs=1)
-        results.append(result)
-    apart, together = results
-    for name in apart.parts:
-        pd.testing.assert_frame_equal(apart.parts[name], together.parts[name], check_exact=True, obj=name)
+    _same_parts_whatever(demo_url, monkeypatch, "SCORE_PASS_MAX_ROWS", (1, 10**9))  # each cycle alone; all in one
 
 
 @pytest.mark.slow
