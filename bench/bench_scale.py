@@ -141,7 +141,7 @@ def _snapshot(source: Path, target: Path) -> None:
 
 
 def measure(n: int, db: str, folder: Path, *, log, built: Path | None = None) -> dict:
-    """Build (or copy from ``built``, a SQLite store this script built and kept unrun) and measure."""
+    """Build the store (or copy ``built``, an unrun SQLite store this script built and kept) and measure."""
     from consensus.store.db import get_engine
 
     get_engine.cache_clear()
@@ -149,7 +149,6 @@ def measure(n: int, db: str, folder: Path, *, log, built: Path | None = None) ->
     if built is not None:
         _snapshot(built, Path(db.split("///", 1)[1]))
         company = invent_company(n)  # the same invented company: the scenario is seeded
-        log(f"  store copied from {built} (built earlier, never run)")
     else:
         company = build_store(n, db, folder=folder / "files", log=log)
         if db.startswith("sqlite"):  # kept unrun, for --built
@@ -168,7 +167,8 @@ def measure(n: int, db: str, folder: Path, *, log, built: Path | None = None) ->
     export_path = folder / "consensus.csv"
     export, export_rss, _ = timed(["export", "--cycle", CURRENT, "--out", str(export_path)], db=db)
     digest = hashlib.sha256(export_path.read_bytes()).hexdigest()
-    return {"series": n, "build_s": build, "copied": built is not None, "cold_s": cold, "warm_s": warm, "pack_s": pack, "export_s": export,
+    return {"series": n, "build_s": build, "copied": built is not None, "cold_s": cold, "warm_s": warm,
+            "pack_s": pack, "export_s": export,
             "peak_gb": max(m[0] for m in (cold_rss, warm_rss, pack_rss, export_rss)) / 1e9,
             "peak_pss_gb": max(m[1] for m in (cold_rss, warm_rss, pack_rss, export_rss)) / 1e9,
             "store_mb": store_bytes(db) / 1e6,
@@ -191,15 +191,14 @@ def main() -> int:
         folder = root / f"n{n}"
         built = None
         if args.built:
-            built = Path(args.built) / f"n{n}" / "built.db"
-            if not built.exists():
-                raise SystemExit(f"--built: {built} does not exist (run once with --keep {args.built})")
-            copy = Path(tempfile.mkdtemp(prefix="bench_built_")) / "built.db"
-            _snapshot(built, copy)
-            built = copy
+            kept = Path(args.built) / f"n{n}" / "built.db"
+            if not kept.exists():
+                raise SystemExit(f"--built: {kept} does not exist (run once with --keep {args.built})")
+            built = Path(tempfile.mkdtemp(prefix="bench_built_")) / "built.db"  # --built may be --keep's folder
+            _snapshot(kept, built)
         shutil.rmtree(folder, ignore_errors=True)
         folder.mkdir(parents=True)
-        log(f"N = {n:,} series (SQLite)")
+        log(f"N = {n:,} series (SQLite)" + (f", store copied from {kept} (built earlier, never run)" if built else ""))
         rows.append({"backend": "sqlite", **measure(n, f"sqlite:///{folder / 'store.db'}", folder, log=log,
                                                      built=built)})
         if built is not None:

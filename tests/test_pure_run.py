@@ -156,7 +156,7 @@ def test_any_number_of_processes_gives_the_same_digits_on_the_sample_company(dem
 
 
 def _same_parts_whatever(demo_url, monkeypatch, setting: str, values: tuple) -> None:
-    """The demo's current run computed afresh with ``plan.<setting>`` at each value: every part, rows in order, equal."""
+    """The demo's current run computed afresh with ``plan.<setting>`` at each value: every part, in order, equal."""
     with session_scope(demo_url, write=False) as s:
         run = latest_run(s, CYCLE)
     spec = RunSpec.from_dict(run.spec)

@@ -266,12 +266,8 @@ class HistoryLedger:
 
     def score_cycle(self, name: str, forecasts: pd.DataFrame, *, bands: pd.DataFrame | None = None) -> dict:
         """One cycle's gatherings as a state to :meth:`merge` (so cycles can be scored apart, in any process)."""
-        return self.score_cycles([(name, forecasts, bands)])
-
-    def score_cycles(self, batch: list[tuple[str, pd.DataFrame, pd.DataFrame | None]]) -> dict:
-        """Several cycles' gatherings as one state, the same digits as scoring them one by one and merging."""
         part = self.fresh()
-        part.add_cycles(batch)
+        part.add_cycle(name, forecasts, bands=bands)
         return part.state()
 
     def add_cycle(self, name: str, forecasts: pd.DataFrame, *, bands: pd.DataFrame | None = None) -> None:

@@ -540,34 +540,30 @@ def _score_task(args) -> tuple[dict, list[str], bytes | None]:
     return _WORKER_LEDGER.score_cycle(name, frame, bands=published), warnings, made
 
 
-#: Rows of past-cycle frames scored in one pass in this process (a small catalogue's twelve cycles are ~200,000).
+#: Rows of past-cycle frames scored in one pass in this process (a small catalogue's twelve cycles are ~200,000;
+#: one cycle of 100,000 series is several million, so it is a pass of its own).
 SCORE_PASS_MAX_ROWS = 1_000_000
 
 
-def _score_here(ledger: hist.HistoryLedger, tasks: list) -> list[tuple[dict, list[str], bytes | None]]:
-    """Here: small past cycles scored into ``ledger`` a few at a time, in order (the digits of one by one).
+def _score_here(ledger: hist.HistoryLedger, tasks: list) -> list[tuple[list[str], bytes | None]]:
+    """Here: past cycles scored into ``ledger`` a few at a time, in order (the digits of one by one).
 
-    Cycles go into one pass until their frames reach :data:`SCORE_PASS_MAX_ROWS`, so the overhead is paid once
-    per pass while memory stays bounded; each pass adds to the ledger's running sums cycle by cycle, as merging
-    one cycle's state after another would.
+    Cycles go into one pass until their frames reach :data:`SCORE_PASS_MAX_ROWS`, so a small catalogue pays the
+    per-call overhead once per pass while a large one's memory stays one cycle's; each pass adds to the ledger's
+    running sums cycle by cycle, as merging one cycle's state after another would.  Returns each cycle's
+    (warnings, packed frame to keep).
     """
-    results, waiting, rows = [], [], 0
-
-    def flush():
-        ledger.add_cycles([(name, frame, published) for name, frame, published in waiting])
-        waiting.clear()
-
-    for args in tasks:
+    kept, waiting, rows = [], [], 0
+    for i, args in enumerate(tasks):
         name, frame, published, warnings, made = _scoring_frame(args)
         waiting.append((name, frame, published))
-        results.append(({}, warnings, made))
+        kept.append((warnings, made))
         rows += len(frame)
-        if rows >= SCORE_PASS_MAX_ROWS:
-            flush()
-            rows = 0
-    if waiting:
-        flush()
-    return results
+        del frame, published  # held by ``waiting`` alone, so a pass lets go of its frames as it ends
+        if rows >= SCORE_PASS_MAX_ROWS or i == len(tasks) - 1:
+            ledger.add_cycles(waiting)
+            waiting, rows = [], 0
+    return kept
 
 
 def _scoring_frame(args) -> tuple[str, pd.DataFrame, pd.DataFrame | None, list[str], bytes | None]:
@@ -729,13 +725,14 @@ def _history_summary(ctx: _Context, patterns: pd.DataFrame, key: str,
         _close_pool(ctx)
         pool = ctx.pool = _new_pool(jobs)
         _malloc_trim()
-    if pool is None and len(book.keys) < PARALLEL_MIN_SERIES:  # small: in passes of several cycles, same digits
-        results = _score_here(ledger, tasks)
+    if pool is None:
+        kept = _score_here(ledger, tasks)
     else:
-        results = _map_tasks(pool, _score_task, tasks)
-    for c, (state, warnings, made) in zip(inputs.past, results):  # merged in cycle order, whichever process
-        if state:
+        kept = []
+        for state, warnings, made in _map_tasks(pool, _score_task, tasks):  # merged in cycle order
             ledger.merge(state)
+            kept.append((warnings, made))
+    for c, (warnings, made) in zip(inputs.past, kept):
         ctx.warnings += warnings
         if made is not None:
             ctx.cache.put(_frame_key(ctx, c), kind="frame", cycle=c.name, content=made, durable=False)
