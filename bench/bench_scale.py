@@ -151,9 +151,9 @@ def measure(n: int, db: str, folder: Path, *, log, built: Path | None = None) ->
         company = invent_company(n)  # the same invented company: the scenario is seeded
     else:
         company = build_store(n, db, folder=folder / "files", log=log)
-        if db.startswith("sqlite"):  # kept unrun, for --built
-            _snapshot(Path(db.split("///", 1)[1]), folder / "built.db")
     build = time.perf_counter() - started
+    if db.startswith("sqlite"):  # kept unrun, for a later --built (also when this one came from there)
+        _snapshot(Path(db.split("///", 1)[1]), folder / "built.db")
     if built is None:
         log(f"  store built in {build:.0f} s")
     cold, cold_rss, _ = timed(["run", "--cycle", CURRENT], db=db)
